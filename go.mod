@@ -1,0 +1,3 @@
+module github.com/tallyward/tallyward
+
+go 1.26
