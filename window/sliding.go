@@ -1,0 +1,443 @@
+package window
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math"
+	"unsafe"
+)
+
+// SlidingSpec defines a sliding window over event time, cut into panes.
+//
+// The zero value is invalid; every field must be set.
+type SlidingSpec struct {
+	// Window is the window length in nanoseconds. It must be > 0 and a
+	// multiple of Resolution. No default.
+	Window int64
+	// Resolution is the pane width in nanoseconds, > 0. Panes are aligned to
+	// the Unix epoch: pane(t) = floor(t / Resolution). A smaller resolution
+	// narrows the trailing-edge error and costs more panes. No default.
+	Resolution int64
+	// Horizon is how far behind the newest added time, in nanoseconds, Add
+	// and as-of queries stay exact; >= 0. A pipeline passes its allowed
+	// disorder. Default 0.
+	Horizon int64
+}
+
+// Validate reports every problem of s at once (errors.Join of *SpecError,
+// each matching ErrInvalidSpec), or nil.
+func (s SlidingSpec) Validate() error {
+	e := specErrs{spec: "SlidingSpec"}
+	e.check(s.Window > 0, "Window", "must be > 0")
+	e.check(s.Resolution > 0, "Resolution", "must be > 0")
+	e.check(s.Window <= 0 || s.Resolution <= 0 || s.Window%s.Resolution == 0,
+		"Window", "must be a multiple of Resolution")
+	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	return e.err()
+}
+
+// pane is the aggregate of the folded events of one pane. n >= 1; v is the
+// sum, minimum or maximum of their values (unused by counts).
+type pane struct {
+	idx int64
+	n   uint64
+	v   float64
+}
+
+// event is one raw event kept with its exact time.
+type event struct {
+	t int64
+	v float64
+}
+
+// op says how a value joins a pane.
+type op uint8
+
+const (
+	opCount op = iota
+	opSum
+	opMin
+	opMax
+)
+
+func (o op) merge(acc, v float64) float64 {
+	switch o {
+	case opSum:
+		return acc + v
+	case opMin:
+		return math.Min(acc, v)
+	case opMax:
+		return math.Max(acc, v)
+	}
+	return 0
+}
+
+func (o op) hasValue() bool { return o != opCount }
+
+// ring is the pane mechanism shared by the sliding aggregates. Its exported
+// methods are promoted to them. See SlidingCount for the semantics.
+//
+// Let r = Resolution, n = Window/r, maxT = newest added time,
+// cutoff = maxT − Horizon, floor = pane(cutoff) − n + 1.
+// Invariants (checked by checkInvariants in tests):
+//   - !seen implies no panes and no raw events;
+//   - total == sum of panes[i].n + raw.len();
+//   - panes are in strictly increasing idx order, each with n >= 1 and
+//     floor <= idx <= pane(cutoff);
+//   - raw is sorted by t (ties in arrival order), each cutoff < t <= maxT.
+type ring struct {
+	spec  SlidingSpec
+	valid bool  // spec.Validate() == nil
+	n     int64 // Window / Resolution
+	op    op
+	kind  byte
+
+	seen  bool
+	maxT  int64
+	total uint64
+	panes seq[pane]
+	raw   seq[event]
+}
+
+func (g *ring) init(spec SlidingSpec, o op, kind byte) {
+	g.spec, g.op, g.kind = spec, o, kind
+	g.valid = spec.Validate() == nil
+	if !g.valid {
+		return
+	}
+	g.n = spec.Window / spec.Resolution
+	np := min(g.n+1, 64)
+	g.panes.buf = make([]pane, 0, np)
+	g.raw.buf = make([]event, 0, 8)
+}
+
+// Spec returns the spec the aggregate was built with.
+func (g *ring) Spec() SlidingSpec { return g.spec }
+
+// Reset empties the aggregate and keeps its spec and storage.
+func (g *ring) Reset() {
+	g.seen, g.maxT, g.total = false, 0, 0
+	g.panes.clear()
+	g.raw.clear()
+}
+
+// Newest returns the largest time added, or 0 if none.
+func (g *ring) Newest() int64 { return g.maxT }
+
+// Len returns the number of events retained (folded into panes or raw).
+func (g *ring) Len() uint64 { return g.total }
+
+// SizeBytes returns the approximate heap footprint in bytes.
+func (g *ring) SizeBytes() int {
+	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{}))) +
+		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+}
+
+func (g *ring) paneOf(t int64) int64 { return floorDiv(t, g.spec.Resolution) }
+
+// paneStart is the first time of pane idx, saturated to the int64 range.
+func (g *ring) paneStart(idx int64) int64 {
+	r := g.spec.Resolution
+	if idx < math.MinInt64/r {
+		return math.MinInt64
+	}
+	if idx > math.MaxInt64/r {
+		return math.MaxInt64
+	}
+	return idx * r
+}
+
+func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
+
+// floorOf is the oldest pane still retained for a given cutoff.
+func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
+
+// add applies one event; see SlidingCount.Add.
+func (g *ring) add(t int64, v float64) bool {
+	if !g.valid || (g.op.hasValue() && !finite(v)) {
+		return false
+	}
+	if !g.op.hasValue() {
+		v = 0
+	}
+	switch {
+	case !g.seen:
+		g.seen, g.maxT = true, t
+	case t > g.maxT:
+		g.maxT = t
+		g.advance()
+	}
+	c := g.cutoff()
+	if t > c {
+		g.insertRaw(event{t, v})
+	} else {
+		// Only a time older than maxT can be rejected, so nothing has
+		// changed above when this returns false.
+		p := g.paneOf(t)
+		if p < g.floorOf(c) {
+			return false
+		}
+		g.foldLate(p, v)
+	}
+	g.total++
+	return true
+}
+
+// advance folds raw events that fell to or behind the cutoff and discards
+// panes older than the floor. Raw events are newer than the previous cutoff,
+// so they fold onto the last pane or after it.
+func (g *ring) advance() {
+	c := g.cutoff()
+	k := 0
+	for raw := g.raw.live(); k < len(raw) && raw[k].t <= c; k++ {
+		p := g.paneOf(raw[k].t)
+		if g.panes.len() > 0 && g.panes.last().idx == p {
+			l := g.panes.last()
+			l.n++
+			l.v = g.op.merge(l.v, raw[k].v)
+		} else {
+			g.panes.push(pane{idx: p, n: 1, v: raw[k].v})
+		}
+	}
+	g.raw.popFront(k)
+	f := g.floorOf(c)
+	k = 0
+	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
+		g.total -= ps[k].n
+	}
+	g.panes.popFront(k)
+}
+
+func (g *ring) insertRaw(e event) {
+	raw := g.raw.live()
+	i := len(raw)
+	for i > 0 && raw[i-1].t > e.t {
+		i--
+	}
+	if i == len(raw) {
+		g.raw.push(e)
+		return
+	}
+	g.raw.insert(i, e)
+}
+
+// foldLate adds an event at or behind the cutoff to pane p >= floor.
+func (g *ring) foldLate(p int64, v float64) {
+	ps := g.panes.live()
+	i := len(ps)
+	for i > 0 && ps[i-1].idx > p {
+		i--
+	}
+	if i > 0 && ps[i-1].idx == p {
+		ps[i-1].n++
+		ps[i-1].v = g.op.merge(ps[i-1].v, v)
+		return
+	}
+	g.panes.insert(i, pane{idx: p, n: 1, v: v})
+}
+
+// query aggregates the events of the window of w panes as of t; see
+// SlidingCount.CountAt for the semantics. v is meaningless when n == 0.
+func (g *ring) query(t int64, w int64) (n uint64, v float64) {
+	if !g.valid || !g.seen {
+		return 0, 0
+	}
+	hi := g.paneOf(t)
+	lo := satSub(hi, w-1)
+	exact := t >= g.cutoff()
+	if !exact {
+		hi--
+	}
+	ps := g.panes.live()
+	i := searchPane(ps, lo)
+	for ; i < len(ps) && ps[i].idx <= hi; i++ {
+		v = g.mergeInto(n, v, ps[i].v)
+		n += ps[i].n
+	}
+	if !exact {
+		return n, v
+	}
+	start := g.paneStart(lo)
+	for _, e := range g.raw.live() {
+		if e.t > t {
+			break
+		}
+		if e.t >= start {
+			v = g.mergeInto(n, v, e.v)
+			n++
+		}
+	}
+	return n, v
+}
+
+// mergeInto joins x into the accumulator v that holds n events so far.
+func (g *ring) mergeInto(n uint64, v, x float64) float64 {
+	if n == 0 {
+		return x
+	}
+	return g.op.merge(v, x)
+}
+
+// searchPane returns the first i with ps[i].idx >= lo.
+func searchPane(ps []pane, lo int64) int {
+	i, j := 0, len(ps)
+	for i < j {
+		h := int(uint(i+j) >> 1)
+		if ps[h].idx < lo {
+			i = h + 1
+		} else {
+			j = h
+		}
+	}
+	return i
+}
+
+// AppendBinary appends the encoding of the state (not the spec) to dst.
+// The layout is given on UnmarshalBinary.
+func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
+	if !g.valid {
+		return dst, fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	}
+	if !g.seen {
+		return append(dst, version1, g.kind, 0), nil
+	}
+	dst = append(dst, version1, g.kind, flagSeen)
+	dst = binary.AppendVarint(dst, g.maxT)
+	ps := g.panes.live()
+	dst = binary.AppendUvarint(dst, uint64(len(ps)))
+	prev := g.paneOf(g.cutoff())
+	for i := len(ps) - 1; i >= 0; i-- {
+		dst = binary.AppendUvarint(dst, uint64(prev-ps[i].idx))
+		prev = ps[i].idx - 1
+		dst = binary.AppendUvarint(dst, ps[i].n-1)
+		if g.op.hasValue() {
+			dst = appendFloat(dst, ps[i].v)
+		}
+	}
+	raw := g.raw.live()
+	dst = binary.AppendUvarint(dst, uint64(len(raw)))
+	prevT := g.maxT
+	for i := len(raw) - 1; i >= 0; i-- {
+		dst = binary.AppendUvarint(dst, uint64(prevT-raw[i].t))
+		prevT = raw[i].t
+		if g.op.hasValue() {
+			dst = appendFloat(dst, raw[i].v)
+		}
+	}
+	return dst, nil
+}
+
+// UnmarshalBinary replaces the state with the decoded one. The receiver
+// must have been built with the spec the state was encoded under (the spec
+// is not stored); a state that this spec cannot hold is ErrCorrupt. On
+// error the receiver is unchanged.
+//
+// Layout, version 1 (varint = encoding/binary zigzag varint, uvarint =
+// encoding/binary unsigned varint, float = 8 bytes little-endian IEEE 754,
+// never NaN):
+//
+//	byte     version = 1 (else ErrUnknownVersion)
+//	byte     kind: 1 count, 2 sum, 3 min, 4 max, 5 mean, 7 velocity
+//	         (must match the receiver, else ErrWrongKind)
+//	byte     flags: bit 0 = some event was added; other bits zero
+//	if bit 0 is set:
+//	varint   maxT, the newest time added
+//	uvarint  P, the number of non-empty panes, then P panes, newest first:
+//	  uvarint  gap: the first pane is pane(maxT − Horizon) − gap; each
+//	           next one is (previous pane − 1) − gap; all >= the floor
+//	  uvarint  count − 1
+//	  float    sum, min or max of the pane (kinds 2..5 only)
+//	uvarint  R, the number of raw events, then R events, newest first:
+//	  uvarint  delta: the first time is maxT − delta, each next one is the
+//	           previous time − delta; all > maxT − Horizon
+//	  float    value (kinds 2..5 only)
+//	then end of input (else ErrTrailingBytes).
+func (g *ring) UnmarshalBinary(b []byte) error {
+	if !g.valid {
+		return fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	}
+	// Pass 1 checks everything without touching g; pass 2 cannot fail.
+	if err := g.decode(b, false); err != nil {
+		return fmt.Errorf("window: decode %d-byte state: %w", len(b), err)
+	}
+	return g.decode(b, true)
+}
+
+func (g *ring) decode(b []byte, store bool) error {
+	r := reader{b: b}
+	flags := r.header(g.kind)
+	if r.err != nil || flags&flagSeen == 0 {
+		if err := r.end(); err != nil || !store {
+			return err
+		}
+		g.Reset()
+		return nil
+	}
+	maxT := r.varint("maxT")
+	cutoff := satSub(maxT, g.spec.Horizon)
+	pc := g.paneOf(cutoff)
+	floor := satSub(pc, g.n-1)
+	vbytes := 0
+	if g.op.hasValue() {
+		vbytes = 8
+	}
+	np := r.count("pane count", 2+vbytes)
+	if store {
+		g.panes.setLen(np)
+	}
+	var total uint64
+	prev := pc
+	for i := np - 1; i >= 0 && r.err == nil; i-- {
+		gap := r.uvarint("pane gap")
+		if prev < floor || gap > uint64(prev-floor) {
+			r.fail("pane before the floor")
+			break
+		}
+		p := prev - int64(gap)
+		cnt := r.uvarint("pane count") + 1
+		var v float64
+		if vbytes > 0 {
+			v = r.float("pane value")
+		}
+		if cnt == 0 || total+cnt < total {
+			r.fail("pane count overflow")
+		}
+		total += cnt
+		if store {
+			*g.panes.at(i) = pane{idx: p, n: cnt, v: v}
+		}
+		prev = p - 1
+	}
+	nr := r.count("raw count", 1+vbytes)
+	if store {
+		g.raw.setLen(nr)
+	}
+	prevT := maxT
+	for i := nr - 1; i >= 0 && r.err == nil; i-- {
+		d := r.uvarint("raw delta")
+		t := prevT - int64(d)
+		if d > math.MaxInt64 || t > prevT || t <= cutoff {
+			r.fail("raw event at or behind the cutoff")
+			break
+		}
+		var v float64
+		if vbytes > 0 {
+			v = r.float("raw value")
+			if !finite(v) {
+				r.fail("infinite raw value")
+			}
+		}
+		if store {
+			*g.raw.at(i) = event{t: t, v: v}
+		}
+		prevT = t
+	}
+	if total+uint64(nr) < total {
+		r.fail("count overflow")
+	}
+	if err := r.end(); err != nil || !store {
+		return err
+	}
+	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)
+	return nil
+}
