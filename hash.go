@@ -1,0 +1,47 @@
+package tallyward
+
+import "math"
+
+// hashItem maps an item to the 64-bit hash that item kinds consume.
+func hashItem(s string) uint64 { return fnv1a(fnvOffset, s) }
+
+const (
+	fnvOffset = 14695981039346656037
+	fnvPrime  = 1099511628211
+)
+
+func fnv1a(h uint64, s string) uint64 {
+	for i := 0; i < len(s); i++ {
+		h ^= uint64(s[i])
+		h *= fnvPrime
+	}
+	return h
+}
+
+func mix64(h, v uint64) uint64 {
+	h ^= v
+	h *= fnvPrime
+	h ^= h >> 29
+	return h
+}
+
+// tieBreak hashes the event's extracted inputs. Events at one time are
+// applied in tie-break order in Settled mode; as the hash depends only on
+// what the event contributes to state, the order is free of arrival order.
+func (in *inputs) tieBreak() uint64 {
+	h := uint64(fnvOffset)
+	for _, k := range in.keys {
+		h = fnv1a(h, k)
+		h = mix64(h, uint64(len(k)))
+	}
+	for i, on := range in.on {
+		if !on {
+			h = mix64(h, 0)
+			continue
+		}
+		h = mix64(h, 1)
+		h = mix64(h, math.Float64bits(in.v[i]))
+		h = mix64(h, in.item[i])
+	}
+	return h
+}

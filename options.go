@@ -1,0 +1,141 @@
+package tallyward
+
+import (
+	"errors"
+	"fmt"
+	"time"
+
+	"github.com/cockroachdb/pebble/v2/vfs"
+)
+
+// Mode selects when a pipeline emits an event's features.
+//
+// Persisted nowhere; the values are still frozen so logs and configs stay
+// readable across versions.
+type Mode uint8
+
+const (
+	// Eager returns an event's features at once, as of the event's time,
+	// over every event already applied. The result depends on the arrival
+	// sequence. For inline scoring.
+	Eager Mode = 0
+	// Settled holds each event until the watermark passes its time, applies
+	// held events in canonical (time, tie-break) order and then emits them.
+	// The result depends only on the multiset of events for any arrival
+	// order within MaxDisorder.
+	Settled Mode = 1
+)
+
+func (m Mode) String() string {
+	switch m {
+	case Eager:
+		return "eager"
+	case Settled:
+		return "settled"
+	}
+	return fmt.Sprintf("Mode(%d)", m)
+}
+
+// Lateness is the policy for an event whose time is below the watermark on
+// arrival. Whatever the policy, the event is counted in Stats.Late.
+type Lateness uint8
+
+const (
+	// DropLate counts the event and discards it; Process returns ErrLate.
+	DropLate Lateness = 0
+	// ApplyLate applies the event to state and emits its features at once,
+	// marked late. Window aggregates answer it within their stated
+	// as-of guarantees (see package window).
+	ApplyLate Lateness = 1
+	// DivertLate hands the event to Spec.OnLate and does not apply it.
+	DivertLate Lateness = 2
+)
+
+func (l Lateness) String() string {
+	switch l {
+	case DropLate:
+		return "drop"
+	case ApplyLate:
+		return "apply"
+	case DivertLate:
+		return "divert"
+	}
+	return fmt.Sprintf("Lateness(%d)", l)
+}
+
+// Options configures a Pipeline. The zero value is valid: Eager emission,
+// no disorder allowed, late events dropped, an in-memory store.
+type Options struct {
+	// Mode selects Eager or Settled emission. Default: Eager.
+	Mode Mode
+
+	// MaxDisorder is how far behind the newest event time an event may
+	// arrive and still not be late: the watermark is the newest event time
+	// minus MaxDisorder. Default: 0.
+	MaxDisorder time.Duration
+
+	// FutureSkew rejects events more than this far ahead of the newest
+	// event time seen (and, in live mode, of the injected clock).
+	// Default: 1 hour.
+	FutureSkew time.Duration
+
+	// Lateness is the policy for late events. Default: DropLate.
+	Lateness Lateness
+
+	// Dir is the Pebble directory. Empty means an in-memory store that is
+	// discarded on Close. Default: "".
+	Dir string
+
+	// FS overrides the filesystem (tests: crash-simulating or
+	// error-injecting filesystems). Default: the OS filesystem when Dir is
+	// set, a fresh in-memory one otherwise.
+	FS vfs.FS
+
+	// CacheBytes bounds the approximate memory of decoded entity records.
+	// Default: 64 MiB.
+	CacheBytes int64
+
+	// CommitEvery commits automatically after this many source events.
+	// Negative disables automatic commits. Default: 100000.
+	CommitEvery int
+
+	// IdleAdvance, in live mode, raises the watermark to clock − MaxDisorder
+	// − IdleAdvance once no event has arrived for IdleAdvance of clock
+	// time, so Settled rows are not held forever on a quiet source. Zero
+	// disables it. Default: 0.
+	IdleAdvance time.Duration
+}
+
+// EnsureDefaults fills zero fields with their defaults.
+func (o *Options) EnsureDefaults() {
+	if o.FutureSkew == 0 {
+		o.FutureSkew = time.Hour
+	}
+	if o.CommitEvery == 0 {
+		o.CommitEvery = 100_000
+	}
+}
+
+// Validate reports every problem with o at once.
+func (o *Options) Validate() error {
+	var errs []error
+	if o.Mode > Settled {
+		errs = append(errs, fmt.Errorf("tallyward: unknown Mode %d", o.Mode))
+	}
+	if o.Lateness > DivertLate {
+		errs = append(errs, fmt.Errorf("tallyward: unknown Lateness %d", o.Lateness))
+	}
+	if o.MaxDisorder < 0 {
+		errs = append(errs, fmt.Errorf("tallyward: MaxDisorder %v < 0", o.MaxDisorder))
+	}
+	if o.FutureSkew < 0 {
+		errs = append(errs, fmt.Errorf("tallyward: FutureSkew %v < 0", o.FutureSkew))
+	}
+	if o.CacheBytes < 0 {
+		errs = append(errs, fmt.Errorf("tallyward: CacheBytes %d < 0", o.CacheBytes))
+	}
+	if o.IdleAdvance < 0 {
+		errs = append(errs, fmt.Errorf("tallyward: IdleAdvance %v < 0", o.IdleAdvance))
+	}
+	return errors.Join(errs...)
+}

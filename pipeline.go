@@ -1,0 +1,560 @@
+package tallyward
+
+import (
+	"container/heap"
+	"errors"
+	"fmt"
+	"math"
+	"slices"
+	"strings"
+
+	"github.com/tallyward/tallyward/state"
+)
+
+// Pipeline computes the features of a Spec over a sequence of events and
+// keeps their state in a Pebble store. It is the one synchronous core that
+// both the replay driver (Replay) and the live driver (Live) drive: there is
+// no other code path for operators, state or emission.
+//
+// A Pipeline is not safe for concurrent use; Live serialises goroutines
+// onto it.
+type Pipeline[E any] struct {
+	opts  Options
+	spec  Spec[E]
+	store *state.Store
+	ents  []*entityState[E]
+	names []string // "entity.feature", in row order
+	nfeat int
+
+	// Progress. Invariant: wm <= maxT - MaxDisorder once hasMax, except
+	// after Advance or Flush raised it further.
+	seen    uint64 // sequence number of the next event
+	reread  uint64 // events with seq < reread were seen before the last restart
+	hasMax  bool
+	maxT    int64
+	wm      int64
+	flushed bool
+	// futureRejected holds the sequence numbers of events rejected as too
+	// far in the future whose seq >= the resume point, so a restart that
+	// re-reads them rejects them again even though the newest time has
+	// moved on. Sorted.
+	futureRejected []uint64
+	lastCommitSeen uint64
+
+	c      counters
+	in     inputs // scratch for the current event
+	vals   []float64
+	held   heldHeap[E] // Settled: events waiting for the watermark
+	batch  []*held[E]  // Settled: scratch for one timestamp's events
+	closed bool
+	err    error // sticky storage error
+}
+
+type entityState[E any] struct {
+	ent     Entity[E]
+	table   *state.Table[*record]
+	kinds   []Kind
+	first   int         // index of the entity's first feature in a row
+	zero    []aggregate // empty aggregates, to answer for unseen keys
+	horizon int64
+}
+
+func (es *entityState[E]) fresh() []aggregate {
+	aggs := make([]aggregate, len(es.kinds))
+	for i, k := range es.kinds {
+		aggs[i] = k.newAggregate(es.horizon)
+	}
+	return aggs
+}
+
+// inputs are the values extracted from one event, validated before any
+// state is touched.
+type inputs struct {
+	t    int64
+	keys []string  // per entity; "" = absent
+	on   []bool    // per feature: the event updates it
+	v    []float64 // per feature
+	item []uint64  // per feature
+}
+
+func (in *inputs) clone() inputs {
+	return inputs{t: in.t, keys: slices.Clone(in.keys), on: slices.Clone(in.on), v: slices.Clone(in.v), item: slices.Clone(in.item)}
+}
+
+// Open validates spec and opts, opens the store and checks that the stored
+// feature definitions match spec. The source must restart at Resume().
+func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
+	opts.EnsureDefaults()
+	err := errors.Join(opts.Validate(), spec.validate())
+	if opts.Mode == Settled && spec.Emit == nil {
+		err = errors.Join(err, errors.New("tallyward: Settled mode needs Spec.Emit"))
+	}
+	if opts.Lateness == DivertLate && spec.OnLate == nil {
+		err = errors.Join(err, errors.New("tallyward: DivertLate needs Spec.OnLate"))
+	}
+	if err != nil {
+		return nil, err
+	}
+	store, err := state.Open(state.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes})
+	if err != nil {
+		return nil, err
+	}
+	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64}
+	horizon := int64(opts.MaxDisorder)
+	for _, ent := range spec.Entities {
+		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
+		for _, f := range ent.Features {
+			es.kinds = append(es.kinds, f.Kind)
+			p.names = append(p.names, ent.Name+"."+f.Name)
+		}
+		es.zero = es.fresh()
+		es.table = state.NewTable(store, ent.Name, func(b []byte) (*record, error) {
+			return decodeRecord(b, es.fresh)
+		})
+		p.nfeat += len(ent.Features)
+		p.ents = append(p.ents, es)
+	}
+	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
+	p.vals = make([]float64, p.nfeat)
+	if err := p.checkDefinitions(); err != nil {
+		store.Close()
+		return nil, err
+	}
+	if err := p.restore(store.Mark()); err != nil {
+		store.Close()
+		return nil, err
+	}
+	return p, nil
+}
+
+// definitions returns the fingerprints that shape stored state, by name.
+func (p *Pipeline[E]) definitions() map[string]string {
+	defs := map[string]string{}
+	for _, es := range p.ents {
+		names := make([]string, len(es.ent.Features))
+		for i, f := range es.ent.Features {
+			names[i] = f.Name
+			defs["feature/"+es.ent.Name+"."+f.Name] = f.Kind.Describe()
+		}
+		defs["entity/"+es.ent.Name] = "features=" + strings.Join(names, ",")
+	}
+	return defs
+}
+
+func (p *Pipeline[E]) checkDefinitions() error {
+	stored, err := p.store.Definitions()
+	if err != nil {
+		return err
+	}
+	want := p.definitions()
+	if len(stored) == 0 {
+		for name, d := range want {
+			if err := p.store.SetDefinition(name, []byte(d)); err != nil {
+				return err
+			}
+		}
+		return nil
+	}
+	var errs []error
+	for _, name := range sortedKeys(want) {
+		got, ok := stored[name]
+		switch {
+		case !ok:
+			errs = append(errs, fmt.Errorf("%w: %s is new (stored state has no such definition)", ErrDefinitionChanged, name))
+		case string(got) != want[name]:
+			errs = append(errs, fmt.Errorf("%w: %s was %q, now %q", ErrDefinitionChanged, name, got, want[name]))
+		}
+	}
+	for _, name := range sortedKeys(stored) {
+		if _, ok := want[name]; !ok {
+			errs = append(errs, fmt.Errorf("%w: %s is stored but no longer defined", ErrDefinitionChanged, name))
+		}
+	}
+	return errors.Join(errs...)
+}
+
+func sortedKeys[V any](m map[string]V) []string {
+	keys := make([]string, 0, len(m))
+	for k := range m {
+		keys = append(keys, k)
+	}
+	slices.Sort(keys)
+	return keys
+}
+
+// Names returns the feature names ("entity.feature") in row order.
+func (p *Pipeline[E]) Names() []string { return slices.Clone(p.names) }
+
+// Resume returns the sequence number at which the source must (re)start:
+// 0 for a new store, otherwise the position stored by the last commit.
+// Events from Resume up to the last commit's Seen are recognised as
+// re-reads and not counted twice.
+func (p *Pipeline[E]) Resume() uint64 { return p.store.Mark().Resume }
+
+// Cursor returns the caller's source cursor stored by the last Commit.
+func (p *Pipeline[E]) Cursor() []byte { return slices.Clone(p.store.Mark().Cursor) }
+
+// Watermark returns the current watermark (math.MinInt64 before any event,
+// math.MaxInt64 after Flush).
+func (p *Pipeline[E]) Watermark() int64 { return p.wm }
+
+// Process consumes the next event of the source. In Eager mode the
+// event's row goes to Spec.Emit (if set) at once; in Settled mode it is
+// emitted once the watermark passes its time.
+//
+// A rejected event returns a *RejectError; a late event that is dropped
+// or diverted returns ErrLate. Both are counted and leave state untouched;
+// the caller may log them and carry on. Any other error is a storage
+// failure that stops the pipeline.
+func (p *Pipeline[E]) Process(e E) error {
+	_, err := p.process(e, 0, nil, false)
+	return err
+}
+
+// Score processes e like Process and appends e's features to dst, as of
+// e's time. Eager mode only.
+func (p *Pipeline[E]) Score(e E, dst []float64) ([]float64, error) {
+	if p.opts.Mode != Eager {
+		return dst, ErrNotEager
+	}
+	return p.process(e, 0, dst, true)
+}
+
+func (p *Pipeline[E]) usable() error {
+	switch {
+	case p.closed:
+		return ErrClosed
+	case p.err != nil:
+		return p.err
+	}
+	return nil
+}
+
+// process is the core step. now is the live clock (0: none).
+func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]float64, error) {
+	if err := p.usable(); err != nil {
+		return dst, err
+	}
+	seq := p.seen
+	p.seen++
+	if seq < p.reread {
+		return dst, p.reconsume(e, seq)
+	}
+	p.c.events++
+	if p.flushed {
+		p.c.late++
+		return dst, ErrFlushed
+	}
+	if err := p.extract(e, seq, now); err != nil {
+		return dst, err
+	}
+	t := p.in.t
+	late := t < p.wm
+	if late {
+		p.c.late++
+		switch p.opts.Lateness {
+		case DropLate:
+			return dst, ErrLate
+		case DivertLate:
+			p.spec.OnLate(e)
+			return dst, ErrLate
+		}
+	}
+	if !p.hasMax || t > p.maxT {
+		p.hasMax, p.maxT = true, t
+	}
+	if p.opts.Mode == Eager || late {
+		if err := p.apply(&p.in); err != nil {
+			return dst, err
+		}
+		p.valuesAt(&p.in, p.vals)
+		p.emit(seq, t, e, late)
+		if wantVals {
+			dst = append(dst, p.vals...)
+		}
+	} else {
+		heap.Push(&p.held, &held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+	}
+	p.raiseWatermark(satSub(p.maxT, int64(p.opts.MaxDisorder)))
+	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
+		if err := p.Commit(nil); err != nil {
+			return dst, err
+		}
+	}
+	return dst, p.err
+}
+
+// reconsume handles an event re-read after a restart (seq < reread): it
+// was counted before, and either handled (time below the stored
+// watermark, or rejected) or still held; held ones are held again.
+func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
+	if _, found := slices.BinarySearch(p.futureRejected, seq); found {
+		return nil
+	}
+	if err := p.extract(e, seq, 0); err != nil {
+		return nil // rejected the first time too; already counted
+	}
+	if p.opts.Mode == Settled && p.in.t >= p.wm {
+		heap.Push(&p.held, &held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+	}
+	return nil
+}
+
+// extract fills p.in from e and validates it. Nothing is touched on error
+// except the rejection counters.
+func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
+	t := p.spec.Time(e)
+	p.in.t = t
+	reject := func(r Reason, feature string) error {
+		if seq >= p.reread {
+			p.c.rejected[r]++
+		}
+		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature}
+	}
+	if t == 0 {
+		return reject(ZeroTime, "")
+	}
+	skew := int64(p.opts.FutureSkew)
+	if (p.hasMax && t > satAdd(p.maxT, skew)) || (now != 0 && t > satAdd(now, skew)) {
+		if seq >= p.reread {
+			p.futureRejected = append(p.futureRejected, seq)
+		}
+		return reject(FutureTime, "")
+	}
+	for i, es := range p.ents {
+		key := es.ent.Key(e)
+		p.in.keys[i] = key
+		for j := range es.ent.Features {
+			f := &es.ent.Features[j]
+			fi := es.first + j
+			on := key != "" && (f.Where == nil || f.Where(e))
+			p.in.on[fi] = on
+			p.in.v[fi], p.in.item[fi] = 0, 0
+			if !on {
+				continue
+			}
+			switch f.Kind.input() {
+			case inputValue:
+				v := 1.0
+				if f.Value != nil {
+					v = f.Value(e)
+				}
+				if math.IsNaN(v) || math.IsInf(v, 0) {
+					return reject(BadValue, p.names[fi])
+				}
+				p.in.v[fi] = v
+			case inputItem:
+				if f.Item != nil {
+					p.in.item[fi] = hashItem(f.Item(e))
+				}
+			}
+		}
+	}
+	return nil
+}
+
+// apply updates the records of every entity the event names.
+func (p *Pipeline[E]) apply(in *inputs) error {
+	for i, es := range p.ents {
+		key := in.keys[i]
+		if key == "" || !slices.Contains(in.on[es.first:es.first+len(es.kinds)], true) {
+			continue
+		}
+		sl, err := es.table.Get(key)
+		if err != nil {
+			p.err = err
+			return err
+		}
+		if sl == nil {
+			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
+		}
+		rec := sl.Value
+		for j, a := range rec.aggs {
+			fi := es.first + j
+			if in.on[fi] && !a.add(in.t, in.v[fi], in.item[fi]) {
+				p.c.tooOld++
+			}
+		}
+		rec.last = max(rec.last, in.t)
+		es.table.Touch(sl)
+	}
+	p.c.applied++
+	if err := p.store.Err(); err != nil {
+		p.err = err
+		return err
+	}
+	return nil
+}
+
+// valuesAt writes the features of the event described by in, as of its
+// time, to out.
+func (p *Pipeline[E]) valuesAt(in *inputs, out []float64) {
+	for i, es := range p.ents {
+		key := in.keys[i]
+		aggs := es.zero
+		if key == "" {
+			for j := range es.kinds {
+				out[es.first+j] = math.NaN()
+			}
+			continue
+		}
+		sl, err := es.table.Get(key)
+		if err != nil {
+			p.err = err
+		}
+		if sl != nil {
+			aggs = sl.Value.aggs
+		}
+		for j, a := range aggs {
+			t := in.t
+			if es.ent.Features[j].BeforeEvent {
+				t--
+			}
+			out[es.first+j] = a.at(t)
+		}
+	}
+}
+
+func (p *Pipeline[E]) emit(seq uint64, t int64, e E, late bool) {
+	p.c.emitted++
+	if p.spec.Emit != nil {
+		p.spec.Emit(Row[E]{Seq: seq, Time: t, Event: e, Late: late, Values: p.vals})
+	}
+}
+
+// raiseWatermark moves the watermark up to w (never down) and, in Settled
+// mode, applies and emits every held event it passes.
+func (p *Pipeline[E]) raiseWatermark(w int64) {
+	if w <= p.wm {
+		return
+	}
+	p.wm = w
+	for p.err == nil && p.held.Len() > 0 && p.held[0].in.t < p.wm {
+		// Apply every event of the earliest timestamp before emitting any
+		// of them, so each row covers all events at its time.
+		t := p.held[0].in.t
+		p.batch = p.batch[:0]
+		for p.held.Len() > 0 && p.held[0].in.t == t {
+			p.batch = append(p.batch, heap.Pop(&p.held).(*held[E]))
+		}
+		for _, h := range p.batch {
+			if p.apply(&h.in) != nil {
+				return
+			}
+		}
+		for _, h := range p.batch {
+			p.valuesAt(&h.in, p.vals)
+			p.emit(h.seq, t, h.e, false)
+		}
+		clear(p.batch)
+	}
+}
+
+// Advance raises the watermark to w if w is higher, emitting the Settled
+// rows it passes. Live mode calls it when the source is idle; events below
+// the new watermark become late.
+func (p *Pipeline[E]) Advance(w int64) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	p.raiseWatermark(w)
+	return p.err
+}
+
+// Flush raises the watermark to +infinity, emitting every held row: the
+// end of a finite source. Later events are refused with ErrFlushed.
+func (p *Pipeline[E]) Flush() error {
+	if err := p.Advance(math.MaxInt64); err != nil {
+		return err
+	}
+	p.flushed = true
+	return nil
+}
+
+// Commit durably stores all state changed since the last commit together
+// with the source position (and the caller's cursor, if not nil; nil keeps
+// the previous one), in one synced batch.
+func (p *Pipeline[E]) Commit(cursor []byte) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	m := state.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
+	if cursor == nil {
+		m.Cursor = p.store.Mark().Cursor
+	}
+	for _, h := range p.held {
+		m.Resume = min(m.Resume, h.seq)
+	}
+	// Only rejections at or after the resume point can be re-read.
+	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
+	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	m.Extra = p.progress().append(nil)
+	if err := p.store.Commit(m); err != nil {
+		p.err = err
+		return err
+	}
+	p.lastCommitSeen = p.seen
+	return nil
+}
+
+// Close commits (unless the pipeline failed) and closes the store.
+func (p *Pipeline[E]) Close() error {
+	if p.closed {
+		return nil
+	}
+	var err error
+	if p.err == nil {
+		err = p.Commit(nil)
+	}
+	p.closed = true
+	return errors.Join(err, p.store.Close())
+}
+
+// Store exposes the pipeline's store for maintenance and inspection.
+func (p *Pipeline[E]) Store() *state.Store { return p.store }
+
+// heldHeap orders held events canonically: by time, then by a hash of the
+// event's extracted inputs (an order-free tie-break: two events with equal
+// time and hash have identical inputs, so their order cannot change state),
+// then by sequence number so heap order is total.
+type heldHeap[E any] []*held[E]
+
+type held[E any] struct {
+	seq uint64
+	tie uint64
+	e   E
+	in  inputs
+}
+
+func (h heldHeap[E]) Len() int { return len(h) }
+func (h heldHeap[E]) Less(i, j int) bool {
+	a, b := h[i], h[j]
+	if a.in.t != b.in.t {
+		return a.in.t < b.in.t
+	}
+	if a.tie != b.tie {
+		return a.tie < b.tie
+	}
+	return a.seq < b.seq
+}
+func (h heldHeap[E]) Swap(i, j int) { h[i], h[j] = h[j], h[i] }
+func (h *heldHeap[E]) Push(x any)   { *h = append(*h, x.(*held[E])) }
+func (h *heldHeap[E]) Pop() any {
+	old := *h
+	x := old[len(old)-1]
+	old[len(old)-1] = nil
+	*h = old[:len(old)-1]
+	return x
+}
+
+func satAdd(a, b int64) int64 {
+	if b > 0 && a > math.MaxInt64-b {
+		return math.MaxInt64
+	}
+	if b < 0 && a < math.MinInt64-b {
+		return math.MinInt64
+	}
+	return a + b
+}
+
+func satSub(a, b int64) int64 { return satAdd(a, -b) }

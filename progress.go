@@ -1,0 +1,173 @@
+package tallyward
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math"
+
+	"github.com/tallyward/tallyward/internal/wire"
+	"github.com/tallyward/tallyward/state"
+)
+
+// counters are the pipeline's running totals; they are committed with the
+// state so that Stats survive a restart exactly.
+type counters struct {
+	events   uint64 // source events consumed (not counting re-reads)
+	applied  uint64 // events applied to state
+	emitted  uint64 // rows emitted
+	late     uint64 // events below the watermark on arrival
+	tooOld   uint64 // feature updates an aggregate refused as older than it keeps
+	rejected [numReasons]uint64
+}
+
+// progress is the pipeline's part of a commit Mark (Mark.Extra).
+type progress struct {
+	hasMax         bool
+	maxT           int64
+	flushed        bool
+	c              counters
+	futureRejected []uint64
+}
+
+const progressVersion1 = 1
+
+func (p *Pipeline[E]) progress() progress {
+	return progress{hasMax: p.hasMax, maxT: p.maxT, flushed: p.flushed, c: p.c, futureRejected: p.futureRejected}
+}
+
+// append encodes pr:
+//
+//	byte     version (1)
+//	byte     flags: 1 = has newest time, 2 = flushed
+//	varint   newest event time
+//	uvarint  events, applied, emitted, late, tooOld
+//	uvarint  number of reasons r, then r uvarint rejection counts
+//	uvarint  number of future-rejected seqs k, then k uvarint deltas
+func (pr progress) append(dst []byte) []byte {
+	dst = append(dst, progressVersion1)
+	var flags byte
+	if pr.hasMax {
+		flags |= 1
+	}
+	if pr.flushed {
+		flags |= 2
+	}
+	dst = append(dst, flags)
+	dst = binary.AppendVarint(dst, pr.maxT)
+	for _, v := range []uint64{pr.c.events, pr.c.applied, pr.c.emitted, pr.c.late, pr.c.tooOld} {
+		dst = binary.AppendUvarint(dst, v)
+	}
+	dst = binary.AppendUvarint(dst, numReasons)
+	for _, v := range pr.c.rejected {
+		dst = binary.AppendUvarint(dst, v)
+	}
+	dst = binary.AppendUvarint(dst, uint64(len(pr.futureRejected)))
+	prev := uint64(0)
+	for _, s := range pr.futureRejected {
+		dst = binary.AppendUvarint(dst, s-prev)
+		prev = s
+	}
+	return dst
+}
+
+func (pr *progress) decode(b []byte) error {
+	d := wire.Decoder{B: b}
+	if v := d.Byte(); d.Err == nil && v != progressVersion1 {
+		return fmt.Errorf("%w: progress version %d", state.ErrCorrupt, v)
+	}
+	var out progress
+	flags := d.Byte()
+	out.hasMax, out.flushed = flags&1 != 0, flags&2 != 0
+	out.maxT = d.Varint()
+	for _, v := range []*uint64{&out.c.events, &out.c.applied, &out.c.emitted, &out.c.late, &out.c.tooOld} {
+		*v = d.Uvarint()
+	}
+	nr := d.Uvarint()
+	for i := uint64(0); i < nr && d.Err == nil; i++ {
+		v := d.Uvarint()
+		if i < numReasons {
+			out.c.rejected[i] = v
+		}
+	}
+	k := d.Uvarint()
+	if d.Err == nil && k > uint64(len(d.B)) {
+		return fmt.Errorf("%w: progress: %d future-rejected seqs in %d bytes", state.ErrCorrupt, k, len(d.B))
+	}
+	prev := uint64(0)
+	for i := uint64(0); i < k && d.Err == nil; i++ {
+		prev += d.Uvarint()
+		out.futureRejected = append(out.futureRejected, prev)
+	}
+	if err := d.Finish(); err != nil {
+		return fmt.Errorf("%w: progress: %w", state.ErrCorrupt, err)
+	}
+	*pr = out
+	return nil
+}
+
+// restore resumes from a stored Mark.
+func (p *Pipeline[E]) restore(m state.Mark) error {
+	if len(m.Extra) == 0 {
+		return nil
+	}
+	var pr progress
+	if err := pr.decode(m.Extra); err != nil {
+		return err
+	}
+	p.hasMax, p.maxT, p.flushed, p.c, p.futureRejected = pr.hasMax, pr.maxT, pr.flushed, pr.c, pr.futureRejected
+	p.wm = m.Watermark
+	p.seen = m.Resume
+	p.reread = m.Seen
+	p.lastCommitSeen = m.Seen
+	return nil
+}
+
+// Stats is a snapshot of a pipeline's counters and gauges.
+type Stats struct {
+	Events   uint64 // source events consumed
+	Applied  uint64 // events applied to state
+	Emitted  uint64 // rows emitted
+	Late     uint64 // events below the watermark on arrival (any policy)
+	TooOld   uint64 // feature updates refused as older than an aggregate keeps
+	Rejected map[Reason]uint64
+	Held     int   // Settled: events waiting for the watermark
+	Newest   int64 // newest event time seen (0 if none)
+	// Watermark is the current watermark; WatermarkLag is Newest minus it
+	// (math.MaxInt64 before any event has advanced it).
+	Watermark    int64
+	WatermarkLag int64
+	Seen         uint64 // sequence number of the next event
+	CachedKeys   int    // entity records held in memory
+	CachedBytes  int64  // their approximate memory
+	CacheHits    uint64
+	CacheMisses  uint64
+	Commits      uint64 // commits since Open
+	DiskBytes    uint64 // Pebble's estimate of the store's size
+}
+
+// Stats returns the current counters. It costs a few dozen loads and one
+// small map allocation.
+func (p *Pipeline[E]) Stats() Stats {
+	s := Stats{
+		Events: p.c.events, Applied: p.c.applied, Emitted: p.c.emitted, Late: p.c.late, TooOld: p.c.tooOld,
+		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, Seen: p.seen,
+		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
+	}
+	for r, n := range p.c.rejected {
+		s.Rejected[Reason(r)] = n
+	}
+	if p.hasMax {
+		s.Newest = p.maxT
+	}
+	s.WatermarkLag = math.MaxInt64
+	if p.hasMax && p.wm != math.MinInt64 && p.wm != math.MaxInt64 {
+		s.WatermarkLag = p.maxT - p.wm
+	}
+	for _, es := range p.ents {
+		h, m, _ := es.table.CacheStats()
+		s.CacheHits += h
+		s.CacheMisses += m
+		s.CachedKeys += es.table.Len()
+	}
+	return s
+}

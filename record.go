@@ -1,0 +1,95 @@
+package tallyward
+
+import (
+	"encoding/binary"
+	"errors"
+	"fmt"
+
+	"github.com/tallyward/tallyward/internal/wire"
+)
+
+// record is the stored state of one entity key: every feature of its
+// entity, so an event costs one lookup per entity.
+type record struct {
+	// last is the newest event time applied to this record.
+	last int64
+	// aggs holds one aggregate per feature of the entity, in definition
+	// order. Invariant: len(aggs) == len(entity.Features).
+	aggs []aggregate
+}
+
+const recordVersion1 = 1
+
+// errRecord is wrapped by every record decoding error.
+var errRecord = errors.New("entity record")
+
+// AppendBinary encodes r:
+//
+//	byte     version (1)
+//	varint   last event time applied
+//	uvarint  number of features n
+//	n times: uvarint length, then that many bytes of the feature's own
+//	         versioned encoding (package window or sketch)
+func (r *record) AppendBinary(dst []byte) ([]byte, error) {
+	dst = append(dst, recordVersion1)
+	dst = binary.AppendVarint(dst, r.last)
+	dst = binary.AppendUvarint(dst, uint64(len(r.aggs)))
+	for _, a := range r.aggs {
+		// Encode after a one-byte length guess and shift if the length
+		// needs more bytes, so no scratch buffer is needed.
+		at := len(dst)
+		dst = append(dst, 0)
+		var err error
+		dst, err = a.AppendBinary(dst)
+		if err != nil {
+			return dst, err
+		}
+		n := len(dst) - at - 1
+		if n < 0x80 {
+			dst[at] = byte(n)
+			continue
+		}
+		var lenbuf [binary.MaxVarintLen64]byte
+		k := binary.PutUvarint(lenbuf[:], uint64(n))
+		dst = append(dst, lenbuf[:k-1]...)
+		copy(dst[at+k:], dst[at+1:at+1+n])
+		copy(dst[at:], lenbuf[:k])
+	}
+	return dst, nil
+}
+
+// SizeBytes estimates r's heap footprint.
+func (r *record) SizeBytes() int {
+	n := 48 + 16*len(r.aggs)
+	for _, a := range r.aggs {
+		n += a.SizeBytes()
+	}
+	return n
+}
+
+// decodeRecord decodes b into fresh aggregates made by fresh. It returns an
+// error, never panics, on any malformed input.
+func decodeRecord(b []byte, fresh func() []aggregate) (*record, error) {
+	d := wire.Decoder{B: b}
+	if v := d.Byte(); d.Err == nil && v != recordVersion1 {
+		return nil, fmt.Errorf("%w: unknown version %d", errRecord, v)
+	}
+	r := &record{last: d.Varint(), aggs: fresh()}
+	n := d.Uvarint()
+	if d.Err == nil && n != uint64(len(r.aggs)) {
+		return nil, fmt.Errorf("%w: holds %d features, definition has %d", errRecord, n, len(r.aggs))
+	}
+	for i := range r.aggs {
+		blob := d.Bytes(d.Len())
+		if d.Err != nil {
+			break
+		}
+		if err := r.aggs[i].UnmarshalBinary(blob); err != nil {
+			return nil, fmt.Errorf("%w: feature %d: %w", errRecord, i, err)
+		}
+	}
+	if err := d.Finish(); err != nil {
+		return nil, fmt.Errorf("%w: %w", errRecord, err)
+	}
+	return r, nil
+}
