@@ -1,0 +1,478 @@
+package sketch
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"slices"
+)
+
+// DistinctSpec shapes a windowed distinct count. The zero value of each
+// optional field means its default.
+type DistinctSpec struct {
+	// Window is the counted interval in nanoseconds: a query at t counts the
+	// Window/Resolution most recent panes up to and including pane(t), the
+	// newest one cut at t. Must be a positive multiple of Resolution and at
+	// most 2^61. Required; no default.
+	Window int64
+	// Resolution is the pane width in nanoseconds; pane(t) = floor(t /
+	// Resolution), aligned to the Unix epoch. The trailing edge of a query's
+	// window is exact to one pane (see Distinct). Required; no default.
+	Resolution int64
+	// Horizon is how far behind the newest added time adds and as-of queries
+	// stay exact, in nanoseconds: the pipeline passes its allowed disorder.
+	// Window/Resolution + ceil(Horizon/Resolution) + 1 must not exceed 512.
+	// Default 0.
+	Horizon int64
+	// Precision p gives 2^p HyperLogLog registers once the exact set is
+	// exceeded; relative standard error 1.04/sqrt(2^p). Range 4..18.
+	// Default 12 (1.625%).
+	Precision uint8
+	// ExactLimit is the number of distinct items kept exactly (with exact
+	// times) before the summary switches to sliding registers. Range
+	// 1..4096. Default 128.
+	ExactLimit int
+}
+
+const (
+	defaultDistinctPrecision = 12
+	defaultExactLimit        = 128
+	maxExactLimit            = 4096
+	maxSpecDuration          = int64(1) << 61
+	// Times outside [minTime, maxTime] are rejected by Add and answered 0
+	// by DistinctAt, so pane arithmetic cannot overflow.
+	minTime = -(int64(1) << 62)
+	maxTime = int64(1) << 62
+)
+
+// withDefaults returns s with zero optional fields set to their defaults.
+func (s DistinctSpec) withDefaults() DistinctSpec {
+	if s.Precision == 0 {
+		s.Precision = defaultDistinctPrecision
+	}
+	if s.ExactLimit == 0 {
+		s.ExactLimit = defaultExactLimit
+	}
+	return s
+}
+
+// Validate reports every problem with s at once, joined, each wrapping
+// ErrInvalidSpec. Zero optional fields are valid (they mean the default).
+func (s DistinctSpec) Validate() error {
+	s = s.withDefaults()
+	var errs []error
+	bad := func(format string, args ...any) {
+		errs = append(errs, fmt.Errorf("distinct spec: "+format+": %w", append(args, ErrInvalidSpec)...))
+	}
+	if s.Resolution <= 0 || s.Resolution > maxSpecDuration {
+		bad("Resolution %d must be in [1, 2^61]", s.Resolution)
+	}
+	if s.Window <= 0 || s.Window > maxSpecDuration {
+		bad("Window %d must be in [1, 2^61]", s.Window)
+	}
+	if s.Horizon < 0 || s.Horizon > maxSpecDuration {
+		bad("Horizon %d must be in [0, 2^61]", s.Horizon)
+	}
+	if s.Resolution > 0 && s.Window > 0 && s.Horizon >= 0 {
+		if s.Window%s.Resolution != 0 {
+			bad("Window %d is not a multiple of Resolution %d", s.Window, s.Resolution)
+		} else if span := s.Window/s.Resolution + ceilDiv(s.Horizon, s.Resolution) + 1; span > maxSpan {
+			bad("Window/Resolution + ceil(Horizon/Resolution) + 1 = %d exceeds %d panes", span, maxSpan)
+		}
+	}
+	if s.Precision < 4 || s.Precision > 18 {
+		bad("Precision %d must be in [4, 18]", s.Precision)
+	}
+	if s.ExactLimit < 1 || s.ExactLimit > maxExactLimit {
+		bad("ExactLimit %d must be in [1, %d]", s.ExactLimit, maxExactLimit)
+	}
+	return errors.Join(errs...)
+}
+
+func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }
+
+// floorDiv is floor(a/b) for b > 0.
+func floorDiv(a, b int64) int64 {
+	q := a / b
+	if a%b != 0 && a < 0 {
+		q--
+	}
+	return q
+}
+
+// Distinct is a windowed distinct count of 64-bit item hashes over event
+// time.
+//
+// Window semantics: DistinctAt(t) counts the items added with a time τ such
+// that τ <= t and pane(τ) >= pane(t) - Window/Resolution + 1. That is the
+// exact window (t-Window, t] minus a piece at its trailing edge shorter than
+// one pane: items in (t-Window, (pane(t)-K+1)*Resolution) are not counted,
+// so the pane window never counts more than the exact one and never misses
+// anything more recent than one pane's width past the exact start.
+//
+// Exactness: while at most ExactLimit distinct items are live, the count is
+// exact (items are identified by the top 32 bits of their hash, so two live
+// items collide with probability below n^2/2^33). Above it the count is a
+// HyperLogLog estimate from sliding registers with relative standard error
+// RelativeError(). Queries at t >= Newest()-Horizon and adds at any time
+// whose pane is still retained are handled as above; items with time newer
+// than t are never counted. Queries at t < Newest()-Horizon are outside the
+// contract: they may miss expired items and, in sketch mode, count items of
+// t's own pane newer than t.
+//
+// Cost: Add is O(ExactLimit) in exact mode (a sorted insert) and O(1)
+// amortised in sketch mode; DistinctAt is O(live entries) in exact mode and
+// O(entries within Horizon) plus a cached O(64) estimate in sketch mode,
+// with an O(2^p) rebuild the first time a new window start is queried (once
+// per pane boundary). Not safe for concurrent use, including concurrent
+// queries.
+type Distinct struct {
+	spec   DistinctSpec // defaults applied
+	k      int64        // panes per window
+	has    bool
+	newest int64
+
+	// Exact mode (regs == nil). Invariant: sorted by (fp, t), no duplicate
+	// pairs; nfp >= the number of distinct fp with an entry whose pane is
+	// retained.
+	exact []exactEntry
+	nfp   int
+
+	// Sketch mode.
+	regs     *slidingRegs
+	tail     []tailEntry // sorted by (t, key), distinct; t > newest-Horizon
+	views    [2]regView
+	useClock uint64
+	scratch  []uint32
+
+	// Query cache: the last answer, valid until the next mutation.
+	cacheOK bool
+	cacheT  int64
+	cacheV  uint64
+}
+
+type exactEntry struct {
+	fp uint32
+	t  int64
+}
+
+type tailEntry struct {
+	t   int64
+	key uint32
+}
+
+// NewDistinct returns an empty windowed distinct count for spec, or an
+// error wrapping ErrInvalidSpec.
+func NewDistinct(spec DistinctSpec) (*Distinct, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
+	}
+	spec = spec.withDefaults()
+	return &Distinct{spec: spec, k: spec.Window / spec.Resolution}, nil
+}
+
+// Spec returns the spec with defaults applied.
+func (d *Distinct) Spec() DistinctSpec { return d.spec }
+
+// Newest returns the largest time added so far, and false if nothing was.
+func (d *Distinct) Newest() (int64, bool) { return d.newest, d.has }
+
+// Exact reports whether the summary is still in exact mode.
+func (d *Distinct) Exact() bool { return d.regs == nil }
+
+// RelativeError returns the relative standard error of DistinctAt: 0 while
+// exact, 1.04/sqrt(2^p) once in sketch mode (Flajolet et al., AofA 2007).
+// The pane trailing edge (see Distinct) is not included.
+func (d *Distinct) RelativeError() float64 {
+	if d.regs == nil {
+		return 0
+	}
+	return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision))
+}
+
+func (d *Distinct) pane(t int64) int64 { return floorDiv(t, d.spec.Resolution) }
+
+// floorPane is the oldest pane any query at t >= newest-Horizon reads.
+func (d *Distinct) floorPane() int64 {
+	return d.pane(d.newest-d.spec.Horizon) - d.k + 1
+}
+
+// Add records item h at time t. It returns false, changing nothing, if t is
+// outside ±2^62 or if t's pane is older than every window a query at or
+// after Newest()-Horizon can read (such an add could never be counted).
+func (d *Distinct) Add(t int64, h uint64) bool {
+	if t < minTime || t > maxTime {
+		return false
+	}
+	if !d.has || t > d.newest {
+		d.newest, d.has = t, true
+	}
+	if d.pane(t) < d.floorPane() {
+		return false
+	}
+	d.cacheOK = false
+	if d.regs != nil {
+		d.addSketch(t, fpKey(uint32(h>>32), d.spec.Precision))
+		return true
+	}
+	d.addExact(exactEntry{fp: uint32(h >> 32), t: t})
+	return true
+}
+
+func cmpExact(a, b exactEntry) int {
+	if a.fp != b.fp {
+		if a.fp < b.fp {
+			return -1
+		}
+		return 1
+	}
+	switch {
+	case a.t < b.t:
+		return -1
+	case a.t > b.t:
+		return 1
+	}
+	return 0
+}
+
+func (d *Distinct) addExact(e exactEntry) {
+	i, found := slices.BinarySearchFunc(d.exact, e, cmpExact)
+	if found {
+		return
+	}
+	newFP := (i == 0 || d.exact[i-1].fp != e.fp) && (i == len(d.exact) || d.exact[i].fp != e.fp)
+	d.exact = slices.Insert(d.exact, i, e)
+	if newFP {
+		d.nfp++
+	}
+	if d.nfp > d.spec.ExactLimit || len(d.exact) > 2*d.spec.ExactLimit+16 {
+		d.normalizeExact()
+		if d.nfp > d.spec.ExactLimit {
+			d.promote()
+		}
+	}
+}
+
+// normalizeExact drops entries no allowed query can read, rounds settled
+// times (at or before newest-Horizon) down to their pane start, and keeps
+// only the latest settled entry of each item. None of this changes an
+// answer within the contract, so the encoding and the promotion point
+// depend only on what was added.
+func (d *Distinct) normalizeExact() {
+	floorT := d.floorPane() * d.spec.Resolution
+	settled := d.newest - d.spec.Horizon
+	out := d.exact[:0]
+	nfp := 0
+	for i := 0; i < len(d.exact); {
+		fp := d.exact[i].fp
+		j := i
+		var best int64
+		haveBest := false
+		for ; j < len(d.exact) && d.exact[j].fp == fp; j++ {
+			e := d.exact[j]
+			if e.t < floorT {
+				continue
+			}
+			if e.t <= settled {
+				best, haveBest = d.pane(e.t)*d.spec.Resolution, true
+			}
+		}
+		start := len(out)
+		if haveBest {
+			out = append(out, exactEntry{fp, best})
+		}
+		for ; i < j; i++ {
+			if e := d.exact[i]; e.t > settled && e.t >= floorT {
+				out = append(out, e)
+			}
+		}
+		if len(out) > start {
+			nfp++
+		}
+	}
+	clear(d.exact[len(out):])
+	d.exact = out
+	d.nfp = nfp
+}
+
+// promote moves the exact entries into sliding registers.
+func (d *Distinct) promote() {
+	floor := d.floorPane()
+	d.regs = newSlidingRegs(d.spec.Precision, floor)
+	for _, e := range d.exact {
+		if d.pane(e.t) >= floor {
+			d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+		}
+	}
+	d.exact, d.nfp = nil, 0
+}
+
+func cmpTail(a, b tailEntry) int {
+	switch {
+	case a.t < b.t:
+		return -1
+	case a.t > b.t:
+		return 1
+	case a.key < b.key:
+		return -1
+	case a.key > b.key:
+		return 1
+	}
+	return 0
+}
+
+func (d *Distinct) addSketch(t int64, key uint32) {
+	settled := d.newest - d.spec.Horizon
+	if t > settled {
+		i, found := slices.BinarySearchFunc(d.tail, tailEntry{t, key}, cmpTail)
+		if !found {
+			d.tail = slices.Insert(d.tail, i, tailEntry{t, key})
+		}
+	} else {
+		d.fold(d.pane(t), key)
+	}
+	n := 0
+	for n < len(d.tail) && d.tail[n].t <= settled {
+		d.fold(d.pane(d.tail[n].t), d.tail[n].key)
+		n++
+	}
+	if n > 0 {
+		d.tail = slices.Delete(d.tail, 0, n)
+	}
+}
+
+// fold applies a settled (pane, key) to the registers and the cached views.
+func (d *Distinct) fold(pane int64, key uint32) {
+	floor := d.floorPane()
+	if pane < floor {
+		return
+	}
+	r := d.regs
+	if pane-r.base > maxPaneOff {
+		r.rebase(floor)
+	}
+	j, rho := key>>6, uint8(key&63)
+	if !r.insert(j, pane, rho) {
+		return
+	}
+	for i := range d.views {
+		v := &d.views[i]
+		if v.valid && pane >= v.start && rho > v.regs[j] {
+			v.hist[v.regs[j]]--
+			v.hist[rho]++
+			v.regs[j] = rho
+			v.estOK = false
+		}
+	}
+}
+
+// view returns the register view for a window starting at pane start,
+// building it (O(2^p)) if neither cached view matches.
+func (d *Distinct) view(start int64) *regView {
+	d.useClock++
+	slot := 0
+	for i := range d.views {
+		if d.views[i].valid && d.views[i].start == start {
+			d.views[i].stamps = d.useClock
+			return &d.views[i]
+		}
+		if !d.views[i].valid || d.views[i].stamps < d.views[slot].stamps {
+			slot = i
+		}
+	}
+	v := &d.views[slot]
+	m := 1 << d.spec.Precision
+	if len(v.regs) != m {
+		v.regs = make([]uint8, m)
+	}
+	v.hist = [64]uint32{}
+	for j := range v.regs {
+		x := d.regs.valueFrom(uint32(j), start)
+		v.regs[j] = x
+		v.hist[x]++
+	}
+	v.start, v.valid, v.estOK, v.stamps = start, true, false, d.useClock
+	return v
+}
+
+// DistinctAt returns the number of distinct items in the window ending at
+// t (see Distinct for the window and the error). It never counts an item
+// added with a time newer than t.
+func (d *Distinct) DistinctAt(t int64) uint64 {
+	if !d.has || t < minTime || t > maxTime {
+		return 0
+	}
+	if d.cacheOK && d.cacheT == t {
+		return d.cacheV
+	}
+	start := d.pane(t) - d.k + 1
+	startT := start * d.spec.Resolution
+	var n uint64
+	if d.regs == nil {
+		var last uint32
+		counted := false
+		for _, e := range d.exact {
+			if e.t > t || e.t < startT || (counted && e.fp == last) {
+				continue
+			}
+			n++
+			last, counted = e.fp, true
+		}
+	} else {
+		n = d.sketchAt(t, start, startT)
+	}
+	d.cacheOK, d.cacheT, d.cacheV = true, t, n
+	return n
+}
+
+func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
+	v := d.view(start)
+	keys := d.scratch[:0]
+	for _, e := range d.tail {
+		if e.t > t {
+			break
+		}
+		if e.t >= startT && uint8(e.key&63) > v.regs[e.key>>6] {
+			keys = append(keys, e.key)
+		}
+	}
+	d.scratch = keys
+	if len(keys) == 0 {
+		if !v.estOK {
+			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+		}
+		return uint64(v.est + 0.5)
+	}
+	// Overlay the unsettled items: per register, the largest rho wins.
+	slices.Sort(keys)
+	hist := v.hist
+	prev := ^uint32(0)
+	for i := len(keys) - 1; i >= 0; i-- {
+		k := keys[i]
+		j := k >> 6
+		if j == prev {
+			continue // a larger rho of the same register came first
+		}
+		prev = j
+		hist[v.regs[j]]--
+		hist[k&63]++
+	}
+	return uint64(estimateHist(&hist, d.spec.Precision) + 0.5)
+}
+
+// Reset empties the summary, keeping its spec.
+func (d *Distinct) Reset() {
+	*d = Distinct{spec: d.spec, k: d.k, exact: d.exact[:0]}
+}
+
+// SizeBytes approximates the heap footprint in bytes.
+func (d *Distinct) SizeBytes() int {
+	n := 200 + 16*cap(d.exact) + 16*cap(d.tail) + 4*cap(d.scratch)
+	if d.regs != nil {
+		n += d.regs.sizeBytes()
+	}
+	for i := range d.views {
+		n += cap(d.views[i].regs)
+	}
+	return n
+}

@@ -1,0 +1,406 @@
+package sketch
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math/bits"
+)
+
+// Merge adds every item of o to d, as if o's adds had been made to d. Both
+// must have the same spec (ErrIncompatible otherwise, d unchanged). The
+// result does not depend on the order of merges and adds: exact entries and
+// sliding registers are both unions.
+func (d *Distinct) Merge(o *Distinct) error {
+	if d.spec != o.spec {
+		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.spec, o.spec, ErrIncompatible)
+	}
+	if !o.has {
+		return nil
+	}
+	if !d.has || o.newest > d.newest {
+		d.newest, d.has = o.newest, true
+	}
+	d.cacheOK = false
+	floor := d.floorPane()
+	if o.regs == nil {
+		for _, e := range o.exact {
+			if d.pane(e.t) < floor {
+				continue
+			}
+			if d.regs != nil {
+				d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+			} else {
+				d.addExact(e)
+			}
+		}
+		if d.regs != nil {
+			d.addSketchSettle()
+		}
+		return nil
+	}
+	if d.regs == nil {
+		d.normalizeExact()
+		d.promote()
+	}
+	var arr [64]uint16
+	for j := range o.regs.words {
+		for _, e := range o.regs.load(uint32(j), arr[:0]) {
+			d.fold(o.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
+		}
+	}
+	for _, e := range o.tail {
+		d.addSketch(e.t, e.key)
+	}
+	d.addSketchSettle()
+	return nil
+}
+
+// addSketchSettle folds tail entries that newest has moved past.
+func (d *Distinct) addSketchSettle() {
+	settled := d.newest - d.spec.Horizon
+	n := 0
+	for n < len(d.tail) && d.tail[n].t <= settled {
+		d.fold(d.pane(d.tail[n].t), d.tail[n].key)
+		n++
+	}
+	d.tail = d.tail[n:]
+}
+
+const (
+	flagHasNewest = 1 << 0
+	flagSketch    = 1 << 1
+)
+
+// AppendBinary appends the encoding of d to dst (see UnmarshalBinary for
+// the layout). It may compact d's exact entries, which changes no answer.
+func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
+	s := d.spec
+	dst = append(dst, formatVersion1, kindDistinct)
+	dst = binary.AppendUvarint(dst, uint64(s.Window))
+	dst = binary.AppendUvarint(dst, uint64(s.Resolution))
+	dst = binary.AppendUvarint(dst, uint64(s.Horizon))
+	dst = append(dst, s.Precision)
+	dst = binary.AppendUvarint(dst, uint64(s.ExactLimit))
+	if !d.has {
+		return append(dst, 0), nil
+	}
+	flags := byte(flagHasNewest)
+	if d.regs != nil {
+		flags |= flagSketch
+	}
+	dst = append(dst, flags)
+	dst = binary.AppendVarint(dst, d.newest)
+	newestPane := d.pane(d.newest)
+	settled := d.newest - s.Horizon
+	floor := d.floorPane()
+	if d.regs == nil {
+		d.normalizeExact()
+		nSettled := 0
+		for _, e := range d.exact {
+			if e.t <= settled {
+				nSettled++
+			}
+		}
+		dst = binary.AppendUvarint(dst, uint64(nSettled))
+		if nSettled > 0 {
+			k := riceParam(nSettled)
+			ageBits := uint(bits.Len64(uint64(newestPane - floor)))
+			w := bitWriter{}
+			var prev uint32
+			for _, e := range d.exact {
+				if e.t > settled {
+					continue
+				}
+				w.rice(uint64(e.fp-prev), k)
+				w.write(uint64(newestPane-d.pane(e.t)), ageBits)
+				prev = e.fp
+			}
+			body := w.flush()
+			dst = append(dst, byte(k))
+			dst = binary.AppendUvarint(dst, uint64(len(body)))
+			dst = append(dst, body...)
+		}
+		dst = binary.AppendUvarint(dst, uint64(len(d.exact)-nSettled))
+		for _, e := range d.exact {
+			if e.t > settled {
+				dst = appendU32(dst, e.fp)
+				dst = binary.AppendUvarint(dst, uint64(d.newest-e.t))
+			}
+		}
+		return dst, nil
+	}
+	var arr [64]uint16
+	r := d.regs
+	for j := range r.words {
+		list := r.load(uint32(j), arr[:0])
+		n := 0
+		for _, e := range list {
+			if r.base+int64(e&maxPaneOff) >= floor {
+				n++
+			}
+		}
+		dst = append(dst, byte(n))
+		for _, e := range list[len(list)-n:] {
+			dst = append(dst, byte(e>>paneOffBits))
+			dst = binary.AppendUvarint(dst, uint64(newestPane-r.base-int64(e&maxPaneOff)))
+		}
+	}
+	dst = binary.AppendUvarint(dst, uint64(len(d.tail)))
+	for _, e := range d.tail {
+		dst = binary.AppendUvarint(dst, uint64(e.key))
+		dst = binary.AppendUvarint(dst, uint64(d.newest-e.t))
+	}
+	return dst, nil
+}
+
+// riceParam picks the Rice parameter for n sorted 32-bit fingerprints:
+// about log2 of the mean gap 2^32/n.
+func riceParam(n int) uint {
+	k := bits.Len64(uint64(1)<<32/uint64(n)) - 1
+	return uint(max(k, 0))
+}
+
+// UnmarshalBinary replaces d with the decoded summary, spec included. On
+// error d is unchanged.
+//
+// Version 1 layout (uvarint/varint are encoding/binary's; times in ns):
+//
+//	byte     version = 1 (ErrUnknownVersion otherwise)
+//	byte     kind = 1 (distinct)
+//	uvarint  Window, uvarint Resolution, uvarint Horizon
+//	byte     Precision, uvarint ExactLimit (the spec must pass Validate)
+//	byte     flags: bit 0 = has items, bit 1 = sketch mode; other bits 0.
+//	         If bit 0 is clear the encoding ends here and bit 1 must be 0.
+//	varint   newest: the largest time added
+//
+// Below, P = pane(newest), F = pane(newest-Horizon) - Window/Resolution + 1
+// (the oldest retained pane), S = newest - Horizon (settled time).
+// An item's fingerprint is the top 32 bits of Hash (XXH64, seed 0).
+//
+// Exact mode (bit 1 clear):
+//
+//	uvarint  n settled entries, one per fingerprint, fingerprints strictly
+//	         increasing; if n > 0:
+//	byte     Rice parameter k (0..31)
+//	uvarint  length of the bit stream in bytes, then the bit stream (MSB
+//	         first, zero padded to a byte): per entry the fingerprint minus
+//	         the previous one (the first: minus 0), Rice-coded with k, then
+//	         the pane age P - pane as a fixed field of bits.Len(P-F) bits.
+//	         The entry's time is the start of that pane; it must be <= S.
+//	uvarint  n unsettled entries, (fingerprint, time) strictly increasing:
+//	4 bytes  fingerprint, big endian
+//	uvarint  newest - time, below Horizon (time > S)
+//
+// The number of distinct fingerprints must not exceed ExactLimit.
+//
+// Sketch mode (bit 1 set), 2^Precision registers in index order:
+//
+//	byte     n frontier entries (0..33-Precision), oldest first, then n times:
+//	byte     rho, strictly decreasing, in 1..33-Precision
+//	uvarint  pane age P - pane, strictly decreasing, pane >= F
+//	uvarint  n unsettled entries, (time, key) strictly increasing:
+//	uvarint  key = register<<6 | rho
+//	uvarint  newest - time, below Horizon
+//
+// Bytes after the last field return ErrTrailingBytes; anything else
+// malformed returns ErrCorrupt.
+func (d *Distinct) UnmarshalBinary(b []byte) error {
+	const name = "distinct"
+	if err := checkHeader(b, kindDistinct, name); err != nil {
+		return err
+	}
+	r := &reader{b: b, off: 2, name: name}
+	var s DistinctSpec
+	s.Window = int64(min(r.uvarint(), 1<<62))
+	s.Resolution = int64(min(r.uvarint(), 1<<62))
+	s.Horizon = int64(min(r.uvarint(), 1<<62))
+	s.Precision = r.byte1()
+	s.ExactLimit = int(min(r.uvarint(), 1<<20))
+	flags := r.byte1()
+	if r.err != nil {
+		return r.err
+	}
+	if s.Precision == 0 || s.ExactLimit == 0 {
+		return corruptf("%s: zero Precision or ExactLimit", name)
+	}
+	if err := s.Validate(); err != nil {
+		return corruptf("%s: %v", name, err)
+	}
+	nd := &Distinct{spec: s, k: s.Window / s.Resolution}
+	if flags&^(flagHasNewest|flagSketch) != 0 || flags == flagSketch {
+		return corruptf("%s: flags %#x", name, flags)
+	}
+	if flags&flagHasNewest == 0 {
+		if err := r.done(); err != nil {
+			return err
+		}
+		*d = *nd
+		return nil
+	}
+	nd.has = true
+	nd.newest = r.varint()
+	if r.err == nil && (nd.newest < minTime || nd.newest > maxTime) {
+		r.fail("newest %d out of range", nd.newest)
+	}
+	if r.err != nil {
+		return r.err
+	}
+	var err error
+	if flags&flagSketch == 0 {
+		err = nd.decodeExact(r)
+	} else {
+		err = nd.decodeSketch(r)
+	}
+	if err != nil {
+		return err
+	}
+	if err := r.done(); err != nil {
+		return err
+	}
+	*d = *nd
+	return nil
+}
+
+func (d *Distinct) decodeExact(r *reader) error {
+	P := d.pane(d.newest)
+	F := d.floorPane()
+	S := d.newest - d.spec.Horizon
+	limit := d.spec.ExactLimit
+	n := r.count(0, uint64(limit))
+	if n > 0 {
+		k := uint(r.byte1())
+		body := r.bytesN(r.uvarint())
+		if r.err != nil {
+			return r.err
+		}
+		if k > 31 {
+			return corruptf("%s: Rice parameter %d", r.name, k)
+		}
+		ageBits := uint(bits.Len64(uint64(P - F)))
+		br := bitReader{b: body}
+		var fp uint64
+		d.exact = make([]exactEntry, 0, n)
+		for i := range n {
+			delta := br.rice(k, (1<<32)>>k)
+			age := int64(br.read(ageBits))
+			fp += delta
+			if br.bad || fp >= 1<<32 || (i > 0 && delta == 0) || age > P-F {
+				return corruptf("%s: settled entry %d", r.name, i)
+			}
+			t := (P - age) * d.spec.Resolution
+			if t > S {
+				return corruptf("%s: settled entry %d at %d after settled time %d", r.name, i, t, S)
+			}
+			d.exact = append(d.exact, exactEntry{uint32(fp), t})
+		}
+		if !br.padOK() {
+			return corruptf("%s: settled bit stream length or padding", r.name)
+		}
+	}
+	nt := r.count(5, uint64(len(r.b)))
+	for i := range nt {
+		e := exactEntry{fp: r.u32()}
+		age := r.uvarint()
+		if r.err != nil {
+			return r.err
+		}
+		if age >= uint64(d.spec.Horizon) {
+			return corruptf("%s: unsettled entry %d age %d >= Horizon", r.name, i, age)
+		}
+		e.t = d.newest - int64(age)
+		if i > 0 {
+			if p := d.exact[len(d.exact)-1]; p.t > S && cmpExact(p, e) >= 0 {
+				return corruptf("%s: unsettled entry %d out of order", r.name, i)
+			}
+		}
+		d.exact = append(d.exact, e)
+	}
+	sortExact(d.exact)
+	for i := 1; i < len(d.exact); i++ {
+		if cmpExact(d.exact[i-1], d.exact[i]) == 0 {
+			return corruptf("%s: duplicate entry", r.name)
+		}
+	}
+	d.nfp = countFP(d.exact)
+	if d.nfp > limit {
+		return corruptf("%s: %d items exceed ExactLimit %d", r.name, d.nfp, limit)
+	}
+	return nil
+}
+
+func countFP(es []exactEntry) int {
+	n := 0
+	for i, e := range es {
+		if i == 0 || es[i-1].fp != e.fp {
+			n++
+		}
+	}
+	return n
+}
+
+func (d *Distinct) decodeSketch(r *reader) error {
+	p := d.spec.Precision
+	P := d.pane(d.newest)
+	F := d.floorPane()
+	maxRho := 33 - p
+	m := 1 << p
+	if len(r.b)-r.off < m {
+		return corruptf("%s: %d registers need at least %d bytes, %d remain", r.name, m, m, len(r.b)-r.off)
+	}
+	d.regs = newSlidingRegs(p, F)
+	var list [64]uint16
+	for j := range m {
+		n := int(r.byte1())
+		if n > int(maxRho) {
+			r.fail("register %d: %d entries", j, n)
+		}
+		prevRho, prevAge := uint8(255), uint64(1<<63)
+		l := list[:0]
+		for range n {
+			rho := r.byte1()
+			age := r.uvarint()
+			if r.err != nil {
+				return r.err
+			}
+			if rho == 0 || rho > maxRho || rho >= prevRho || age >= prevAge || age > uint64(P-F) {
+				return corruptf("%s: register %d frontier entry (rho %d, age %d)", r.name, j, rho, age)
+			}
+			prevRho, prevAge = rho, age
+			l = append(l, uint16(rho)<<paneOffBits|uint16(P-int64(age)-F))
+		}
+		if r.err != nil {
+			return r.err
+		}
+		if n > 0 {
+			d.regs.store(uint32(j), l)
+		}
+	}
+	nt := r.count(2, uint64(len(r.b)))
+	for i := range nt {
+		key := r.uvarint()
+		age := r.uvarint()
+		if r.err != nil {
+			return r.err
+		}
+		rho := key & 63
+		if key>>6 >= uint64(m) || rho == 0 || rho > uint64(maxRho) || age >= uint64(d.spec.Horizon) {
+			return corruptf("%s: unsettled entry %d (key %d, age %d)", r.name, i, key, age)
+		}
+		e := tailEntry{t: d.newest - int64(age), key: uint32(key)}
+		if i > 0 && cmpTail(d.tail[i-1], e) >= 0 {
+			return corruptf("%s: unsettled entry %d out of order", r.name, i)
+		}
+		d.tail = append(d.tail, e)
+	}
+	return r.err
+}
+
+func sortExact(es []exactEntry) {
+	// Insertion sort: the settled prefix and the unsettled suffix are each
+	// sorted already, and both are short.
+	for i := 1; i < len(es); i++ {
+		for j := i; j > 0 && cmpExact(es[j-1], es[j]) > 0; j-- {
+			es[j-1], es[j] = es[j], es[j-1]
+		}
+	}
+}
