@@ -150,8 +150,9 @@ func (r *reader) count(what string, min int) int {
 	return int(x)
 }
 
-// header checks the version byte, the kind byte and the flags byte.
-func (r *reader) header(kind byte) (flags byte) {
+// header checks the version byte, the kind byte and the flags byte, whose
+// bits outside known must be zero.
+func (r *reader) header(kind, known byte) (flags byte) {
 	if len(r.b) == 0 {
 		r.err = fmt.Errorf("%w: empty input", ErrCorrupt)
 		return 0
@@ -167,7 +168,7 @@ func (r *reader) header(kind byte) (flags byte) {
 		return 0
 	}
 	flags = r.byte1("flags")
-	if flags&^flagSeen != 0 {
+	if flags&^known != 0 {
 		r.fail("unknown flags")
 	}
 	return flags
@@ -219,3 +220,14 @@ func floorDiv(a, b int64) int64 {
 }
 
 func finite(v float64) bool { return !math.IsNaN(v) && !math.IsInf(v, 0) }
+
+// startOf is idx · width for width > 0, saturated to the int64 range.
+func startOf(idx, width int64) int64 {
+	if idx < math.MinInt64/width {
+		return math.MinInt64
+	}
+	if idx > math.MaxInt64/width {
+		return math.MaxInt64
+	}
+	return idx * width
+}

@@ -136,16 +136,7 @@ func (g *ring) SizeBytes() int {
 func (g *ring) paneOf(t int64) int64 { return floorDiv(t, g.spec.Resolution) }
 
 // paneStart is the first time of pane idx, saturated to the int64 range.
-func (g *ring) paneStart(idx int64) int64 {
-	r := g.spec.Resolution
-	if idx < math.MinInt64/r {
-		return math.MinInt64
-	}
-	if idx > math.MaxInt64/r {
-		return math.MaxInt64
-	}
-	return idx * r
-}
+func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.spec.Resolution) }
 
 func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
 
@@ -169,7 +160,7 @@ func (g *ring) add(t int64, v float64) bool {
 	}
 	c := g.cutoff()
 	if t > c {
-		g.insertRaw(event{t, v})
+		insertSorted(&g.raw, event{t, v})
 	} else {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
@@ -188,15 +179,15 @@ func (g *ring) add(t int64, v float64) bool {
 // so they fold onto the last pane or after it.
 func (g *ring) advance() {
 	c := g.cutoff()
-	k := 0
-	for raw := g.raw.live(); k < len(raw) && raw[k].t <= c; k++ {
-		p := g.paneOf(raw[k].t)
+	k := foldable(&g.raw, c)
+	for _, e := range g.raw.live()[:k] {
+		p := g.paneOf(e.t)
 		if g.panes.len() > 0 && g.panes.last().idx == p {
 			l := g.panes.last()
 			l.n++
-			l.v = g.op.merge(l.v, raw[k].v)
+			l.v = g.op.merge(l.v, e.v)
 		} else {
-			g.panes.push(pane{idx: p, n: 1, v: raw[k].v})
+			g.panes.push(pane{idx: p, n: 1, v: e.v})
 		}
 	}
 	g.raw.popFront(k)
@@ -206,19 +197,6 @@ func (g *ring) advance() {
 		g.total -= ps[k].n
 	}
 	g.panes.popFront(k)
-}
-
-func (g *ring) insertRaw(e event) {
-	raw := g.raw.live()
-	i := len(raw)
-	for i > 0 && raw[i-1].t > e.t {
-		i--
-	}
-	if i == len(raw) {
-		g.raw.push(e)
-		return
-	}
-	g.raw.insert(i, e)
 }
 
 // foldLate adds an event at or behind the cutoff to pane p >= floor.
@@ -314,16 +292,7 @@ func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
 			dst = appendFloat(dst, ps[i].v)
 		}
 	}
-	raw := g.raw.live()
-	dst = binary.AppendUvarint(dst, uint64(len(raw)))
-	prevT := g.maxT
-	for i := len(raw) - 1; i >= 0; i-- {
-		dst = binary.AppendUvarint(dst, uint64(prevT-raw[i].t))
-		prevT = raw[i].t
-		if g.op.hasValue() {
-			dst = appendFloat(dst, raw[i].v)
-		}
-	}
+	dst = appendEvents(dst, g.raw.live(), g.maxT, g.op.hasValue())
 	return dst, nil
 }
 
@@ -365,7 +334,7 @@ func (g *ring) UnmarshalBinary(b []byte) error {
 
 func (g *ring) decode(b []byte, store bool) error {
 	r := reader{b: b}
-	flags := r.header(g.kind)
+	flags := r.header(g.kind, flagSeen)
 	if r.err != nil || flags&flagSeen == 0 {
 		if err := r.end(); err != nil || !store {
 			return err
@@ -408,30 +377,7 @@ func (g *ring) decode(b []byte, store bool) error {
 		}
 		prev = p - 1
 	}
-	nr := r.count("raw count", 1+vbytes)
-	if store {
-		g.raw.setLen(nr)
-	}
-	prevT := maxT
-	for i := nr - 1; i >= 0 && r.err == nil; i-- {
-		d := r.uvarint("raw delta")
-		t := prevT - int64(d)
-		if d > math.MaxInt64 || t > prevT || t <= cutoff {
-			r.fail("raw event at or behind the cutoff")
-			break
-		}
-		var v float64
-		if vbytes > 0 {
-			v = r.float("raw value")
-			if !finite(v) {
-				r.fail("infinite raw value")
-			}
-		}
-		if store {
-			*g.raw.at(i) = event{t: t, v: v}
-		}
-		prevT = t
-	}
+	nr, _ := readEvents(&r, &g.raw, maxT, cutoff, vbytes > 0, store)
 	if total+uint64(nr) < total {
 		r.fail("count overflow")
 	}

@@ -1,0 +1,344 @@
+package window
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math"
+	"unsafe"
+)
+
+// DecaySpec defines exponentially decayed statistics with a half-life.
+type DecaySpec struct {
+	// HalfLife in nanoseconds, > 0: an event's weight halves every HalfLife
+	// of event time. No default.
+	HalfLife int64
+	// Horizon is how far behind the newest added time, in nanoseconds,
+	// as-of queries stay exact; >= 0. Default 0.
+	Horizon int64
+	// RebaseEvery is the number of half-lives between landmarks; the
+	// landmarks are the multiples of RebaseEvery·HalfLife since the Unix
+	// epoch, fixed in advance. 1..960; 0 means the default, 64.
+	RebaseEvery int64
+}
+
+const defaultRebaseEvery = 64
+
+func (s DecaySpec) rebase() int64 {
+	if s.RebaseEvery == 0 {
+		return defaultRebaseEvery
+	}
+	return s.RebaseEvery
+}
+
+// Validate reports every problem of s at once (errors.Join of *SpecError,
+// each matching ErrInvalidSpec), or nil.
+func (s DecaySpec) Validate() error {
+	e := specErrs{spec: "DecaySpec"}
+	e.check(s.HalfLife > 0, "HalfLife", "must be > 0")
+	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	k := s.rebase()
+	e.check(k >= 1 && k <= 960, "RebaseEvery", "must be in 1..960 (0 for 64)")
+	e.check(s.HalfLife <= 0 || k < 1 || s.HalfLife <= math.MaxInt64/k,
+		"RebaseEvery", "times HalfLife overflows int64")
+	return e.err()
+}
+
+// Decayed keeps an exponentially decayed count, sum, mean and variance of
+// event values, by forward decay (Cormode, Shkapenyuk, Srivastava, Xu,
+// "Forward decay: a practical time decay model for streaming systems",
+// ICDE 2009).
+//
+// With half-life h, an event (ti, xi) has weight 2^(−(t − ti)/h) as of t:
+// 1 at its own time, 1/2 one half-life later. As of t, over the events with
+// ti <= t:
+//
+//	CountAt(t)    = Σ 2^(−(t−ti)/h)                  (decayed count)
+//	SumAt(t)      = Σ 2^(−(t−ti)/h) · xi             (decayed sum)
+//	MeanAt(t)     = SumAt(t) / CountAt(t)
+//	VarianceAt(t) = Σ wi (xi − mean)² / Σ wi         (weighted population
+//	                                                  variance, wi as above)
+//
+// The mean and variance do not change as t advances with no new event
+// (every weight scales by the same factor). Empty: count and sum 0, mean and
+// variance NaN.
+//
+// How. Weights are stored relative to a landmark L: gi = 2^((ti − L)/h), so
+// a query divides by 2^((t − L)/h) and the stored sums do not depend on the
+// arrival order of events (up to float rounding; see below). The folded
+// weights are accumulated with West's weighted update (West, "Updating mean
+// and variance estimates: an improved method", CACM 22(9), 1979): W = Σ gi,
+// the mean, and M2 = Σ gi (xi − mean)². The landmark is the latest multiple
+// of RebaseEvery·h since the epoch at or before the cutoff. When it moves
+// forward by j steps, W and M2 are multiplied by 2^(−j·RebaseEvery), an
+// exact power of two, so replay and live rescale identically and no weight
+// exceeds 2^RebaseEvery (no overflow over any span of history; weights of
+// events more than ~1074 half-lives old round to zero and are dropped).
+//
+// Horizon. Let maxT = newest time added, cutoff = maxT − Horizon. Events
+// with time > cutoff are kept raw; events <= cutoff are folded into W, mean,
+// M2 (raw ones when maxT advances past them). Queries at t >= cutoff are
+// exact: they add only the raw events with ti <= t. Queries at t < cutoff
+// cannot take folded events newer than t back out, so they return NaN (never
+// a value that includes a newer event). Add accepts any time; a late event
+// (time <= cutoff) is folded directly.
+//
+// Float addition is not associative (Goldberg, ACM Computing Surveys 23(1),
+// 1991): bit-identical results need the same apply order, which the
+// pipeline supplies. Add rejects NaN and ±Inf values (returns false).
+//
+// The zero value is unusable: build with NewDecayed; an aggregate built
+// from an invalid spec ignores Add and answers NaN. Not safe for concurrent
+// use.
+//
+// Invariants: raw is sorted by time with cutoff < t <= maxT;
+// land == floor(cutoff / (RebaseEvery·h)); W >= 0 and W == 0 implies
+// mean == 0 and M2 == 0; !seen implies an empty state.
+type Decayed struct {
+	spec  DecaySpec
+	valid bool
+	step  int64 // RebaseEvery · HalfLife
+
+	seen        bool
+	maxT        int64
+	land        int64 // landmark index: L = land · step
+	w, mean, m2 float64
+	raw         seq[event]
+}
+
+// NewDecayed returns empty decayed statistics over spec.
+func NewDecayed(spec DecaySpec) *Decayed {
+	d := &Decayed{spec: spec, valid: spec.Validate() == nil}
+	if d.valid {
+		d.step = spec.rebase() * spec.HalfLife
+		d.raw.buf = make([]event, 0, 8)
+	}
+	return d
+}
+
+// Spec returns the spec the aggregate was built with.
+func (d *Decayed) Spec() DecaySpec { return d.spec }
+
+// Reset empties the aggregate and keeps its spec and storage.
+func (d *Decayed) Reset() {
+	d.seen, d.maxT, d.land, d.w, d.mean, d.m2 = false, 0, 0, 0, 0, 0
+	d.raw.clear()
+}
+
+// Newest returns the largest time added, or 0 if none.
+func (d *Decayed) Newest() int64 { return d.maxT }
+
+// SizeBytes returns the approximate heap footprint in bytes.
+func (d *Decayed) SizeBytes() int {
+	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+}
+
+func (d *Decayed) cutoff() int64 { return satSub(d.maxT, d.spec.Horizon) }
+
+// Add records value x at time t. It returns false, changing nothing, when x
+// is NaN or ±Inf (or the spec is invalid).
+func (d *Decayed) Add(t int64, x float64) bool {
+	if !d.valid || !finite(x) {
+		return false
+	}
+	switch {
+	case !d.seen:
+		d.seen, d.maxT = true, t
+		d.land = floorDiv(d.cutoff(), d.step)
+	case t > d.maxT:
+		d.maxT = t
+		d.advance()
+	}
+	if t > d.cutoff() {
+		insertSorted(&d.raw, event{t, x})
+		return true
+	}
+	d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.land, t, x)
+	return true
+}
+
+// advance moves the landmark to the new cutoff and folds raw events that
+// fell to or behind it.
+func (d *Decayed) advance() {
+	c := d.cutoff()
+	if nl := floorDiv(c, d.step); nl > d.land {
+		d.w, d.m2 = d.rescale(d.w, d.m2, nl-d.land)
+		if d.w == 0 {
+			d.mean = 0
+		}
+		d.land = nl
+	}
+	k := foldable(&d.raw, c)
+	for _, e := range d.raw.live()[:k] {
+		d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.land, e.t, e.v)
+	}
+	d.raw.popFront(k)
+}
+
+// rescale multiplies w and m2 by 2^(−j·RebaseEvery), exactly.
+func (d *Decayed) rescale(w, m2 float64, j int64) (float64, float64) {
+	e := -2000 // below the float64 range: 0
+	if j < 2000 {
+		e = -int(j * d.spec.rebase())
+	}
+	return math.Ldexp(w, e), math.Ldexp(m2, e)
+}
+
+// fold applies West's weighted update for (t, x) with weight
+// 2^((t − L)/h), L = land·step. A weight that rounds to zero is skipped.
+func (d *Decayed) fold(w, mean, m2 float64, land, t int64, x float64) (float64, float64, float64) {
+	g := math.Exp2(float64(satSub(t, startOf(land, d.step))) / float64(d.spec.HalfLife))
+	if g == 0 {
+		return w, mean, m2
+	}
+	return westUpdate(w, mean, m2, g, x)
+}
+
+// westUpdate adds x with weight g > 0 to a weighted (W, mean, M2) triple
+// (West, CACM 22(9), 1979).
+func westUpdate(w, mean, m2, g, x float64) (float64, float64, float64) {
+	w += g
+	delta := x - mean
+	mean += delta * (g / w)
+	m2 += g * delta * (x - mean)
+	return w, mean, m2
+}
+
+// at returns W, mean, M2 as of t >= cutoff relative to the landmark of t,
+// and the factor 2^(−(t − L)/h) that turns weights into decayed ones.
+func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
+	if !d.valid || !d.seen || t < d.cutoff() {
+		return 0, 0, 0, 0, false
+	}
+	land := floorDiv(t, d.step)
+	w, m2 = d.rescale(d.w, d.m2, land-d.land)
+	mean = d.mean
+	if w == 0 {
+		mean = 0
+	}
+	for _, e := range d.raw.live() {
+		if e.t > t {
+			break
+		}
+		w, mean, m2 = d.fold(w, mean, m2, land, e.t, e.v)
+	}
+	f = math.Exp2(-float64(satSub(t, startOf(land, d.step))) / float64(d.spec.HalfLife))
+	return w, mean, m2, f, true
+}
+
+// CountAt returns the decayed count as of t (see the type doc); NaN for
+// t < cutoff.
+func (d *Decayed) CountAt(t int64) float64 {
+	if !d.seen && d.valid {
+		return 0
+	}
+	w, _, _, f, ok := d.at(t)
+	if !ok {
+		return math.NaN()
+	}
+	return w * f
+}
+
+// SumAt returns the decayed sum as of t; NaN for t < cutoff.
+func (d *Decayed) SumAt(t int64) float64 {
+	if !d.seen && d.valid {
+		return 0
+	}
+	w, mean, _, f, ok := d.at(t)
+	if !ok {
+		return math.NaN()
+	}
+	return w * mean * f
+}
+
+// MeanAt returns the decayed mean as of t; NaN when empty or t < cutoff.
+func (d *Decayed) MeanAt(t int64) float64 {
+	w, mean, _, _, ok := d.at(t)
+	if !ok || w == 0 {
+		return math.NaN()
+	}
+	return mean
+}
+
+// VarianceAt returns the decayed weighted population variance as of t; NaN
+// when empty or t < cutoff.
+func (d *Decayed) VarianceAt(t int64) float64 {
+	w, _, m2, _, ok := d.at(t)
+	if !ok || w == 0 {
+		return math.NaN()
+	}
+	return m2 / w
+}
+
+// AppendBinary appends the encoding of the state (not the spec) to dst; the
+// layout is given on UnmarshalBinary.
+func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
+	if !d.valid {
+		return dst, fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	}
+	if !d.seen {
+		return append(dst, version1, kindDecayed, 0), nil
+	}
+	dst = append(dst, version1, kindDecayed, flagSeen)
+	dst = binary.AppendVarint(dst, d.maxT)
+	dst = appendFloat(dst, d.w)
+	dst = appendFloat(dst, d.mean)
+	dst = appendFloat(dst, d.m2)
+	return appendEvents(dst, d.raw.live(), d.maxT, true), nil
+}
+
+// UnmarshalBinary replaces the state with the decoded one. The receiver
+// must have been built with the spec the state was encoded under (the spec
+// is not stored; the landmark is derived from maxT and the spec). On error
+// the receiver is unchanged.
+//
+// Layout, version 1 (varint, uvarint: encoding/binary; float: 8 bytes
+// little-endian IEEE 754):
+//
+//	byte     version = 1 (else ErrUnknownVersion)
+//	byte     kind = 6 (else ErrWrongKind)
+//	byte     flags: bit 0 = some event was added; other bits zero
+//	if bit 0 is set:
+//	varint   maxT
+//	float    W, the folded weight relative to the landmark (finite, >= 0)
+//	float    mean (finite; 0 when W = 0)
+//	float    M2 (finite, >= 0; 0 when W = 0)
+//	uvarint  R, then R raw events, newest first:
+//	  uvarint  delta: the first time is maxT − delta, each next the
+//	           previous time − delta; all > maxT − Horizon
+//	  float    value (finite)
+//	then end of input (else ErrTrailingBytes).
+func (d *Decayed) UnmarshalBinary(b []byte) error {
+	if !d.valid {
+		return fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	}
+	if err := d.decode(b, false); err != nil {
+		return fmt.Errorf("window: decode %d-byte decayed state: %w", len(b), err)
+	}
+	return d.decode(b, true)
+}
+
+func (d *Decayed) decode(b []byte, store bool) error {
+	r := reader{b: b}
+	flags := r.header(kindDecayed, flagSeen)
+	if r.err != nil || flags&flagSeen == 0 {
+		if err := r.end(); err != nil || !store {
+			return err
+		}
+		d.Reset()
+		return nil
+	}
+	maxT := r.varint("maxT")
+	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
+	if r.err == nil && (!finite(w) || !finite(mean) || !finite(m2) || w < 0 || m2 < 0 ||
+		(w == 0 && (mean != 0 || m2 != 0))) {
+		r.fail("weights out of range")
+	}
+	cutoff := satSub(maxT, d.spec.Horizon)
+	readEvents(&r, &d.raw, maxT, cutoff, true, store)
+	if err := r.end(); err != nil || !store {
+		return err
+	}
+	d.seen, d.maxT, d.land = true, maxT, floorDiv(cutoff, d.step)
+	d.w, d.mean, d.m2 = w, mean, m2
+	return nil
+}
