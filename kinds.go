@@ -7,11 +7,14 @@ import (
 	"github.com/tallyward/tallyward/window"
 )
 
-// SlidingCount counts an entity's events in a sliding window of event time,
-// kept in epoch-aligned panes of width Resolution. As-of answers never
-// count an event newer than the asked time; the trailing edge is exact to
-// within one pane (package window states the exact set counted).
-type SlidingCount struct {
+// Sliding holds the parameters shared by the sliding-window kinds. The
+// kinds SlidingCount, SlidingSum, SlidingMin, SlidingMax and SlidingMean
+// are defined on it, so each is written SlidingSum{Window: ..., Resolution: ...}.
+//
+// Windows are kept in epoch-aligned panes of width Resolution. As-of
+// answers never include an event newer than the asked time; the trailing
+// edge is exact to within one pane (package window states the exact set).
+type Sliding struct {
 	// Window is the window length. Required; a multiple of Resolution.
 	Window time.Duration
 	// Resolution is the pane width: finer panes cost memory, coarser panes
@@ -19,7 +22,7 @@ type SlidingCount struct {
 	Resolution time.Duration
 }
 
-func (k SlidingCount) spec(horizon int64) window.SlidingSpec {
+func (k Sliding) spec(horizon int64) window.SlidingSpec {
 	res := k.Resolution
 	if res == 0 {
 		res = k.Window / 60
@@ -27,22 +30,88 @@ func (k SlidingCount) spec(horizon int64) window.SlidingSpec {
 	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(res), Horizon: horizon}
 }
 
-// Describe implements Kind.
-func (k SlidingCount) Describe() string {
+func (k Sliding) describe(name string) string {
 	s := k.spec(0)
-	return fmt.Sprintf("sliding-count window=%d resolution=%d", s.Window, s.Resolution)
+	return fmt.Sprintf("%s window=%d resolution=%d", name, s.Window, s.Resolution)
 }
 
-// Validate implements Kind.
-func (k SlidingCount) Validate() error { return k.spec(0).Validate() }
+func (k Sliding) validate() error { return k.spec(0).Validate() }
+
+// SlidingCount counts an entity's events in a sliding window.
+type SlidingCount Sliding
+
+// SlidingSum sums a value over a sliding window (0 when empty).
+type SlidingSum Sliding
+
+// SlidingMin is the least value in a sliding window (NaN when empty).
+type SlidingMin Sliding
+
+// SlidingMax is the greatest value in a sliding window (NaN when empty).
+type SlidingMax Sliding
+
+// SlidingMean is the mean value in a sliding window (NaN when empty).
+type SlidingMean Sliding
+
+func (k SlidingCount) Describe() string { return Sliding(k).describe("sliding-count") }
+func (k SlidingSum) Describe() string   { return Sliding(k).describe("sliding-sum") }
+func (k SlidingMin) Describe() string   { return Sliding(k).describe("sliding-min") }
+func (k SlidingMax) Describe() string   { return Sliding(k).describe("sliding-max") }
+func (k SlidingMean) Describe() string  { return Sliding(k).describe("sliding-mean") }
+
+func (k SlidingCount) Validate() error { return Sliding(k).validate() }
+func (k SlidingSum) Validate() error   { return Sliding(k).validate() }
+func (k SlidingMin) Validate() error   { return Sliding(k).validate() }
+func (k SlidingMax) Validate() error   { return Sliding(k).validate() }
+func (k SlidingMean) Validate() error  { return Sliding(k).validate() }
 
 func (SlidingCount) input() inputKind { return inputNone }
+func (SlidingSum) input() inputKind   { return inputValue }
+func (SlidingMin) input() inputKind   { return inputValue }
+func (SlidingMax) input() inputKind   { return inputValue }
+func (SlidingMean) input() inputKind  { return inputValue }
 
-func (k SlidingCount) newAggregate(horizon int64) aggregate {
-	return &slidingCountAgg{window.NewSlidingCount(k.spec(horizon))}
+func (k SlidingCount) newAggregate(h int64) aggregate {
+	c := window.NewSlidingCount(Sliding(k).spec(h))
+	return adapt(c, func(t int64, _ float64) bool { return c.Add(t) }, func(t int64) float64 { return float64(c.CountAt(t)) })
 }
 
-type slidingCountAgg struct{ *window.SlidingCount }
+func (k SlidingSum) newAggregate(h int64) aggregate {
+	s := window.NewSlidingSum(Sliding(k).spec(h))
+	return adapt(s, s.Add, s.SumAt)
+}
 
-func (a *slidingCountAgg) add(t int64, _ float64, _ uint64) bool { return a.Add(t) }
-func (a *slidingCountAgg) at(t int64) float64                    { return float64(a.CountAt(t)) }
+func (k SlidingMin) newAggregate(h int64) aggregate {
+	s := window.NewSlidingMin(Sliding(k).spec(h))
+	return adapt(s, s.Add, s.MinAt)
+}
+
+func (k SlidingMax) newAggregate(h int64) aggregate {
+	s := window.NewSlidingMax(Sliding(k).spec(h))
+	return adapt(s, s.Add, s.MaxAt)
+}
+
+func (k SlidingMean) newAggregate(h int64) aggregate {
+	s := window.NewSlidingMean(Sliding(k).spec(h))
+	return adapt(s, s.Add, s.MeanAt)
+}
+
+// codec is what every stored aggregate of packages window and sketch has.
+type codec interface {
+	AppendBinary(dst []byte) ([]byte, error)
+	UnmarshalBinary(b []byte) error
+	SizeBytes() int
+}
+
+// valueAgg adapts an aggregate taking (time, value) to the pipeline.
+type valueAgg struct {
+	codec
+	addFn func(t int64, v float64) bool
+	atFn  func(t int64) float64
+}
+
+func adapt(c codec, add func(int64, float64) bool, at func(int64) float64) *valueAgg {
+	return &valueAgg{codec: c, addFn: add, atFn: at}
+}
+
+func (a *valueAgg) add(t int64, v float64, _ uint64) bool { return a.addFn(t, v) }
+func (a *valueAgg) at(t int64) float64                    { return a.atFn(t) }

@@ -100,7 +100,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		return nil, err
 	}
 	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64}
-	horizon := int64(opts.MaxDisorder)
+	// One nanosecond more than the allowed disorder keeps as-of answers
+	// exact for BeforeEvent features, which ask at the event's time − 1.
+	horizon := int64(opts.MaxDisorder) + 1
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
