@@ -6,18 +6,21 @@ import (
 	"testing"
 )
 
-// Run: go test -run '^$' -bench . -benchmem -count 10 ./window/ > new.txt
-// and compare two runs with: benchstat old.txt new.txt
+// Benchmarks on pre-generated, seeded inputs. Run
+//
+//	go test ./window/ -run '^$' -bench . -benchmem -count 10 > new.txt
+//
+// and compare two runs with benchstat old.txt new.txt.
 
 const (
 	second = int64(1e9)
 	minute = 60 * second
 	hour   = 60 * minute
-	t0     = int64(1_700_000_000) * second // an arbitrary 2023 instant
+	t0     = int64(1_700_000_000) * second // an arbitrary instant in 2023
 )
 
-// steadyTimes returns n event times starting at t0, mean gap `gap`, with a
-// small disorder (within `disorder`), from a fixed seed.
+// steadyTimes returns n event times after t0 with mean gap `gap` and a
+// disorder of up to `disorder`, from a fixed seed.
 func steadyTimes(n int, gap, disorder int64) []int64 {
 	rng := rand.New(rand.NewPCG(1, 2))
 	ts := make([]int64, n)
@@ -29,44 +32,169 @@ func steadyTimes(n int, gap, disorder int64) []int64 {
 	return ts
 }
 
-var sinkU uint64
+var (
+	sinkU uint64
+	sinkF float64
+)
 
-func BenchmarkSlidingCount(b *testing.B) {
-	spec := SlidingSpec{Window: hour, Resolution: minute, Horizon: 5 * second}
+// benchAdd drives add over a long stream that keeps advancing; the stream
+// is replayed shifted by a year per lap so time never goes back.
+func benchAdd(b *testing.B, add func(t int64, v float64)) {
 	ts := steadyTimes(1<<16, second, 5*second)
-	b.Run("Add", func(b *testing.B) {
-		c := NewSlidingCount(spec)
-		b.ReportAllocs()
-		i := 0
-		for b.Loop() {
-			c.Add(ts[i&(len(ts)-1)] + int64(i>>16)*hour*24*365)
-			i++
-		}
-	})
-	b.Run("CountAt", func(b *testing.B) {
-		c := NewSlidingCount(spec)
-		for _, t := range ts[:4000] {
-			c.Add(t)
-		}
-		b.ReportAllocs()
-		i := 0
-		for b.Loop() {
-			sinkU += c.CountAt(ts[3999] - int64(i&1023)*second)
-			i++
-		}
-	})
-	for _, n := range []int{10, 100, 1000} {
-		b.Run(fmt.Sprintf("Encode/events=%d", n), func(b *testing.B) {
-			c := NewSlidingCount(spec)
-			for _, t := range steadyTimes(n, hour/int64(n), 5*second) {
-				c.Add(t)
+	b.ReportAllocs()
+	i := 0
+	for b.Loop() {
+		add(ts[i&(len(ts)-1)]+int64(i>>16)*365*24*hour, float64(i&63))
+		i++
+	}
+}
+
+// benchQuery fills an aggregate with an hour of events (one a second) and
+// queries it at times spread over the last horizon and the past.
+func benchQuery(b *testing.B, add func(t int64, v float64), query func(t int64)) {
+	ts := steadyTimes(4000, second, 5*second)
+	for i, t := range ts {
+		add(t, float64(i&63))
+	}
+	last := ts[len(ts)-1]
+	b.ReportAllocs()
+	i := 0
+	for b.Loop() {
+		query(last - int64(i&7)*second)
+		i++
+	}
+}
+
+var benchSpec = SlidingSpec{Window: hour, Resolution: minute, Horizon: 5 * second}
+
+func BenchmarkAdd(b *testing.B) {
+	b.Run("baseline-slice-append", func(b *testing.B) {
+		s := make([]int64, 0, 1<<10)
+		benchAdd(b, func(t int64, _ float64) {
+			if len(s) == cap(s) {
+				s = s[:0]
 			}
-			buf, _ := c.AppendBinary(nil)
-			b.ReportAllocs()
-			for b.Loop() {
-				buf, _ = c.AppendBinary(buf[:0])
-			}
-			b.ReportMetric(float64(len(buf)), "bytes/entity")
+			s = append(s, t)
 		})
+	})
+	b.Run("SlidingCount", func(b *testing.B) {
+		c := NewSlidingCount(benchSpec)
+		benchAdd(b, func(t int64, _ float64) { c.Add(t) })
+	})
+	valued := []struct {
+		name string
+		mk   func(SlidingSpec) interface{ Add(int64, float64) bool }
+	}{
+		{"SlidingSum", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingSum(s) }},
+		{"SlidingMin", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMin(s) }},
+		{"SlidingMax", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMax(s) }},
+		{"SlidingMean", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMean(s) }},
+	}
+	for _, v := range valued {
+		b.Run(v.name, func(b *testing.B) {
+			a := v.mk(benchSpec)
+			benchAdd(b, func(t int64, x float64) { a.Add(t, x) })
+		})
+	}
+	b.Run("Decayed", func(b *testing.B) {
+		d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+		benchAdd(b, func(t int64, v float64) { d.Add(t, v) })
+	})
+	b.Run("Velocity", func(b *testing.B) {
+		v := NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second})
+		benchAdd(b, func(t int64, _ float64) { v.Add(t) })
+	})
+	b.Run("Recency", func(b *testing.B) {
+		r := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+		benchAdd(b, func(t int64, _ float64) { r.Add(t) })
+	})
+}
+
+func BenchmarkQuery(b *testing.B) {
+	b.Run("SlidingCount.CountAt", func(b *testing.B) {
+		c := NewSlidingCount(benchSpec)
+		benchQuery(b, func(t int64, _ float64) { c.Add(t) }, func(t int64) { sinkU += c.CountAt(t) })
+	})
+	b.Run("SlidingMean.MeanAt", func(b *testing.B) {
+		c := NewSlidingMean(benchSpec)
+		benchQuery(b, func(t int64, v float64) { c.Add(t, v) }, func(t int64) { sinkF += c.MeanAt(t) })
+	})
+	b.Run("SlidingMax.MaxAt", func(b *testing.B) {
+		c := NewSlidingMax(benchSpec)
+		benchQuery(b, func(t int64, v float64) { c.Add(t, v) }, func(t int64) { sinkF += c.MaxAt(t) })
+	})
+	b.Run("Decayed.VarianceAt", func(b *testing.B) {
+		d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+		benchQuery(b, func(t int64, v float64) { d.Add(t, v) }, func(t int64) { sinkF += d.VarianceAt(t) })
+	})
+	b.Run("Velocity.RatioAt", func(b *testing.B) {
+		v := NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second})
+		benchQuery(b, func(t int64, _ float64) { v.Add(t) }, func(t int64) { sinkF += v.RatioAt(t) })
+	})
+	b.Run("Recency.SessionCountAt", func(b *testing.B) {
+		r := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+		benchQuery(b, func(t int64, _ float64) { r.Add(t) }, func(t int64) { sinkU += r.SessionCountAt(t) })
+	})
+}
+
+// BenchmarkEncode reports encoded bytes per entity at typical loads: n
+// events spread over the last hour, horizon 5 s.
+func BenchmarkEncode(b *testing.B) {
+	type mk func() (codec, func(int64))
+	aggs := []struct {
+		name string
+		mk   mk
+	}{
+		{"SlidingCount", func() (codec, func(int64)) {
+			c := NewSlidingCount(benchSpec)
+			return c, func(t int64) { c.Add(t) }
+		}},
+		{"SlidingSum", func() (codec, func(int64)) {
+			c := NewSlidingSum(benchSpec)
+			return c, func(t int64) { c.Add(t, 12.5) }
+		}},
+		{"Decayed", func() (codec, func(int64)) {
+			c := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+			return c, func(t int64) { c.Add(t, 12.5) }
+		}},
+		{"Recency", func() (codec, func(int64)) {
+			c := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+			return c, func(t int64) { c.Add(t) }
+		}},
+	}
+	for _, a := range aggs {
+		for _, n := range []int{1, 10, 100, 1000} {
+			b.Run(fmt.Sprintf("%s/events=%d", a.name, n), func(b *testing.B) {
+				c, add := a.mk()
+				for _, t := range steadyTimes(n, hour/int64(2*n), 5*second) {
+					add(t)
+				}
+				buf, _ := c.AppendBinary(nil)
+				size := len(buf)
+				b.ReportAllocs()
+				for b.Loop() {
+					buf, _ = c.AppendBinary(buf[:0])
+				}
+				b.ReportMetric(float64(size), "bytes/entity")
+				if sz, ok := c.(interface{ SizeBytes() int }); ok {
+					b.ReportMetric(float64(sz.SizeBytes()), "heap-bytes/entity")
+				}
+			})
+		}
+	}
+}
+
+func BenchmarkDecode(b *testing.B) {
+	c := NewSlidingCount(benchSpec)
+	for _, t := range steadyTimes(100, hour/200, 5*second) {
+		c.Add(t)
+	}
+	buf, _ := c.AppendBinary(nil)
+	d := NewSlidingCount(benchSpec)
+	b.ReportAllocs()
+	for b.Loop() {
+		if err := d.UnmarshalBinary(buf); err != nil {
+			b.Fatal(err)
+		}
 	}
 }

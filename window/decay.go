@@ -1,8 +1,6 @@
 package window
 
 import (
-	"encoding/binary"
-	"fmt"
 	"math"
 	"unsafe"
 )
@@ -34,8 +32,8 @@ func (s DecaySpec) rebase() int64 {
 // each matching ErrInvalidSpec), or nil.
 func (s DecaySpec) Validate() error {
 	e := specErrs{spec: "DecaySpec"}
-	e.check(s.HalfLife > 0, "HalfLife", "must be > 0")
-	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	e.positive("HalfLife", s.HalfLife)
+	e.nonNegative("Horizon", s.Horizon)
 	k := s.rebase()
 	e.check(k >= 1 && k <= 960, "RebaseEvery", "must be in 1..960 (0 for 64)")
 	e.check(s.HalfLife <= 0 || k < 1 || s.HalfLife <= math.MaxInt64/k,
@@ -225,61 +223,42 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 	return w, mean, m2, f, true
 }
 
-// CountAt returns the decayed count as of t (see the type doc); NaN for
-// t < cutoff.
-func (d *Decayed) CountAt(t int64) float64 {
-	if !d.seen && d.valid {
-		return 0
+// stats returns all four statistics as of t (see the type doc).
+func (d *Decayed) stats(t int64) (count, sum, mean, variance float64) {
+	if d.valid && !d.seen {
+		return 0, 0, math.NaN(), math.NaN()
 	}
-	w, _, _, f, ok := d.at(t)
-	if !ok {
-		return math.NaN()
+	w, mean, m2, f, ok := d.at(t)
+	switch {
+	case !ok:
+		return math.NaN(), math.NaN(), math.NaN(), math.NaN()
+	case w == 0:
+		return 0, 0, math.NaN(), math.NaN()
 	}
-	return w * f
+	return w * f, w * mean * f, mean, m2 / w
 }
 
-// SumAt returns the decayed sum as of t; NaN for t < cutoff.
-func (d *Decayed) SumAt(t int64) float64 {
-	if !d.seen && d.valid {
-		return 0
-	}
-	w, mean, _, f, ok := d.at(t)
-	if !ok {
-		return math.NaN()
-	}
-	return w * mean * f
-}
+// CountAt returns the decayed count as of t; 0 when empty, NaN for
+// t < cutoff.
+func (d *Decayed) CountAt(t int64) float64 { c, _, _, _ := d.stats(t); return c }
+
+// SumAt returns the decayed sum as of t; 0 when empty, NaN for t < cutoff.
+func (d *Decayed) SumAt(t int64) float64 { _, s, _, _ := d.stats(t); return s }
 
 // MeanAt returns the decayed mean as of t; NaN when empty or t < cutoff.
-func (d *Decayed) MeanAt(t int64) float64 {
-	w, mean, _, _, ok := d.at(t)
-	if !ok || w == 0 {
-		return math.NaN()
-	}
-	return mean
-}
+func (d *Decayed) MeanAt(t int64) float64 { _, _, m, _ := d.stats(t); return m }
 
 // VarianceAt returns the decayed weighted population variance as of t; NaN
 // when empty or t < cutoff.
-func (d *Decayed) VarianceAt(t int64) float64 {
-	w, _, m2, _, ok := d.at(t)
-	if !ok || w == 0 {
-		return math.NaN()
-	}
-	return m2 / w
-}
+func (d *Decayed) VarianceAt(t int64) float64 { _, _, _, v := d.stats(t); return v }
 
 // AppendBinary appends the encoding of the state (not the spec) to dst; the
 // layout is given on UnmarshalBinary.
 func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
-	if !d.valid {
-		return dst, fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	dst, done, err := appendHeader(dst, d.valid, d.seen, kindDecayed, 0, d.maxT)
+	if done {
+		return dst, err
 	}
-	if !d.seen {
-		return append(dst, version1, kindDecayed, 0), nil
-	}
-	dst = append(dst, version1, kindDecayed, flagSeen)
-	dst = binary.AppendVarint(dst, d.maxT)
 	dst = appendFloat(dst, d.w)
 	dst = appendFloat(dst, d.mean)
 	dst = appendFloat(dst, d.m2)
@@ -308,26 +287,15 @@ func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
 //	  float    value (finite)
 //	then end of input (else ErrTrailingBytes).
 func (d *Decayed) UnmarshalBinary(b []byte) error {
-	if !d.valid {
-		return fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
-	}
-	if err := d.decode(b, false); err != nil {
-		return fmt.Errorf("window: decode %d-byte decayed state: %w", len(b), err)
-	}
-	return d.decode(b, true)
+	return decodeTwoPass(d.valid, "decayed", b, d.decode)
 }
 
 func (d *Decayed) decode(b []byte, store bool) error {
 	r := reader{b: b}
-	flags := r.header(kindDecayed, flagSeen)
-	if r.err != nil || flags&flagSeen == 0 {
-		if err := r.end(); err != nil || !store {
-			return err
-		}
-		d.Reset()
-		return nil
+	_, maxT, ok := r.startState(kindDecayed, flagSeen, store, d.Reset)
+	if !ok {
+		return r.err
 	}
-	maxT := r.varint("maxT")
 	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
 	if r.err == nil && (!finite(w) || !finite(mean) || !finite(m2) || w < 0 || m2 < 0 ||
 		(w == 0 && (mean != 0 || m2 != 0))) {

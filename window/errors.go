@@ -52,6 +52,10 @@ func (s *specErrs) check(ok bool, field, problem string) {
 	}
 }
 
+func (s *specErrs) positive(field string, x int64) { s.check(x > 0, field, "must be > 0") }
+
+func (s *specErrs) nonNegative(field string, x int64) { s.check(x >= 0, field, "must be >= 0") }
+
 func (s *specErrs) err() error { return errors.Join(s.errs...) }
 
 // Format version and kind bytes. Frozen: values are never reused or edited;
@@ -109,17 +113,10 @@ func (r *reader) uvarint(what string) uint64 {
 	return x
 }
 
+// varint reads a zigzag-encoded signed varint (encoding/binary.Varint).
 func (r *reader) varint(what string) int64 {
-	if r.err != nil {
-		return 0
-	}
-	x, n := binary.Varint(r.b)
-	if n <= 0 {
-		r.fail("bad varint " + what)
-		return 0
-	}
-	r.b = r.b[n:]
-	return x
+	x := r.uvarint(what)
+	return int64(x>>1) ^ -int64(x&1)
 }
 
 // float reads 8 bytes little-endian IEEE 754; NaN is rejected.
@@ -180,6 +177,55 @@ func (r *reader) end() error {
 		return fmt.Errorf("%w: %d", ErrTrailingBytes, len(r.b))
 	}
 	return r.err
+}
+
+// errInvalidAgg is returned by encoders and decoders of an aggregate built
+// from an invalid spec.
+var errInvalidAgg = fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+
+// appendHeader appends version, kind and flags, and maxT when the state is
+// not empty. done is true when nothing more follows (empty state or error).
+func appendHeader(dst []byte, valid, seen bool, kind, flags byte, maxT int64) (out []byte, done bool, err error) {
+	if !valid {
+		return dst, true, errInvalidAgg
+	}
+	if !seen {
+		return append(dst, version1, kind, 0), true, nil
+	}
+	dst = append(dst, version1, kind, flags|flagSeen)
+	return binary.AppendVarint(dst, maxT), false, nil
+}
+
+// decodeTwoPass runs decode once to check b without storing anything, then
+// again to store, so the receiver is unchanged on error and no scratch
+// state is allocated.
+func decodeTwoPass(valid bool, what string, b []byte, decode func(b []byte, store bool) error) error {
+	if !valid {
+		return errInvalidAgg
+	}
+	if err := decode(b, false); err != nil {
+		return fmt.Errorf("window: decode %d-byte %s state: %w", len(b), what, err)
+	}
+	return decode(b, true)
+}
+
+// startState reads the header; it returns ok when a non-empty state
+// follows. For an empty state it ends the input and, when storing, calls
+// reset.
+func (r *reader) startState(kind, known byte, store bool, reset func()) (flags byte, maxT int64, ok bool) {
+	flags = r.header(kind, known)
+	if r.err != nil || flags&flagSeen == 0 {
+		if r.err == nil && flags != 0 {
+			r.fail("flags without events")
+		}
+		if err := r.end(); err == nil && store {
+			reset()
+		} else {
+			r.err = err
+		}
+		return flags, 0, false
+	}
+	return flags, r.varint("maxT"), true
 }
 
 func appendFloat(dst []byte, x float64) []byte {

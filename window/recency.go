@@ -2,7 +2,6 @@ package window
 
 import (
 	"encoding/binary"
-	"fmt"
 	"math"
 	"unsafe"
 )
@@ -21,8 +20,8 @@ type RecencySpec struct {
 // each matching ErrInvalidSpec), or nil.
 func (s RecencySpec) Validate() error {
 	e := specErrs{spec: "RecencySpec"}
-	e.check(s.Gap > 0, "Gap", "must be > 0")
-	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	e.positive("Gap", s.Gap)
+	e.nonNegative("Horizon", s.Horizon)
 	return e.err()
 }
 
@@ -226,18 +225,14 @@ const flagFolded byte = 2
 // AppendBinary appends the encoding of the state (not the spec) to dst; the
 // layout is given on UnmarshalBinary.
 func (r *Recency) AppendBinary(dst []byte) ([]byte, error) {
-	if !r.valid {
-		return dst, fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
-	}
-	if !r.seen {
-		return append(dst, version1, kindRecency, 0), nil
-	}
-	flags := flagSeen
+	var flags byte
 	if r.folded {
-		flags |= flagFolded
+		flags = flagFolded
 	}
-	dst = append(dst, version1, kindRecency, flags)
-	dst = binary.AppendVarint(dst, r.maxT)
+	dst, done, err := appendHeader(dst, r.valid, r.seen, kindRecency, flags, r.maxT)
+	if done {
+		return dst, err
+	}
 	dst = binary.AppendUvarint(dst, uint64(r.maxT)-uint64(r.first))
 	if r.folded {
 		dst = binary.AppendUvarint(dst, uint64(r.maxT)-uint64(r.sLast))
@@ -270,13 +265,7 @@ func (r *Recency) AppendBinary(dst []byte) ([]byte, error) {
 //	         > maxT − Horizon and >= first
 //	then end of input (else ErrTrailingBytes).
 func (r *Recency) UnmarshalBinary(b []byte) error {
-	if !r.valid {
-		return fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
-	}
-	if err := r.decode(b, false); err != nil {
-		return fmt.Errorf("window: decode %d-byte recency state: %w", len(b), err)
-	}
-	return r.decode(b, true)
+	return decodeTwoPass(r.valid, "recency", b, r.decode)
 }
 
 // back returns x − d for an unsigned d, or fails if that is below lo.
@@ -290,18 +279,10 @@ func back(rd *reader, x int64, d uint64, lo int64, what string) int64 {
 
 func (r *Recency) decode(b []byte, store bool) error {
 	rd := reader{b: b}
-	flags := rd.header(kindRecency, flagSeen|flagFolded)
-	if rd.err == nil && flags == flagFolded {
-		rd.fail("folded without events")
+	flags, maxT, ok := rd.startState(kindRecency, flagSeen|flagFolded, store, r.Reset)
+	if !ok {
+		return rd.err
 	}
-	if rd.err != nil || flags&flagSeen == 0 {
-		if err := rd.end(); err != nil || !store {
-			return err
-		}
-		r.Reset()
-		return nil
-	}
-	maxT := rd.varint("maxT")
 	cutoff := satSub(maxT, r.spec.Horizon)
 	first := back(&rd, maxT, rd.uvarint("first"), math.MinInt64, "first")
 	var s session

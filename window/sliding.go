@@ -2,7 +2,6 @@ package window
 
 import (
 	"encoding/binary"
-	"fmt"
 	"math"
 	"unsafe"
 )
@@ -28,20 +27,12 @@ type SlidingSpec struct {
 // each matching ErrInvalidSpec), or nil.
 func (s SlidingSpec) Validate() error {
 	e := specErrs{spec: "SlidingSpec"}
-	e.check(s.Window > 0, "Window", "must be > 0")
-	e.check(s.Resolution > 0, "Resolution", "must be > 0")
+	e.positive("Window", s.Window)
+	e.positive("Resolution", s.Resolution)
 	e.check(s.Window <= 0 || s.Resolution <= 0 || s.Window%s.Resolution == 0,
 		"Window", "must be a multiple of Resolution")
-	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	e.nonNegative("Horizon", s.Horizon)
 	return e.err()
-}
-
-// pane is the aggregate of the folded events of one pane. n >= 1; v is the
-// sum, minimum or maximum of their values (unused by counts).
-type pane struct {
-	idx int64
-	n   uint64
-	v   float64
 }
 
 // event is one raw event kept with its exact time.
@@ -73,6 +64,14 @@ func (o op) merge(acc, v float64) float64 {
 }
 
 func (o op) hasValue() bool { return o != opCount }
+
+// pane is the aggregate of the folded events of one pane. n >= 1; v is the
+// sum, minimum or maximum of their values (unused by counts).
+type pane struct {
+	idx int64
+	n   uint64
+	v   float64
+}
 
 // ring is the pane mechanism shared by the sliding aggregates. Its exported
 // methods are promoted to them. See SlidingCount for the semantics.
@@ -273,14 +272,10 @@ func searchPane(ps []pane, lo int64) int {
 // AppendBinary appends the encoding of the state (not the spec) to dst.
 // The layout is given on UnmarshalBinary.
 func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
-	if !g.valid {
-		return dst, fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
+	dst, done, err := appendHeader(dst, g.valid, g.seen, g.kind, 0, g.maxT)
+	if done {
+		return dst, err
 	}
-	if !g.seen {
-		return append(dst, version1, g.kind, 0), nil
-	}
-	dst = append(dst, version1, g.kind, flagSeen)
-	dst = binary.AppendVarint(dst, g.maxT)
 	ps := g.panes.live()
 	dst = binary.AppendUvarint(dst, uint64(len(ps)))
 	prev := g.paneOf(g.cutoff())
@@ -322,27 +317,15 @@ func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
 //	  float    value (kinds 2..5 only)
 //	then end of input (else ErrTrailingBytes).
 func (g *ring) UnmarshalBinary(b []byte) error {
-	if !g.valid {
-		return fmt.Errorf("%w: aggregate built from an invalid spec", ErrInvalidSpec)
-	}
-	// Pass 1 checks everything without touching g; pass 2 cannot fail.
-	if err := g.decode(b, false); err != nil {
-		return fmt.Errorf("window: decode %d-byte state: %w", len(b), err)
-	}
-	return g.decode(b, true)
+	return decodeTwoPass(g.valid, "sliding", b, g.decode)
 }
 
 func (g *ring) decode(b []byte, store bool) error {
 	r := reader{b: b}
-	flags := r.header(g.kind, flagSeen)
-	if r.err != nil || flags&flagSeen == 0 {
-		if err := r.end(); err != nil || !store {
-			return err
-		}
-		g.Reset()
-		return nil
+	_, maxT, ok := r.startState(g.kind, flagSeen, store, g.Reset)
+	if !ok {
+		return r.err
 	}
-	maxT := r.varint("maxT")
 	cutoff := satSub(maxT, g.spec.Horizon)
 	pc := g.paneOf(cutoff)
 	floor := satSub(pc, g.n-1)

@@ -174,24 +174,13 @@ func checkSlidingStream(t *testing.T, rng *rand.Rand, spec SlidingSpec, o op, se
 
 func roundTrip(t *testing.T, g *ring) {
 	t.Helper()
-	b, err := g.AppendBinary(nil)
-	if err != nil {
-		t.Fatal(err)
-	}
 	h := &ring{}
 	h.init(g.spec, g.op, g.kind)
 	h.add(12345, 1) // dirty state must be replaced
-	if err := h.UnmarshalBinary(b); err != nil {
-		t.Fatalf("decode %x: %v", b, err)
-	}
-	if h.seen != g.seen || h.maxT != g.maxT || h.total != g.total ||
-		!slices.Equal(h.panes.live(), g.panes.live()) || !slices.Equal(h.raw.live(), g.raw.live()) {
-		t.Fatalf("round trip of %x changed the state", b)
-	}
-	b2, _ := h.AppendBinary(nil)
-	if !slices.Equal(b, b2) {
-		t.Fatalf("re-encoding differs: %x vs %x", b, b2)
-	}
+	roundTripCodec(t, g, h, func() bool {
+		return h.seen == g.seen && h.maxT == g.maxT && h.total == g.total &&
+			slices.Equal(h.panes.live(), g.panes.live()) && slices.Equal(h.raw.live(), g.raw.live())
+	})
 }
 
 // TestSlidingTrailingEdge pins the trailing-edge error stated in the

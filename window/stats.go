@@ -44,32 +44,30 @@ type SlidingMax struct{ valued }
 // Build with NewSlidingMean. Not safe for concurrent use.
 type SlidingMean struct{ valued }
 
+func newValued(spec SlidingSpec, o op, kind byte) valued {
+	var v valued
+	v.init(spec, o, kind)
+	return v
+}
+
 // NewSlidingSum returns an empty sum over spec.
 func NewSlidingSum(spec SlidingSpec) *SlidingSum {
-	s := &SlidingSum{}
-	s.init(spec, opSum, kindSlidingSum)
-	return s
+	return &SlidingSum{newValued(spec, opSum, kindSlidingSum)}
 }
 
 // NewSlidingMin returns an empty minimum over spec.
 func NewSlidingMin(spec SlidingSpec) *SlidingMin {
-	s := &SlidingMin{}
-	s.init(spec, opMin, kindSlidingMin)
-	return s
+	return &SlidingMin{newValued(spec, opMin, kindSlidingMin)}
 }
 
 // NewSlidingMax returns an empty maximum over spec.
 func NewSlidingMax(spec SlidingSpec) *SlidingMax {
-	s := &SlidingMax{}
-	s.init(spec, opMax, kindSlidingMax)
-	return s
+	return &SlidingMax{newValued(spec, opMax, kindSlidingMax)}
 }
 
 // NewSlidingMean returns an empty mean over spec.
 func NewSlidingMean(spec SlidingSpec) *SlidingMean {
-	s := &SlidingMean{}
-	s.init(spec, opSum, kindSlidingMean)
-	return s
+	return &SlidingMean{newValued(spec, opSum, kindSlidingMean)}
 }
 
 // SumAt returns the sum of the values in the window as of t, 0 if empty.

@@ -37,13 +37,13 @@ func (s VelocitySpec) sliding() SlidingSpec {
 // each matching ErrInvalidSpec), or nil.
 func (s VelocitySpec) Validate() error {
 	e := specErrs{spec: "VelocitySpec"}
-	e.check(s.Short > 0, "Short", "must be > 0")
+	e.positive("Short", s.Short)
 	e.check(s.Short < s.Long, "Short", "must be < Long")
 	e.check(s.Resolution <= 0 || s.Short%s.Resolution == 0, "Short", "must be a multiple of Resolution")
-	e.check(s.Long > 0, "Long", "must be > 0")
+	e.positive("Long", s.Long)
 	e.check(s.Resolution <= 0 || s.Long%s.Resolution == 0, "Long", "must be a multiple of Resolution")
-	e.check(s.Resolution > 0, "Resolution", "must be > 0")
-	e.check(s.Horizon >= 0, "Horizon", "must be >= 0")
+	e.positive("Resolution", s.Resolution)
+	e.nonNegative("Horizon", s.Horizon)
 	e.check(finite(s.Smoothing) && s.Smoothing >= 0, "Smoothing", "must be finite and >= 0")
 	return e.err()
 }

@@ -1,0 +1,107 @@
+package window
+
+import (
+	"math"
+	"slices"
+	"testing"
+)
+
+// A 1 h / 1 min sliding count holding 10 events encodes in at most 64
+// bytes (target from the design).
+func TestSlidingCountEncodedSize(t *testing.T) {
+	for _, horizon := range []int64{0, 5 * second, minute} {
+		c := NewSlidingCount(SlidingSpec{Window: hour, Resolution: minute, Horizon: horizon})
+		for _, ts := range steadyTimes(10, hour/20, 5*second) {
+			c.Add(ts)
+		}
+		b, _ := c.AppendBinary(nil)
+		if len(b) > 64 {
+			t.Errorf("horizon %d: %d bytes, want <= 64", horizon, len(b))
+		}
+	}
+}
+
+// Steady-state Add and Reset allocate nothing (a count, not a timing).
+func TestAddAllocs(t *testing.T) {
+	ts := steadyTimes(1<<12, second, 5*second)
+	c := NewSlidingCount(benchSpec)
+	s := NewSlidingMean(benchSpec)
+	d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+	r := NewRecency(RecencySpec{Gap: minute, Horizon: 5 * second})
+	warm := func() {
+		for _, x := range ts {
+			c.Add(x)
+			s.Add(x, 1)
+			d.Add(x, 1)
+			r.Add(x)
+		}
+	}
+	warm()
+	if n := testing.AllocsPerRun(5, func() {
+		c.Reset()
+		s.Reset()
+		d.Reset()
+		r.Reset()
+		warm()
+	}); n != 0 {
+		t.Errorf("steady state allocates %v times per run", n)
+	}
+}
+
+func TestAssign(t *testing.T) {
+	for _, tc := range []struct{ t, w, want int64 }{
+		{0, 10, 0}, {9, 10, 0}, {10, 10, 10}, {-1, 10, -10}, {-10, 10, -10}, {5, 0, 5},
+		{math.MinInt64, 10, math.MinInt64}, {math.MaxInt64, 10, math.MaxInt64 - 7},
+	} {
+		if got := TumblingStart(tc.t, tc.w); got != tc.want {
+			t.Errorf("TumblingStart(%d, %d) = %d, want %d", tc.t, tc.w, got, tc.want)
+		}
+	}
+	// Brute force: every s = k·hop with s <= t < s + width.
+	for tt := int64(-30); tt <= 30; tt++ {
+		for w := int64(1); w <= 12; w++ {
+			for hop := int64(1); hop <= 12; hop++ {
+				var want []int64
+				for s := int64(-60); s <= 60; s++ {
+					if s%hop == 0 && s <= tt && tt < s+w {
+						want = append(want, s)
+					}
+				}
+				if got := HoppingStarts(nil, tt, w, hop); !slices.Equal(got, want) {
+					t.Fatalf("HoppingStarts(%d, %d, %d) = %v, want %v", tt, w, hop, got, want)
+				}
+			}
+		}
+	}
+	if got := HoppingStarts(nil, 5, 0, 1); len(got) != 0 {
+		t.Errorf("HoppingStarts with width 0 = %v", got)
+	}
+	_ = HoppingStarts(nil, math.MinInt64, 100, 7)
+	_ = HoppingStarts(nil, math.MaxInt64, 100, 7)
+}
+
+// The public wrappers answer what the shared ring computes, and reject
+// non-finite values.
+func TestSlidingWrappers(t *testing.T) {
+	spec := SlidingSpec{Window: 30, Resolution: 10, Horizon: 100}
+	sum, mn, mx, me := NewSlidingSum(spec), NewSlidingMin(spec), NewSlidingMax(spec), NewSlidingMean(spec)
+	for i, v := range []float64{3, -1, 4, 1, 5} {
+		for _, a := range []interface{ Add(int64, float64) bool }{sum, mn, mx, me} {
+			if !a.Add(int64(i*5), v) {
+				t.Fatal("Add rejected a finite value")
+			}
+		}
+	}
+	if sum.SumAt(20) != 12 || mn.MinAt(20) != -1 || mx.MaxAt(20) != 5 || me.MeanAt(20) != 12.0/5 || me.CountAt(20) != 5 {
+		t.Errorf("got sum %v min %v max %v mean %v", sum.SumAt(20), mn.MinAt(20), mx.MaxAt(20), me.MeanAt(20))
+	}
+	if sum.Add(1, math.NaN()) || mn.Add(1, math.Inf(1)) || sum.Len() != 5 {
+		t.Error("non-finite value accepted")
+	}
+	if !math.IsNaN(me.MeanAt(-100)) || sum.SumAt(-100) != 0 {
+		t.Error("empty window should give NaN mean and 0 sum")
+	}
+	if sum.Newest() != 20 || sum.SizeBytes() <= 0 || sum.Spec() != spec {
+		t.Error("accessors")
+	}
+}
