@@ -43,6 +43,9 @@ type Pipeline[E any] struct {
 
 	c      counters
 	in     inputs // scratch for the current event
+	// recs[i] is the record of entity i that apply just updated (nil if
+	// none), so the Eager row reads it without a second lookup.
+	recs   []*record
 	vals   []float64
 	held   heldHeap[E] // Settled: events waiting for the watermark
 	batch  []*held[E]  // Settled: scratch for one timestamp's events
@@ -118,6 +121,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	}
 	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
 	p.vals = make([]float64, p.nfeat)
+	p.recs = make([]*record, len(p.ents))
 	if err := p.checkDefinitions(); err != nil {
 		store.Close()
 		return nil, err
@@ -269,7 +273,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		if err := p.apply(&p.in); err != nil {
 			return dst, err
 		}
-		p.valuesAt(&p.in, p.vals)
+		p.valuesAt(&p.in, p.vals, p.recs)
 		p.emit(seq, t, e, late)
 		if wantVals {
 			dst = append(dst, p.vals...)
@@ -359,6 +363,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 func (p *Pipeline[E]) apply(in *inputs) error {
 	for i, es := range p.ents {
 		key := in.keys[i]
+		p.recs[i] = nil
 		if key == "" || !slices.Contains(in.on[es.first:es.first+len(es.kinds)], true) {
 			continue
 		}
@@ -379,6 +384,7 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 		}
 		rec.last = max(rec.last, in.t)
 		es.table.Touch(sl)
+		p.recs[i] = rec
 	}
 	p.c.applied++
 	if err := p.store.Err(); err != nil {
@@ -389,8 +395,9 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 }
 
 // valuesAt writes the features of the event described by in, as of its
-// time, to out.
-func (p *Pipeline[E]) valuesAt(in *inputs, out []float64) {
+// time, to out. recs, if not nil, holds records just updated by apply (an
+// evicted record is still current: nothing changed it since).
+func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 	for i, es := range p.ents {
 		key := in.keys[i]
 		aggs := es.zero
@@ -400,11 +407,11 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64) {
 			}
 			continue
 		}
-		sl, err := es.table.Get(key)
-		if err != nil {
+		if recs != nil && recs[i] != nil {
+			aggs = recs[i].aggs
+		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		}
-		if sl != nil {
+		} else if sl != nil {
 			aggs = sl.Value.aggs
 		}
 		for j, a := range aggs {
@@ -445,7 +452,7 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 			}
 		}
 		for _, h := range p.batch {
-			p.valuesAt(&h.in, p.vals)
+			p.valuesAt(&h.in, p.vals, nil)
 			p.emit(h.seq, t, h.e, false)
 		}
 		clear(p.batch)

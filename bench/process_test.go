@@ -1,0 +1,199 @@
+package bench
+
+import (
+	"fmt"
+	"math/rand/v2"
+	"testing"
+	"time"
+
+	"github.com/cockroachdb/pebble/v2"
+	"github.com/cockroachdb/pebble/v2/bloom"
+	"github.com/cockroachdb/pebble/v2/vfs"
+	"github.com/tallyward/tallyward"
+	"github.com/tallyward/tallyward/window"
+)
+
+// event is a payment attempt against a card.
+type event struct {
+	T    int64
+	Card string
+}
+
+const (
+	numEntities = 1_000_000
+	numDraws    = 1 << 22 // pre-generated key draws, cycled
+	step        = int64(time.Millisecond)
+	start       = int64(1_700_000_000) * int64(time.Second)
+)
+
+var (
+	cardNames []string
+	draws     []int32
+)
+
+// inputs builds 1M entity keys and 4M Zipf(1.1) draws once, before any
+// timer starts.
+func inputs() ([]string, []int32) {
+	if cardNames == nil {
+		cardNames = make([]string, numEntities)
+		for i := range cardNames {
+			cardNames[i] = fmt.Sprintf("card-%07d", i)
+		}
+		r := rand.New(rand.NewPCG(1, 2))
+		z := rand.NewZipf(r, 1.1, 1, numEntities-1)
+		draws = make([]int32, numDraws)
+		for i := range draws {
+			draws[i] = int32(z.Uint64())
+		}
+	}
+	return cardNames, draws
+}
+
+var countKind = tallyward.SlidingCount{Window: 10 * time.Minute, Resolution: 10 * time.Second}
+
+func spec() tallyward.Spec[event] {
+	return tallyward.Spec[event]{
+		Time: func(e event) int64 { return e.T },
+		Entities: []tallyward.Entity[event]{{
+			Name: "card", Key: func(e event) string { return e.Card },
+			Features: []tallyward.Feature[event]{{Name: "payments_10m", Kind: countKind}},
+		}},
+	}
+}
+
+// BenchmarkProcess measures Score (process + features returned) with one
+// sliding-count feature over 1M entities with Zipf(1.1) keys.
+//
+//   - mem/cache-fits: in-memory Pebble, a cache that holds every entity.
+//   - disk/cache-fits: Pebble on disk, same cache.
+//   - disk/cache-16MiB: Pebble on disk, a cache far smaller than the
+//     working set, so misses and evictions hit Pebble.
+//
+// Automatic commits stay on (every 100k events, synced), so commit cost is
+// included.
+func BenchmarkProcess(b *testing.B) {
+	keys, draws := inputs()
+	for _, c := range []struct {
+		name  string
+		disk  bool
+		cache int64
+	}{
+		{"mem/cache-fits", false, 2 << 30},
+		{"disk/cache-fits", true, 2 << 30},
+		{"disk/cache-16MiB", true, 16 << 20},
+	} {
+		b.Run(c.name, func(b *testing.B) {
+			opts := tallyward.Options{CacheBytes: c.cache}
+			if c.disk {
+				opts.Dir = b.TempDir()
+			}
+			p, err := tallyward.Open(spec(), opts)
+			if err != nil {
+				b.Fatal(err)
+			}
+			defer p.Close()
+			var out []float64
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				e := event{T: start + int64(i)*step, Card: keys[draws[i%numDraws]]}
+				if out, err = p.Score(e, out[:0]); err != nil {
+					b.Fatal(err)
+				}
+			}
+			b.StopTimer()
+			b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "events/s")
+		})
+	}
+}
+
+// BenchmarkProcessHot is the cache-hit path alone: 1000 hot entities,
+// warmed before the timer, no automatic commits. Target: 0 allocs/op.
+func BenchmarkProcessHot(b *testing.B) {
+	keys, _ := inputs()
+	p, err := tallyward.Open(spec(), tallyward.Options{CommitEvery: -1})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer p.Close()
+	var out []float64
+	for i := range 100_000 {
+		if out, err = p.Score(event{T: start + int64(i)*step, Card: keys[i%1000]}, out[:0]); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := range b.N {
+		e := event{T: start + int64(100_000+i)*step, Card: keys[i%1000]}
+		if out, err = p.Score(e, out[:0]); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.StopTimer()
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "events/s")
+}
+
+// BenchmarkNaiveGetSet is the baseline: per event, a Pebble Get of the
+// entity's encoded count, decode, add, encode and a Pebble Set, with no
+// cache. Same keys, same aggregate, same store settings.
+func BenchmarkNaiveGetSet(b *testing.B) {
+	keys, draws := inputs()
+	for _, c := range []struct {
+		name string
+		disk bool
+	}{{"mem", false}, {"disk", true}} {
+		b.Run(c.name, func(b *testing.B) {
+			popts := &pebble.Options{FS: vfs.NewMem(), Logger: quiet{}, FormatMajorVersion: pebble.FormatValueSeparation}
+			dir := "naive"
+			if c.disk {
+				popts.FS, dir = vfs.Default, b.TempDir()
+			}
+			for i := range popts.Levels {
+				popts.Levels[i].FilterPolicy = bloom.FilterPolicy(10)
+			}
+			db, err := pebble.Open(dir, popts)
+			if err != nil {
+				b.Fatal(err)
+			}
+			defer db.Close()
+			spec := window.SlidingSpec{Window: int64(countKind.Window), Resolution: int64(countKind.Resolution), Horizon: 1}
+			var buf []byte
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				key := []byte(keys[draws[i%numDraws]])
+				t := start + int64(i)*step
+				c := window.NewSlidingCount(spec)
+				v, closer, err := db.Get(key)
+				if err == nil {
+					err = c.UnmarshalBinary(v)
+					closer.Close()
+					if err != nil {
+						b.Fatal(err)
+					}
+				} else if err != pebble.ErrNotFound {
+					b.Fatal(err)
+				}
+				c.Add(t)
+				_ = c.CountAt(t)
+				if buf, err = c.AppendBinary(buf[:0]); err != nil {
+					b.Fatal(err)
+				}
+				if err := db.Set(key, buf, pebble.NoSync); err != nil {
+					b.Fatal(err)
+				}
+			}
+			b.StopTimer()
+			b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "events/s")
+		})
+	}
+}
+
+type quiet struct{}
+
+func (quiet) Infof(string, ...any)  {}
+func (quiet) Errorf(string, ...any) {}
+func (quiet) Fatalf(f string, a ...any) {
+	panic(fmt.Sprintf(f, a...))
+}
