@@ -89,7 +89,8 @@ func (s DecaySpec) Validate() error {
 // use.
 //
 // Invariants: raw is sorted by time with cutoff < t <= maxT;
-// land == floor(cutoff / (RebaseEvery·h)); W >= 0 and W == 0 implies
+// land == floor(cutoff / (RebaseEvery·h)), landT and nextT are the
+// landmark and the next one in ns; W >= 0 and W == 0 implies
 // mean == 0 and M2 == 0; !seen implies an empty state.
 type Decayed struct {
 	spec  DecaySpec
@@ -99,6 +100,8 @@ type Decayed struct {
 	seen        bool
 	maxT        int64
 	land        int64 // landmark index: L = land · step
+	landT       int64 // L, saturated: startOf(land, step)
+	nextT       int64 // the next landmark: startOf(land+1, step)
 	w, mean, m2 float64
 	raw         seq[event]
 }
@@ -118,7 +121,8 @@ func (d *Decayed) Spec() DecaySpec { return d.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
 func (d *Decayed) Reset() {
-	d.seen, d.maxT, d.land, d.w, d.mean, d.m2 = false, 0, 0, 0, 0, 0
+	d.seen, d.maxT, d.w, d.mean, d.m2 = false, 0, 0, 0, 0
+	d.setLand(0)
 	d.raw.clear()
 }
 
@@ -141,7 +145,7 @@ func (d *Decayed) Add(t int64, x float64) bool {
 	switch {
 	case !d.seen:
 		d.seen, d.maxT = true, t
-		d.land = floorDiv(d.cutoff(), d.step)
+		d.setLand(floorDiv(d.cutoff(), d.step))
 	case t > d.maxT:
 		d.maxT = t
 		d.advance()
@@ -150,24 +154,29 @@ func (d *Decayed) Add(t int64, x float64) bool {
 		insertSorted(&d.raw, event{t, x})
 		return true
 	}
-	d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.land, t, x)
+	d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.landT, t, x)
 	return true
+}
+
+func (d *Decayed) setLand(land int64) {
+	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(satAdd(land, 1), d.step)
 }
 
 // advance moves the landmark to the new cutoff and folds raw events that
 // fell to or behind it.
 func (d *Decayed) advance() {
 	c := d.cutoff()
-	if nl := floorDiv(c, d.step); nl > d.land {
+	if c >= d.nextT {
+		nl := floorDiv(c, d.step)
 		d.w, d.m2 = d.rescale(d.w, d.m2, nl-d.land)
 		if d.w == 0 {
 			d.mean = 0
 		}
-		d.land = nl
+		d.setLand(nl)
 	}
 	k := foldable(&d.raw, c)
 	for _, e := range d.raw.live()[:k] {
-		d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.land, e.t, e.v)
+		d.w, d.mean, d.m2 = d.fold(d.w, d.mean, d.m2, d.landT, e.t, e.v)
 	}
 	d.raw.popFront(k)
 }
@@ -182,9 +191,9 @@ func (d *Decayed) rescale(w, m2 float64, j int64) (float64, float64) {
 }
 
 // fold applies West's weighted update for (t, x) with weight
-// 2^((t − L)/h), L = land·step. A weight that rounds to zero is skipped.
-func (d *Decayed) fold(w, mean, m2 float64, land, t int64, x float64) (float64, float64, float64) {
-	g := math.Exp2(float64(satSub(t, startOf(land, d.step))) / float64(d.spec.HalfLife))
+// 2^((t − L)/h), L = landT. A weight that rounds to zero is skipped.
+func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64, float64, float64) {
+	g := math.Exp2(float64(satSub(t, landT)) / float64(d.spec.HalfLife))
 	if g == 0 {
 		return w, mean, m2
 	}
@@ -207,7 +216,11 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 	if !d.valid || !d.seen || t < d.cutoff() {
 		return 0, 0, 0, 0, false
 	}
-	land := floorDiv(t, d.step)
+	land, landT := d.land, d.landT
+	if t >= d.nextT {
+		land = floorDiv(t, d.step)
+		landT = startOf(land, d.step)
+	}
 	w, m2 = d.rescale(d.w, d.m2, land-d.land)
 	mean = d.mean
 	if w == 0 {
@@ -217,9 +230,9 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 		if e.t > t {
 			break
 		}
-		w, mean, m2 = d.fold(w, mean, m2, land, e.t, e.v)
+		w, mean, m2 = d.fold(w, mean, m2, landT, e.t, e.v)
 	}
-	f = math.Exp2(-float64(satSub(t, startOf(land, d.step))) / float64(d.spec.HalfLife))
+	f = math.Exp2(-float64(satSub(t, landT)) / float64(d.spec.HalfLife))
 	return w, mean, m2, f, true
 }
 
@@ -306,7 +319,8 @@ func (d *Decayed) decode(b []byte, store bool) error {
 	if err := r.end(); err != nil || !store {
 		return err
 	}
-	d.seen, d.maxT, d.land = true, maxT, floorDiv(cutoff, d.step)
+	d.seen, d.maxT = true, maxT
+	d.setLand(floorDiv(cutoff, d.step))
 	d.w, d.mean, d.m2 = w, mean, m2
 	return nil
 }

@@ -83,7 +83,8 @@ type pane struct {
 //   - total == sum of panes[i].n + raw.len();
 //   - panes are in strictly increasing idx order, each with n >= 1 and
 //     floor <= idx <= pane(cutoff);
-//   - raw is sorted by t (ties in arrival order), each cutoff < t <= maxT.
+//   - raw is sorted by t (ties in arrival order), each cutoff < t <= maxT;
+//   - when seen, cutPane, cutStart, cutNext describe pane(cutoff).
 type ring struct {
 	spec  SlidingSpec
 	valid bool  // spec.Validate() == nil
@@ -94,8 +95,11 @@ type ring struct {
 	seen  bool
 	maxT  int64
 	total uint64
-	panes seq[pane]
-	raw   seq[event]
+	// cutPane = pane(cutoff), cutStart its first ns, cutNext the first ns
+	// of the next pane (saturated); they spare divisions on the hot path.
+	cutPane, cutStart, cutNext int64
+	panes                      seq[pane]
+	raw                        seq[event]
 }
 
 func (g *ring) init(spec SlidingSpec, o op, kind byte) {
@@ -105,9 +109,10 @@ func (g *ring) init(spec SlidingSpec, o op, kind byte) {
 		return
 	}
 	g.n = spec.Window / spec.Resolution
-	np := min(g.n+1, 64)
-	g.panes.buf = make([]pane, 0, np)
-	g.raw.buf = make([]event, 0, 8)
+	// Small to start: most entities are sparse. Storage grows by append and
+	// is then reused, so the steady state allocates nothing.
+	g.panes.buf = make([]pane, 0, min(g.n+1, 4))
+	g.raw.buf = make([]event, 0, 4)
 }
 
 // Spec returns the spec the aggregate was built with.
@@ -142,6 +147,21 @@ func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
 // floorOf is the oldest pane still retained for a given cutoff.
 func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
 
+func (g *ring) setCut() {
+	g.cutPane = g.paneOf(g.cutoff())
+	g.cutStart = g.paneStart(g.cutPane)
+	g.cutNext = g.paneStart(satAdd(g.cutPane, 1))
+}
+
+// foldedPane is pane(t) for t <= cutoff, without a division when t lies in
+// the cutoff's pane.
+func (g *ring) foldedPane(t int64) int64 {
+	if t >= g.cutStart {
+		return g.cutPane
+	}
+	return g.paneOf(t)
+}
+
 // add applies one event; see SlidingCount.Add.
 func (g *ring) add(t int64, v float64) bool {
 	if !g.valid || (g.op.hasValue() && !finite(v)) {
@@ -153,18 +173,18 @@ func (g *ring) add(t int64, v float64) bool {
 	switch {
 	case !g.seen:
 		g.seen, g.maxT = true, t
+		g.setCut()
 	case t > g.maxT:
 		g.maxT = t
 		g.advance()
 	}
-	c := g.cutoff()
-	if t > c {
+	if t > g.cutoff() {
 		insertSorted(&g.raw, event{t, v})
 	} else {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
-		p := g.paneOf(t)
-		if p < g.floorOf(c) {
+		p := g.foldedPane(t)
+		if p < satSub(g.cutPane, g.n-1) {
 			return false
 		}
 		g.foldLate(p, v)
@@ -178,9 +198,13 @@ func (g *ring) add(t int64, v float64) bool {
 // so they fold onto the last pane or after it.
 func (g *ring) advance() {
 	c := g.cutoff()
+	moved := c >= g.cutNext
+	if moved {
+		g.setCut()
+	}
 	k := foldable(&g.raw, c)
 	for _, e := range g.raw.live()[:k] {
-		p := g.paneOf(e.t)
+		p := g.foldedPane(e.t)
 		if g.panes.len() > 0 && g.panes.last().idx == p {
 			l := g.panes.last()
 			l.n++
@@ -190,7 +214,10 @@ func (g *ring) advance() {
 		}
 	}
 	g.raw.popFront(k)
-	f := g.floorOf(c)
+	if !moved {
+		return // the floor did not move
+	}
+	f := satSub(g.cutPane, g.n-1)
 	k = 0
 	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
 		g.total -= ps[k].n
@@ -368,5 +395,6 @@ func (g *ring) decode(b []byte, store bool) error {
 		return err
 	}
 	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)
+	g.setCut()
 	return nil
 }

@@ -19,6 +19,9 @@ func (g *ring) checkInvariants() error {
 	}
 	c := g.cutoff()
 	pc, floor := g.paneOf(c), g.floorOf(c)
+	if g.cutPane != pc || g.cutStart != g.paneStart(pc) || g.cutNext != g.paneStart(satAdd(pc, 1)) {
+		return fmt.Errorf("cut cache (%d, %d, %d) stale for cutoff %d", g.cutPane, g.cutStart, g.cutNext, c)
+	}
 	var sum uint64
 	for i, p := range g.panes.live() {
 		if p.n == 0 || p.idx < floor || p.idx > pc {
