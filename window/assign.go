@@ -14,15 +14,19 @@ func TumblingStart(t, width int64) int64 {
 	return startOf(floorDiv(t, width), width)
 }
 
+// MaxHoppingOverlap bounds width/hop for HoppingStarts, so that a bad
+// setting cannot make it allocate without limit.
+const MaxHoppingOverlap = 1 << 12
+
 // HoppingStarts appends to dst the start of every hopping window of the
 // given width, starting every hop nanoseconds, that holds t, oldest first:
-// each s with s mod hop = 0 and s <= t < s + width. It appends nothing when width <= 0 or
-// hop <= 0.
+// each s with s mod hop = 0 and s <= t < s + width. It appends nothing when
+// width <= 0, hop <= 0 or width/hop > MaxHoppingOverlap.
 //
 // A window starting at s is [s, s+width); at most ceil(width/hop) windows
 // overlap any instant, so size dst accordingly to avoid an allocation.
 func HoppingStarts(dst []int64, t, width, hop int64) []int64 {
-	if width <= 0 || hop <= 0 {
+	if width <= 0 || hop <= 0 || width/hop > MaxHoppingOverlap {
 		return dst
 	}
 	lo := satSub(t, width-1) // starts lie in [t − width + 1, t]

@@ -31,9 +31,10 @@ package window
 // newer than t; it undercounts by the events of pane(t) with ti <= t, and by
 // any events of panes already discarded below the floor.
 //
-// The zero value is unusable: build with NewSlidingCount. An aggregate built
-// from an invalid spec ignores Add (returns false), answers 0 and fails to
-// encode or decode with ErrInvalidSpec; validate specs first.
+// Build with NewSlidingCount; Reset makes it reusable without allocating.
+// An aggregate built from an invalid spec (and the zero value, which is
+// one) ignores Add (returns false), answers 0 and fails to encode or decode
+// with ErrInvalidSpec; validate specs first. Nothing panics.
 //
 // Not safe for concurrent use.
 type SlidingCount struct{ ring }

@@ -1,7 +1,9 @@
 package window
 
 import (
+	"cmp"
 	"math"
+	"math/rand/v2"
 	"slices"
 	"testing"
 )
@@ -76,6 +78,9 @@ func TestAssign(t *testing.T) {
 	if got := HoppingStarts(nil, 5, 0, 1); len(got) != 0 {
 		t.Errorf("HoppingStarts with width 0 = %v", got)
 	}
+	if got := HoppingStarts(nil, 5, math.MaxInt64, 1); len(got) != 0 {
+		t.Errorf("HoppingStarts beyond MaxHoppingOverlap = %d starts", len(got))
+	}
 	_ = HoppingStarts(nil, math.MinInt64, 100, 7)
 	_ = HoppingStarts(nil, math.MaxInt64, 100, 7)
 }
@@ -103,5 +108,57 @@ func TestSlidingWrappers(t *testing.T) {
 	}
 	if sum.Newest() != 20 || sum.SizeBytes() <= 0 || sum.Spec() != spec {
 		t.Error("accessors")
+	}
+}
+
+// Integer states depend only on the multiset of events when every event
+// arrives within Horizon of the newest: any such arrival order gives the
+// same encoding (hence the same answers) for counts, velocity and recency.
+func TestArrivalOrderWithinHorizon(t *testing.T) {
+	for seed := range uint64(300) {
+		rng := rand.New(rand.NewPCG(seed, 11))
+		horizon := int64(rng.IntN(30))
+		spec := SlidingSpec{Window: 40, Resolution: 5, Horizon: horizon}
+		ts := randomStream(rng, 1+rng.IntN(50))
+		slices.Sort(ts)
+		var ref [3][]byte
+		for trial := range 4 {
+			order := slices.Clone(ts)
+			if trial > 0 {
+				// Arrival key t + jitter in [0, horizon]: an event never
+				// arrives after one more than horizon newer.
+				key := map[int]int64{}
+				idx := make([]int, len(order))
+				for i := range idx {
+					idx[i] = i
+					key[i] = order[i] + rng.Int64N(horizon+1)
+				}
+				slices.SortStableFunc(idx, func(a, b int) int { return cmp.Compare(key[a], key[b]) })
+				for i, j := range idx {
+					order[i] = ts[j]
+				}
+			}
+			c := NewSlidingCount(spec)
+			v := NewVelocity(VelocitySpec{Short: 10, Long: 40, Resolution: 5, Horizon: horizon})
+			r := NewRecency(RecencySpec{Gap: 7, Horizon: horizon})
+			for _, x := range order {
+				if !c.Add(x) || !v.Add(x) {
+					t.Fatalf("seed %d: event %d dropped within the horizon", seed, x)
+				}
+				r.Add(x)
+			}
+			var got [3][]byte
+			for i, a := range []codec{c, v, r} {
+				got[i], _ = a.AppendBinary(nil)
+			}
+			if trial == 0 {
+				ref = got
+			}
+			for i := range got {
+				if !slices.Equal(got[i], ref[i]) {
+					t.Fatalf("seed %d trial %d: aggregate %d encodes %x, in time order %x", seed, trial, i, got[i], ref[i])
+				}
+			}
+		}
 	}
 }

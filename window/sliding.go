@@ -144,9 +144,6 @@ func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.spec.Resolutio
 
 func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
 
-// floorOf is the oldest pane still retained for a given cutoff.
-func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
-
 func (g *ring) setCut() {
 	g.cutPane = g.paneOf(g.cutoff())
 	g.cutStart = g.paneStart(g.cutPane)

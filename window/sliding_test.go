@@ -9,6 +9,9 @@ import (
 	"testing"
 )
 
+// floorOf is the oldest pane retained for a given cutoff.
+func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
+
 // checkInvariants asserts the invariants written on ring.
 func (g *ring) checkInvariants() error {
 	if !g.seen {
