@@ -132,16 +132,17 @@ type Distinct struct {
 	has    bool
 	newest int64
 
-	// Exact mode (regs == nil). Invariant: sorted by (fp, t), no duplicate
-	// pairs; nfp >= the number of distinct fp with an entry whose pane is
+	// Exact mode (regs == nil). Invariant: sorted by (fp, t), at most one
+	// entry per (fp, pane); nfp >= the number of distinct fp with an entry whose pane is
 	// retained.
 	exact []exactEntry
 	nfp   int
 
 	// Sketch mode.
 	regs     *slidingRegs
-	tail     []tailEntry // sorted by (t, key), distinct; t > newest-Horizon
-	views    [2]regView
+	tail     []tailEntry // [tailHead:] sorted by (t, key), distinct; t > newest-Horizon
+	tailHead int
+	views    [3]regView
 	useClock uint64
 	scratch  []uint32
 
@@ -240,12 +241,23 @@ func (d *Distinct) addExact(e exactEntry) {
 	if found {
 		return
 	}
+	// Invariant: one entry per (fp, pane), the earliest. An entry is
+	// dominated by an earlier one of the same item in the same pane: any
+	// query that counts the later one counts the earlier one too.
+	p := d.pane(e.t)
+	if i > 0 && d.exact[i-1].fp == e.fp && d.pane(d.exact[i-1].t) == p {
+		return
+	}
+	if i < len(d.exact) && d.exact[i].fp == e.fp && d.pane(d.exact[i].t) == p {
+		d.exact[i] = e
+		return
+	}
 	newFP := (i == 0 || d.exact[i-1].fp != e.fp) && (i == len(d.exact) || d.exact[i].fp != e.fp)
 	d.exact = slices.Insert(d.exact, i, e)
 	if newFP {
 		d.nfp++
 	}
-	if d.nfp > d.spec.ExactLimit || len(d.exact) > 2*d.spec.ExactLimit+16 {
+	if d.nfp > d.spec.ExactLimit || len(d.exact) > 2*d.nfp+16 {
 		d.normalizeExact()
 		if d.nfp > d.spec.ExactLimit {
 			d.promote()
@@ -324,20 +336,33 @@ func cmpTail(a, b tailEntry) int {
 func (d *Distinct) addSketch(t int64, key uint32) {
 	settled := d.newest - d.spec.Horizon
 	if t > settled {
-		i, found := slices.BinarySearchFunc(d.tail, tailEntry{t, key}, cmpTail)
+		i, found := slices.BinarySearchFunc(d.liveTail(), tailEntry{t, key}, cmpTail)
 		if !found {
-			d.tail = slices.Insert(d.tail, i, tailEntry{t, key})
+			d.tail = slices.Insert(d.tail, d.tailHead+i, tailEntry{t, key})
+			d.applyViews(d.pane(t), key, true)
 		}
 	} else {
 		d.fold(d.pane(t), key)
 	}
-	n := 0
-	for n < len(d.tail) && d.tail[n].t <= settled {
-		d.fold(d.pane(d.tail[n].t), d.tail[n].key)
-		n++
+	d.settleTail()
+}
+
+// liveTail returns the unsettled entries.
+func (d *Distinct) liveTail() []tailEntry { return d.tail[d.tailHead:] }
+
+// settleTail folds the tail entries that newest has moved past. They are
+// dropped by advancing tailHead; the buffer is compacted in place once the
+// dropped prefix is the larger half, so the cost is amortised O(1).
+func (d *Distinct) settleTail() {
+	settled := d.newest - d.spec.Horizon
+	for d.tailHead < len(d.tail) && d.tail[d.tailHead].t <= settled {
+		d.fold(d.pane(d.tail[d.tailHead].t), d.tail[d.tailHead].key)
+		d.tailHead++
 	}
-	if n > 0 {
-		d.tail = slices.Delete(d.tail, 0, n)
+	if d.tailHead > 64 && 2*d.tailHead > len(d.tail) {
+		n := copy(d.tail, d.tail[d.tailHead:])
+		d.tail = d.tail[:n]
+		d.tailHead = 0
 	}
 }
 
@@ -351,13 +376,20 @@ func (d *Distinct) fold(pane int64, key uint32) {
 	if pane-r.base > maxPaneOff {
 		r.rebase(floor)
 	}
-	j, rho := key>>6, uint8(key&63)
-	if !r.insert(j, pane, rho) {
-		return
+	if r.insert(key>>6, pane, uint8(key&63)) {
+		d.applyViews(pane, key, false)
 	}
+}
+
+// applyViews raises the cached views that include (pane, key): views with
+// tail include every tail entry of their window, the others only folded
+// entries. Raising to a maximum is idempotent, so folding an entry that a
+// tail view already holds changes nothing.
+func (d *Distinct) applyViews(pane int64, key uint32, tailOnly bool) {
+	j, rho := key>>6, uint8(key&63)
 	for i := range d.views {
 		v := &d.views[i]
-		if v.valid && pane >= v.start && rho > v.regs[j] {
+		if v.valid && (v.withTail || !tailOnly) && pane >= v.start && rho > v.regs[j] {
 			v.hist[v.regs[j]]--
 			v.hist[rho]++
 			v.regs[j] = rho
@@ -366,17 +398,19 @@ func (d *Distinct) fold(pane int64, key uint32) {
 	}
 }
 
-// view returns the register view for a window starting at pane start,
-// building it (O(2^p)) if neither cached view matches.
-func (d *Distinct) view(start int64) *regView {
+// view returns the register view for a window starting at pane start, with
+// or without every tail entry, building it (O(2^p + tail)) if no cached
+// view matches.
+func (d *Distinct) view(start int64, withTail bool) *regView {
 	d.useClock++
 	slot := 0
 	for i := range d.views {
-		if d.views[i].valid && d.views[i].start == start {
-			d.views[i].stamps = d.useClock
-			return &d.views[i]
+		v := &d.views[i]
+		if v.valid && v.start == start && v.withTail == withTail {
+			v.stamps = d.useClock
+			return v
 		}
-		if !d.views[i].valid || d.views[i].stamps < d.views[slot].stamps {
+		if !v.valid || v.stamps < d.views[slot].stamps {
 			slot = i
 		}
 	}
@@ -391,7 +425,14 @@ func (d *Distinct) view(start int64) *regView {
 		v.regs[j] = x
 		v.hist[x]++
 	}
-	v.start, v.valid, v.estOK, v.stamps = start, true, false, d.useClock
+	v.start, v.withTail, v.valid, v.estOK, v.stamps = start, withTail, true, false, d.useClock
+	if withTail {
+		for _, e := range d.liveTail() {
+			if d.pane(e.t) >= start {
+				d.applyViews(d.pane(e.t), e.key, true)
+			}
+		}
+	}
 	return v
 }
 
@@ -426,9 +467,17 @@ func (d *Distinct) DistinctAt(t int64) uint64 {
 }
 
 func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
-	v := d.view(start)
+	if t >= d.newest {
+		// Every tail entry is at or before t: the tail view holds them.
+		v := d.view(start, true)
+		if !v.estOK {
+			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+		}
+		return uint64(v.est + 0.5)
+	}
+	v := d.view(start, false)
 	keys := d.scratch[:0]
-	for _, e := range d.tail {
+	for _, e := range d.liveTail() {
 		if e.t > t {
 			break
 		}

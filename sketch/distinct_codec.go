@@ -34,7 +34,7 @@ func (d *Distinct) Merge(o *Distinct) error {
 			}
 		}
 		if d.regs != nil {
-			d.addSketchSettle()
+			d.settleTail()
 		}
 		return nil
 	}
@@ -48,22 +48,11 @@ func (d *Distinct) Merge(o *Distinct) error {
 			d.fold(o.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
 		}
 	}
-	for _, e := range o.tail {
+	for _, e := range o.liveTail() {
 		d.addSketch(e.t, e.key)
 	}
-	d.addSketchSettle()
+	d.settleTail()
 	return nil
-}
-
-// addSketchSettle folds tail entries that newest has moved past.
-func (d *Distinct) addSketchSettle() {
-	settled := d.newest - d.spec.Horizon
-	n := 0
-	for n < len(d.tail) && d.tail[n].t <= settled {
-		d.fold(d.pane(d.tail[n].t), d.tail[n].key)
-		n++
-	}
-	d.tail = d.tail[n:]
 }
 
 const (
@@ -145,8 +134,8 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 			dst = binary.AppendUvarint(dst, uint64(newestPane-r.base-int64(e&maxPaneOff)))
 		}
 	}
-	dst = binary.AppendUvarint(dst, uint64(len(d.tail)))
-	for _, e := range d.tail {
+	dst = binary.AppendUvarint(dst, uint64(len(d.liveTail())))
+	for _, e := range d.liveTail() {
 		dst = binary.AppendUvarint(dst, uint64(e.key))
 		dst = binary.AppendUvarint(dst, uint64(d.newest-e.t))
 	}
@@ -309,8 +298,8 @@ func (d *Distinct) decodeExact(r *reader) error {
 		}
 		e.t = d.newest - int64(age)
 		if i > 0 {
-			if p := d.exact[len(d.exact)-1]; p.t > S && cmpExact(p, e) >= 0 {
-				return corruptf("%s: unsettled entry %d out of order", r.name, i)
+			if p := d.exact[len(d.exact)-1]; p.t > S && (cmpExact(p, e) >= 0 || p.fp == e.fp && d.pane(p.t) == d.pane(e.t)) {
+				return corruptf("%s: unsettled entry %d out of order or in the pane of the previous one", r.name, i)
 			}
 		}
 		d.exact = append(d.exact, e)

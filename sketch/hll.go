@@ -156,9 +156,22 @@ func (s *slidingRegs) store(j uint32, list []uint16) {
 // insert adds (pane, rho) to register j and reports whether the frontier
 // changed. The caller guarantees 0 <= pane-base <= maxPaneOff.
 func (s *slidingRegs) insert(j uint32, pane int64, rho uint8) bool {
+	off := uint16(pane - s.base)
+	if w := s.words[j]; w != spillMark {
+		// Fast path, the common case once a register is warm: the new
+		// entry is dominated by an inline one.
+		for i := 3; i >= 0; i-- {
+			e := uint16(w >> (16 * i))
+			if e == 0 {
+				break
+			}
+			if e&maxPaneOff >= off && uint8(e>>paneOffBits) >= rho {
+				return false
+			}
+		}
+	}
 	var arr [64]uint16
 	list := s.load(j, arr[:0])
-	off := uint16(pane - s.base)
 	// Dominated by an entry at a later-or-equal pane with greater-or-equal rho?
 	for _, e := range list {
 		if e&maxPaneOff >= off && uint8(e>>paneOffBits) >= rho {
@@ -244,11 +257,12 @@ func (s *slidingRegs) sizeBytes() int {
 // regView is the register vector of one window start, with its histogram
 // and a cached estimate.
 type regView struct {
-	start  int64
-	valid  bool
-	estOK  bool
-	est    float64
-	regs   []uint8
-	hist   [64]uint32
-	stamps uint64 // last use, for replacement
+	start    int64
+	withTail bool // includes every unsettled (tail) entry of the window
+	valid    bool
+	estOK    bool
+	est      float64
+	regs     []uint8
+	hist     [64]uint32
+	stamps   uint64 // last use, for replacement
 }

@@ -1,0 +1,348 @@
+package sketch
+
+// Benchmarks. Inputs are generated from fixed seeds before the timer.
+// Compare runs with:
+//
+//	go test -run '^$' -bench . -count 8 ./sketch/ > new.txt
+//	benchstat old.txt new.txt
+
+import (
+	"encoding/binary"
+	"fmt"
+	"math/rand/v2"
+	"testing"
+
+	"github.com/axiomhq/hyperloglog"
+)
+
+var benchCards = []int{10, 1_000, 100_000, 10_000_000}
+
+func benchHashes(n int, seed uint64) []uint64 {
+	hs := make([]uint64, n)
+	var buf [16]byte
+	for i := range hs {
+		binary.LittleEndian.PutUint64(buf[:], seed)
+		binary.LittleEndian.PutUint64(buf[8:], uint64(i))
+		hs[i] = Hash(buf[:])
+	}
+	return hs
+}
+
+// benchSpec: 1 h window of 1 min panes, 5 s horizon, default precision.
+var benchSpec = DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 5 * sec}
+
+const benchT0 = int64(1_760_000_000) * sec
+
+// filledDistinct returns a Distinct holding n distinct items spread over
+// the last half hour, and the time of the newest add.
+func filledDistinct(tb testing.TB, spec DistinctSpec, n int) (*Distinct, int64) {
+	d := mustDistinct(tb, spec)
+	hs := benchHashes(n, 1)
+	step := max(1800*sec/int64(n), 1)
+	t := benchT0
+	for _, h := range hs {
+		d.Add(t, h)
+		t += step
+	}
+	return d, t - step
+}
+
+var filledCache = map[int]*Distinct{}
+var filledNewest = map[int]int64{}
+
+func cachedDistinct(b *testing.B, n int) (*Distinct, int64) {
+	if _, ok := filledCache[n]; !ok {
+		filledCache[n], filledNewest[n] = filledDistinct(b, benchSpec, n)
+	}
+	blob, _ := filledCache[n].AppendBinary(nil)
+	var d Distinct
+	if err := d.UnmarshalBinary(blob); err != nil {
+		b.Fatal(err)
+	}
+	return &d, filledNewest[n]
+}
+
+// BenchmarkDistinctAdd: amortised Add on a stream whose window holds n
+// distinct items (items cycle, time advances 1 ms per add).
+func BenchmarkDistinctAdd(b *testing.B) {
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
+			hs := benchHashes(min(n, 1<<20), 2)
+			d, t := cachedDistinct(b, n)
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := 0; b.Loop(); i++ {
+				t += 1_000_000
+				d.Add(t, hs[i%len(hs)])
+			}
+		})
+	}
+}
+
+// BenchmarkDistinctAddQuery is the per-event path: Add the event, then ask
+// for the count as of its time.
+func BenchmarkDistinctAddQuery(b *testing.B) {
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
+			hs := benchHashes(min(n, 1<<20), 3)
+			d, t := cachedDistinct(b, n)
+			b.ReportAllocs()
+			var sink uint64
+			for i := 0; b.Loop(); i++ {
+				t += 1_000_000
+				d.Add(t, hs[i%len(hs)])
+				sink += d.DistinctAt(t)
+			}
+			_ = sink
+		})
+	}
+}
+
+// BenchmarkDistinctQueryLagged asks at the edge of the Horizon, as a
+// settled emission does, between adds.
+func BenchmarkDistinctQueryLagged(b *testing.B) {
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
+			hs := benchHashes(min(n, 1<<20), 4)
+			d, t := cachedDistinct(b, n)
+			b.ReportAllocs()
+			var sink uint64
+			for i := 0; b.Loop(); i++ {
+				t += 1_000_000
+				d.Add(t, hs[i%len(hs)])
+				sink += d.DistinctAt(t - benchSpec.Horizon + 1)
+			}
+			_ = sink
+		})
+	}
+}
+
+// BenchmarkDistinctEncode reports encoded and heap bytes per summary.
+func BenchmarkDistinctEncode(b *testing.B) {
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
+			d, _ := cachedDistinct(b, n)
+			b.ReportAllocs()
+			var buf []byte
+			for b.Loop() {
+				buf, _ = d.AppendBinary(buf[:0])
+			}
+			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+			b.ReportMetric(float64(d.SizeBytes()), "heap-bytes")
+		})
+	}
+}
+
+func BenchmarkDistinctDecode(b *testing.B) {
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
+			d, _ := cachedDistinct(b, n)
+			blob, _ := d.AppendBinary(nil)
+			b.ReportAllocs()
+			var c Distinct
+			for b.Loop() {
+				if err := c.UnmarshalBinary(blob); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}
+
+// paneSketches is the design measured against sliding registers: one
+// github.com/axiomhq/hyperloglog sketch per pane, merged at query time.
+type paneSketches struct {
+	res, k int64
+	panes  map[int64]*hyperloglog.Sketch
+}
+
+func (s *paneSketches) add(t int64, h uint64) {
+	p := floorDiv(t, s.res)
+	sk := s.panes[p]
+	if sk == nil {
+		sk, _ = hyperloglog.NewSketch(defaultDistinctPrecision, true)
+		s.panes[p] = sk
+		delete(s.panes, p-s.k-1)
+	}
+	sk.InsertHash(h)
+}
+
+func (s *paneSketches) at(t int64) uint64 {
+	p := floorDiv(t, s.res)
+	var m hyperloglog.Sketch
+	for q := p - s.k + 1; q <= p; q++ {
+		if sk := s.panes[q]; sk != nil {
+			_ = m.Merge(sk)
+		}
+	}
+	return m.Estimate()
+}
+
+func (s *paneSketches) encodedBytes() int {
+	n := 0
+	for _, sk := range s.panes {
+		blob, _ := sk.MarshalBinary()
+		n += len(blob)
+	}
+	return n
+}
+
+// BenchmarkDesignPaneSketches measures per-pane axiomhq sketches on the
+// same stream and window as BenchmarkDistinctAdd/AddQuery.
+func BenchmarkDesignPaneSketches(b *testing.B) {
+	for _, n := range benchCards[:3] {
+		hs := benchHashes(n, 1)
+		fill := func() (*paneSketches, int64) {
+			s := &paneSketches{res: benchSpec.Resolution, k: benchSpec.Window / benchSpec.Resolution, panes: map[int64]*hyperloglog.Sketch{}}
+			step := max(1800*sec/int64(n), 1)
+			t := benchT0
+			for _, h := range hs {
+				s.add(t, h)
+				t += step
+			}
+			return s, t
+		}
+		b.Run(fmt.Sprintf("add/n=%d", n), func(b *testing.B) {
+			s, t := fill()
+			b.ReportAllocs()
+			for i := 0; b.Loop(); i++ {
+				t += 1_000_000
+				s.add(t, hs[i%len(hs)])
+			}
+			b.ReportMetric(float64(s.encodedBytes()), "bytes/sketch")
+		})
+		b.Run(fmt.Sprintf("addquery/n=%d", n), func(b *testing.B) {
+			s, t := fill()
+			b.ReportAllocs()
+			var sink uint64
+			for i := 0; b.Loop(); i++ {
+				t += 1_000_000
+				s.add(t, hs[i%len(hs)])
+				sink += s.at(t)
+			}
+			_ = sink
+		})
+	}
+}
+
+func BenchmarkCountMin(b *testing.B) {
+	hs := benchHashes(1<<16, 5)
+	b.Run("add", func(b *testing.B) {
+		c := mustCM(b, CountMinParams{})
+		b.ReportAllocs()
+		for i := 0; b.Loop(); i++ {
+			c.Add(hs[i&(1<<16-1)], 1)
+		}
+	})
+	b.Run("estimate", func(b *testing.B) {
+		c := mustCM(b, CountMinParams{})
+		for _, h := range hs {
+			c.Add(h, 1)
+		}
+		b.ReportAllocs()
+		var sink uint64
+		for i := 0; b.Loop(); i++ {
+			sink += c.Estimate(hs[i&(1<<16-1)])
+		}
+		_ = sink
+	})
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("encode/n=%d", n), func(b *testing.B) {
+			c := mustCM(b, CountMinParams{})
+			rng := rand.New(rand.NewPCG(1, 1))
+			for i := range n {
+				c.Add(HashString(fmt.Sprint(i%max(n/4, 1), rng.IntN(2))), 1)
+			}
+			var buf []byte
+			b.ReportAllocs()
+			for b.Loop() {
+				buf, _ = c.AppendBinary(buf[:0])
+			}
+			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+		})
+	}
+}
+
+func BenchmarkTopK(b *testing.B) {
+	rng := rand.New(rand.NewPCG(6, 6))
+	zipf := rand.NewZipf(rng, 1.2, 1, 1<<20)
+	hs := make([]uint64, 1<<16)
+	for i := range hs {
+		hs[i] = HashString(fmt.Sprint(zipf.Uint64()))
+	}
+	b.Run("add", func(b *testing.B) {
+		s := mustTopK(b, 32)
+		b.ReportAllocs()
+		for i := 0; b.Loop(); i++ {
+			s.Add(hs[i&(1<<16-1)], 1)
+		}
+	})
+	b.Run("top1share", func(b *testing.B) {
+		s := mustTopK(b, 32)
+		for _, h := range hs {
+			s.Add(h, 1)
+		}
+		b.ReportAllocs()
+		var sink float64
+		for b.Loop() {
+			sink += s.TopShare()
+		}
+		_ = sink
+	})
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("encode/n=%d", n), func(b *testing.B) {
+			s := mustTopK(b, 32)
+			for i := range n {
+				s.Add(hs[i&(1<<16-1)], 1)
+			}
+			var buf []byte
+			b.ReportAllocs()
+			for b.Loop() {
+				buf, _ = s.AppendBinary(buf[:0])
+			}
+			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+		})
+	}
+}
+
+func BenchmarkQuantiles(b *testing.B) {
+	rng := rand.New(rand.NewPCG(7, 7))
+	xs := make([]float64, 1<<16)
+	for i := range xs {
+		xs[i] = rng.ExpFloat64() * 120
+	}
+	b.Run("add", func(b *testing.B) {
+		s := mustQ(b, QuantileParams{})
+		b.ReportAllocs()
+		for i := 0; b.Loop(); i++ {
+			s.Add(xs[i&(1<<16-1)])
+		}
+	})
+	b.Run("p95", func(b *testing.B) {
+		s := mustQ(b, QuantileParams{})
+		for _, x := range xs {
+			s.Add(x)
+		}
+		b.ReportAllocs()
+		var sink float64
+		for b.Loop() {
+			v, _ := s.Quantile(0.95)
+			sink += v
+		}
+		_ = sink
+	})
+	for _, n := range benchCards {
+		b.Run(fmt.Sprintf("encode/n=%d", n), func(b *testing.B) {
+			s := mustQ(b, QuantileParams{})
+			for i := range n {
+				s.Add(xs[i&(1<<16-1)])
+			}
+			var buf []byte
+			b.ReportAllocs()
+			for b.Loop() {
+				buf, _ = s.AppendBinary(buf[:0])
+			}
+			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+		})
+	}
+}
