@@ -1,4 +1,101 @@
-// Package sketch holds mergeable, versioned summaries with stated error
-// bounds for per-entity features: windowed distinct counts, Count-Min
-// frequencies, Space-Saving heavy hitters and relative-error quantiles.
+// Package sketch holds mergeable summaries with versioned binary encodings
+// and stated error bounds, for per-entity features: a windowed distinct
+// count (Distinct), item frequencies (CountMin), heavy hitters (TopK) and
+// relative-error quantiles (Quantiles). It does no I/O and depends on no
+// other tallyward package.
+//
+// # Items, time and hashing
+//
+// Items are 64-bit hashes: Hash and HashString (XXH64, seed 0; no
+// allocation). The hash and its seed are part of every format version that
+// stores hashes. Times are int64 Unix nanoseconds passed by the caller; the
+// package never reads a clock. Windows are cut into panes aligned to the Unix
+// epoch, pane(t) = floor(t / Resolution).
+//
+// # Guarantees
+//
+//   - Distinct: exact while at most ExactLimit distinct items are live
+//     (items are 32-bit fingerprints: collisions below n^2/2^33); above it a
+//     HyperLogLog estimate with relative standard error 1.04/sqrt(2^p)
+//     (Flajolet et al., AofA 2007). A query at t counts the items with time
+//     <= t in the Window/Resolution panes ending with pane(t): the exact
+//     window (t-Window, t] less a trailing piece shorter than one pane. It
+//     never counts an item newer than t, for any t >= Newest()-Horizon.
+//   - CountMin: never underestimates; overestimates by at most Epsilon*N
+//     with probability at least 1-Delta (Cormode, Muthukrishnan, 2005).
+//   - TopK: Count-Err <= f <= Count per monitored item; every item with
+//     f > N/Capacity is monitored (Metwally, Agrawal, El Abbadi, 2005).
+//   - Quantiles: every estimate within RelativeAccuracy of the exact value
+//     of its rank, for positive, negative and zero values, as long as that
+//     rank is not in a collapsed bucket (Masson, Rim, Lee, 2019).
+//
+// Each type reports its bound: Distinct.RelativeError, CountMin.ErrorBound,
+// TopK.ErrorBound, Quantiles.RelativeError.
+//
+// # Order
+//
+// Distinct (pane-stamped register frontiers and exact sets), CountMin and
+// Quantiles are functions of the multiset of adds: any arrival order, and
+// any order of Merge, gives identical answers. TopK (Space-Saving) is
+// order-dependent and its Merge is commutative but not associative: for
+// results that do not depend on arrival order, apply its events in a
+// canonical order (the pipeline applies events in (time, tie-break) order
+// once the watermark passes them) and do not merge partial summaries.
+//
+// # Encodings
+//
+// Every type has AppendBinary and UnmarshalBinary. The first byte is the
+// format version (1), the second the kind (1 distinct, 2 Count-Min, 3
+// Space-Saving, 4 quantiles; frozen, never reused); the byte table is in
+// each UnmarshalBinary doc comment. Decoders reject unknown versions
+// (ErrUnknownVersion), trailing bytes (ErrTrailingBytes) and anything
+// malformed (ErrCorrupt), wrapped with context for errors.Is, and leave
+// the receiver unchanged on error. The encodings of this package are
+// canonical (a decoded summary re-encodes to the same bytes), but a summary
+// built by different add orders may still encode differently (TopK), so
+// compare answers, not bytes. Version-1 golden blobs live in testdata/ for
+// good.
+//
+// # Costs
+//
+// Distinct: Add about 30-150 ns amortised and 0 allocations; the per-event
+// Add+DistinctAt about 100-300 ns (see Benchmark*; 2 shared cores). Exact
+// mode holds 16 bytes per live (item, pane) entry; sketch mode 8*2^p bytes
+// of register frontiers plus 2^p bytes per cached view (at most three),
+// about 33 KiB at the default p=12 and 0.6 MiB at 10M items with p=12
+// (frontiers spill beyond four entries). A window start not seen before
+// costs one O(2^p) view rebuild (once per pane boundary). CountMin:
+// 8*width*depth bytes, Add/Estimate O(depth). TopK: O(log Capacity) per Add.
+// Quantiles: one logarithm per Add, 8 bytes per bucket.
+//
+// # What it is not for
+//
+// Not for exact distinct counts of large sets, not for heavy hitters of
+// streams applied in arbitrary order, not for windows longer than 512
+// panes (choose a coarser Resolution), and not for sharing one summary
+// between goroutines: no type is safe for concurrent use, including
+// concurrent queries (queries update caches).
+//
+// # Windowed distinct: the measured choice
+//
+// Two designs were measured on the same stream (1 h window of 1 min panes,
+// 5 s Horizon, p=12, one event per ms, BenchmarkDistinct* against
+// BenchmarkDesignPaneSketches, 2 shared cores under load):
+//
+//	                           n=10      n=1k      n=100k
+//	per-pane axiomhq  add      30 ns     610 ns    46 ns
+//	  add + query              2.4 us    563 us    433 us
+//	  bytes (encoded)          300       7.4 KB    127 KB
+//	sliding registers add      33-56 ns  77-110 ns 150-180 ns
+//	  add + query              85-110 ns 110-220 ns 170-260 ns
+//	  bytes (encoded/heap)     82/488    6.0/33 KB 29/53 KB
+//
+// Per-pane sketches must merge the window's panes and estimate on every
+// query (about 0.5 ms once panes are dense); the sliding registers keep,
+// per register, the frontier of (pane, rho) pairs (Chabchoub, Hebrail,
+// "Sliding HyperLogLog", 2010) and a cached per-window histogram, so a
+// query costs an O(64) estimate (Ertl's improved estimator) only when a
+// register changed, and memory grows with the logarithm of the window's
+// pane count rather than linearly. Below ExactLimit both are replaced by
+// an exact set with exact times, so small entities never touch registers.
 package sketch

@@ -1,0 +1,49 @@
+package sketch_test
+
+import (
+	"fmt"
+
+	"github.com/tallyward/tallyward/sketch"
+)
+
+// Distinct accounts seen on one device in the last 24 hours, with one-hour
+// panes and a 5-second allowed disorder.
+func ExampleDistinct() {
+	const hour = int64(3600e9)
+	d, err := sketch.NewDistinct(sketch.DistinctSpec{Window: 24 * hour, Resolution: hour, Horizon: 5e9})
+	if err != nil {
+		panic(err)
+	}
+	t0 := int64(1_767_225_600e9) // 2026-01-01T00:00:00Z
+	d.Add(t0, sketch.HashString("acct-a"))
+	d.Add(t0+2*hour, sketch.HashString("acct-b"))
+	fmt.Println(d.DistinctAt(t0 + 2*hour))
+	d.Add(t0+3*hour, sketch.HashString("acct-a"))
+	// Later queries: acct-a's first pane leaves the window after 24 h, its
+	// second after 27 h.
+	fmt.Println(d.DistinctAt(t0+3*hour), d.DistinctAt(t0+25*hour), d.DistinctAt(t0+27*hour))
+	// Output:
+	// 2
+	// 2 2 0
+}
+
+// Is this amount above the card's 95th percentile?
+func ExampleQuantiles() {
+	q, _ := sketch.NewQuantiles(sketch.QuantileParams{RelativeAccuracy: 0.01})
+	for i := 1; i <= 100; i++ {
+		q.Add(float64(i))
+	}
+	p95, _ := q.Quantile(0.95)
+	fmt.Printf("p95 %.1f, 250 above: %v\n", p95, 250 > p95)
+	// Output: p95 94.6, 250 above: true
+}
+
+// The share of the most frequent merchant for one card.
+func ExampleTopK() {
+	s, _ := sketch.NewTopK(sketch.TopKParams{Capacity: 8})
+	for _, m := range []string{"m-1", "m-2", "m-1", "m-3", "m-1"} {
+		s.Add(sketch.HashString(m), 1)
+	}
+	fmt.Printf("%.2f\n", s.TopShare())
+	// Output: 0.60
+}
