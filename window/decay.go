@@ -82,7 +82,9 @@ func (s DecaySpec) Validate() error {
 //
 // Float addition is not associative (Goldberg, ACM Computing Surveys 23(1),
 // 1991): bit-identical results need the same apply order, which the
-// pipeline supplies. Add rejects NaN and ±Inf values (returns false).
+// pipeline supplies. Add rejects NaN and ±Inf values (returns false);
+// values should stay well inside the float64 range (|x| < 1e150, say) so
+// that squared deviations cannot overflow.
 //
 // The zero value is unusable: build with NewDecayed; an aggregate built
 // from an invalid spec ignores Add and answers NaN. Not safe for concurrent
@@ -168,10 +170,7 @@ func (d *Decayed) advance() {
 	c := d.cutoff()
 	if c >= d.nextT {
 		nl := floorDiv(c, d.step)
-		d.w, d.m2 = d.rescale(d.w, d.m2, nl-d.land)
-		if d.w == 0 {
-			d.mean = 0
-		}
+		d.w, d.mean, d.m2 = d.rescaled(nl - d.land)
 		d.setLand(nl)
 	}
 	k := foldable(&d.raw, c)
@@ -181,13 +180,19 @@ func (d *Decayed) advance() {
 	d.raw.popFront(k)
 }
 
-// rescale multiplies w and m2 by 2^(−j·RebaseEvery), exactly.
-func (d *Decayed) rescale(w, m2 float64, j int64) (float64, float64) {
+// rescaled returns W, mean and M2 with the weights multiplied by
+// 2^(−j·RebaseEvery): exact unless a result falls into the subnormal range.
+// When W underflows to zero the state becomes empty (all weights vanished).
+func (d *Decayed) rescaled(j int64) (w, mean, m2 float64) {
 	e := -2000 // below the float64 range: 0
 	if j < 2000 {
 		e = -int(j * d.spec.rebase())
 	}
-	return math.Ldexp(w, e), math.Ldexp(m2, e)
+	w, m2 = math.Ldexp(d.w, e), math.Ldexp(d.m2, e)
+	if w == 0 {
+		return 0, 0, 0
+	}
+	return w, d.mean, m2
 }
 
 // fold applies West's weighted update for (t, x) with weight
@@ -221,11 +226,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 		land = floorDiv(t, d.step)
 		landT = startOf(land, d.step)
 	}
-	w, m2 = d.rescale(d.w, d.m2, land-d.land)
-	mean = d.mean
-	if w == 0 {
-		mean = 0
-	}
+	w, mean, m2 = d.rescaled(land - d.land)
 	for _, e := range d.raw.live() {
 		if e.t > t {
 			break
