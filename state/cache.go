@@ -27,23 +27,29 @@ type Slot[V Value] struct {
 	Key   string
 	Value V
 
-	size       int
-	dirty      bool
-	evicted    bool
-	prev, next *Slot[V] // LRU ring; the table's head is the sentinel
+	size    int
+	dirty   bool
+	evicted bool
+	ref     bool // used since the clock hand last passed
+	idx     int  // position in Table.slots
 }
 
 // Table is a write-back cache of one kind of record (one key space under a
 // table name). Gets on a hit cost a map lookup and no allocation; misses
 // read Pebble and decode once.
+//
+// Eviction is CLOCK (second chance): a hit only sets a bit in the slot it
+// already loaded, where an LRU list would also write two neighbouring
+// slots, each likely a cache miss on a large table.
 type Table[V Value] struct {
 	store  *Store
 	name   string
 	decode func(b []byte) (V, error)
 
-	m      map[string]*Slot[V]
-	head   Slot[V]    // sentinel: head.next is most recent, head.prev least
-	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
+	m     map[string]*Slot[V]
+	slots []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
+	hand  int        // clock hand into slots
+	dirty []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
 	keybuf []byte
 	valbuf []byte
 
@@ -54,7 +60,6 @@ type Table[V Value] struct {
 // turns stored bytes into a value; its error is reported with the key.
 func NewTable[V Value](s *Store, name string, decode func(b []byte) (V, error)) *Table[V] {
 	t := &Table[V]{store: s, name: name, decode: decode, m: map[string]*Slot[V]{}}
-	t.head.next, t.head.prev = &t.head, &t.head
 	s.tables = append(s.tables, t)
 	return t
 }
@@ -67,7 +72,7 @@ func (t *Table[V]) Name() string { return t.name }
 func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if sl := t.m[key]; sl != nil {
 		t.hits++
-		t.moveFront(sl)
+		sl.ref = true
 		return sl, nil
 	}
 	if err := t.store.check(); err != nil {
@@ -116,10 +121,15 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 	n := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead
 	t.store.budget.used += int64(n - sl.size)
 	sl.size = n
-	for t.store.budget.used > t.store.budget.limit {
-		victim := t.head.prev
-		if victim == &t.head || victim == sl {
-			return
+	for t.store.budget.used > t.store.budget.limit && len(t.slots) > 1 {
+		if t.hand >= len(t.slots) {
+			t.hand = 0
+		}
+		victim := t.slots[t.hand]
+		if victim.ref || victim == sl {
+			victim.ref = false
+			t.hand++
+			continue
 		}
 		if err := t.evict(victim); err != nil {
 			t.store.fail(err)
@@ -140,13 +150,22 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 		}
 		victim.dirty = false
 	}
-	victim.evicted = true
-	t.unlink(victim)
-	delete(t.m, victim.Key)
-	t.store.budget.used -= int64(victim.size)
-	victim.size = 0
+	t.drop(victim)
 	t.evictions++
 	return nil
+}
+
+// drop removes sl from memory (not from the store).
+func (t *Table[V]) drop(sl *Slot[V]) {
+	sl.evicted = true
+	last := t.slots[len(t.slots)-1]
+	t.slots[sl.idx] = last
+	last.idx = sl.idx
+	t.slots[len(t.slots)-1] = nil
+	t.slots = t.slots[:len(t.slots)-1]
+	delete(t.m, sl.Key)
+	t.store.budget.used -= int64(sl.size)
+	sl.size = 0
 }
 
 func (t *Table[V]) stage(b *pebble.Batch, sl *Slot[V]) error {
@@ -181,11 +200,7 @@ func (t *Table[V]) Delete(key string) error {
 	}
 	if sl := t.m[key]; sl != nil {
 		sl.dirty = false
-		sl.evicted = true
-		t.unlink(sl)
-		delete(t.m, key)
-		t.store.budget.used -= int64(sl.size)
-		sl.size = 0
+		t.drop(sl)
 	}
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, key)
 	if err := t.store.pending.Delete(t.keybuf, nil); err != nil {
@@ -204,23 +219,7 @@ func (t *Table[V]) CacheStats() (hits, misses, evictions uint64) {
 
 func (t *Table[V]) link(sl *Slot[V]) {
 	t.m[sl.Key] = sl
-	sl.prev, sl.next = &t.head, t.head.next
-	t.head.next.prev = sl
-	t.head.next = sl
-}
-
-func (t *Table[V]) unlink(sl *Slot[V]) {
-	sl.prev.next = sl.next
-	sl.next.prev = sl.prev
-	sl.prev, sl.next = nil, nil
-}
-
-func (t *Table[V]) moveFront(sl *Slot[V]) {
-	if t.head.next == sl {
-		return
-	}
-	t.unlink(sl)
-	sl.prev, sl.next = &t.head, t.head.next
-	t.head.next.prev = sl
-	t.head.next = sl
+	sl.idx = len(t.slots)
+	sl.ref = true
+	t.slots = append(t.slots, sl)
 }

@@ -142,6 +142,14 @@ func Open(opts Options) (*Store, error) {
 		Cache:              cache,
 		FormatMajorVersion: FormatMajorVersion,
 		Logger:             opts.Logger,
+		// A commit writes every dirty record in one batch; a memtable
+		// that holds several such batches keeps them from being flushed
+		// as oversized batches one by one, and the stop threshold leaves
+		// room for a flush to finish while the next commit is written.
+		MemTableSize:                64 << 20,
+		MemTableStopWritesThreshold: 4,
+		L0CompactionThreshold:       4,
+		L0StopWritesThreshold:       24,
 	}
 	// A lookup of an entity never seen before is common; bloom filters on
 	// every level make it cheap.
@@ -200,7 +208,14 @@ func (s *Store) fail(err error) error {
 // getRaw looks key up in the pending batch and the database and passes the
 // value to fn, which must not retain it.
 func (s *Store) getRaw(key []byte, fn func(v []byte) error) (bool, error) {
-	v, closer, err := s.pending.Get(key)
+	var v []byte
+	var closer io.Closer
+	var err error
+	if s.pending.Empty() {
+		v, closer, err = s.db.Get(key)
+	} else {
+		v, closer, err = s.pending.Get(key)
+	}
 	if errors.Is(err, pebble.ErrNotFound) {
 		return false, nil
 	}
@@ -266,20 +281,32 @@ func (s *Store) Commit(m Mark) error {
 	if err := s.check(); err != nil {
 		return err
 	}
+	// The commit batch is a plain (unindexed) batch: appending to it is
+	// far cheaper than inserting into the indexed pending batch, which
+	// only exists so that reads see evicted dirty records.
+	b := s.db.NewBatch()
+	defer b.Close()
+	if !s.pending.Empty() {
+		if err := b.Apply(s.pending, nil); err != nil {
+			return s.fail(err)
+		}
+	}
 	for _, t := range s.tables {
-		if err := t.flushDirty(s.pending); err != nil {
+		if err := t.flushDirty(b); err != nil {
 			return s.fail(err)
 		}
 	}
 	buf, _ := m.AppendBinary(nil)
-	if err := s.pending.Set(metaKey(metaMark), buf, nil); err != nil {
+	if err := b.Set(metaKey(metaMark), buf, nil); err != nil {
 		return s.fail(err)
 	}
-	if err := s.pending.Commit(pebble.Sync); err != nil {
+	if err := b.Commit(pebble.Sync); err != nil {
 		return s.fail(fmt.Errorf("state: commit: %w", err))
 	}
-	s.pending.Close()
-	s.pending = s.db.NewIndexedBatch()
+	if !s.pending.Empty() {
+		s.pending.Close()
+		s.pending = s.db.NewIndexedBatch()
+	}
 	s.mark = m
 	s.mark.Cursor = bytes.Clone(m.Cursor)
 	s.mark.Extra = bytes.Clone(m.Extra)
