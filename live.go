@@ -145,4 +145,3 @@ func (l *Live[E]) Close() error {
 	defer l.mu.Unlock()
 	return l.p.Close()
 }
-

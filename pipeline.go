@@ -41,8 +41,8 @@ type Pipeline[E any] struct {
 	futureRejected []uint64
 	lastCommitSeen uint64
 
-	c      counters
-	in     inputs // scratch for the current event
+	c  counters
+	in inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
 	recs   []*record

@@ -46,10 +46,10 @@ type Table[V Value] struct {
 	name   string
 	decode func(b []byte) (V, error)
 
-	m     map[string]*Slot[V]
-	slots []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
-	hand  int        // clock hand into slots
-	dirty []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
+	m      map[string]*Slot[V]
+	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
+	hand   int        // clock hand into slots
+	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
 	keybuf []byte
 	valbuf []byte
 
