@@ -62,59 +62,53 @@ func cachedDistinct(b *testing.B, n int) (*Distinct, int64) {
 	return &d, filledNewest[n]
 }
 
-// BenchmarkDistinctAdd: amortised Add on a stream whose window holds n
-// distinct items (items cycle, time advances 1 ms per add).
-func BenchmarkDistinctAdd(b *testing.B) {
-	for _, n := range benchCards {
-		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
-			hs := benchHashes(min(n, 1<<20), 2)
-			d, t := cachedDistinct(b, n)
-			b.ReportAllocs()
-			b.ResetTimer()
-			for i := 0; b.Loop(); i++ {
-				t += 1_000_000
-				d.Add(t, hs[i%len(hs)])
-			}
-		})
+// benchStream adds one event per ms from hs, cycling, and when query is
+// not nil asks for the count as of lag before each event's time.
+func benchStream(b *testing.B, t int64, hs []uint64, add func(int64, uint64) bool, query func(int64) uint64, lag int64) {
+	b.ReportAllocs()
+	var sink uint64
+	for i := 0; b.Loop(); i++ {
+		t += 1_000_000
+		add(t, hs[i%len(hs)])
+		if query != nil {
+			sink += query(t - lag)
+		}
+	}
+	_ = sink
+}
+
+// BenchmarkDistinct: amortised Add on a stream whose window holds n
+// distinct items; the per-event path (Add, then the count as of the
+// event's time); and Add with a query at the edge of the Horizon, as a
+// settled emission asks.
+func BenchmarkDistinct(b *testing.B) {
+	for _, mode := range []string{"add", "addquery", "addlagged"} {
+		for _, n := range benchCards {
+			b.Run(fmt.Sprintf("%s/n=%d", mode, n), func(b *testing.B) {
+				hs := benchHashes(min(n, 1<<20), 2)
+				d, t := cachedDistinct(b, n)
+				switch mode {
+				case "add":
+					benchStream(b, t, hs, d.Add, nil, 0)
+				case "addquery":
+					benchStream(b, t, hs, d.Add, d.DistinctAt, 0)
+				default:
+					benchStream(b, t, hs, d.Add, d.DistinctAt, benchSpec.Horizon-1)
+				}
+			})
+		}
 	}
 }
 
-// BenchmarkDistinctAddQuery is the per-event path: Add the event, then ask
-// for the count as of its time.
-func BenchmarkDistinctAddQuery(b *testing.B) {
-	for _, n := range benchCards {
-		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
-			hs := benchHashes(min(n, 1<<20), 3)
-			d, t := cachedDistinct(b, n)
-			b.ReportAllocs()
-			var sink uint64
-			for i := 0; b.Loop(); i++ {
-				t += 1_000_000
-				d.Add(t, hs[i%len(hs)])
-				sink += d.DistinctAt(t)
-			}
-			_ = sink
-		})
+// benchEncode times AppendBinary and reports encoded and heap bytes.
+func benchEncode(b *testing.B, e encoder) {
+	b.ReportAllocs()
+	var buf []byte
+	for b.Loop() {
+		buf, _ = e.AppendBinary(buf[:0])
 	}
-}
-
-// BenchmarkDistinctQueryLagged asks at the edge of the Horizon, as a
-// settled emission does, between adds.
-func BenchmarkDistinctQueryLagged(b *testing.B) {
-	for _, n := range benchCards {
-		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
-			hs := benchHashes(min(n, 1<<20), 4)
-			d, t := cachedDistinct(b, n)
-			b.ReportAllocs()
-			var sink uint64
-			for i := 0; b.Loop(); i++ {
-				t += 1_000_000
-				d.Add(t, hs[i%len(hs)])
-				sink += d.DistinctAt(t - benchSpec.Horizon + 1)
-			}
-			_ = sink
-		})
-	}
+	b.ReportMetric(float64(len(buf)), "bytes/sketch")
+	b.ReportMetric(float64(e.SizeBytes()), "heap-bytes")
 }
 
 // BenchmarkDistinctEncode reports encoded and heap bytes per summary.
@@ -122,13 +116,7 @@ func BenchmarkDistinctEncode(b *testing.B) {
 	for _, n := range benchCards {
 		b.Run(fmt.Sprintf("n=%d", n), func(b *testing.B) {
 			d, _ := cachedDistinct(b, n)
-			b.ReportAllocs()
-			var buf []byte
-			for b.Loop() {
-				buf, _ = d.AppendBinary(buf[:0])
-			}
-			b.ReportMetric(float64(len(buf)), "bytes/sketch")
-			b.ReportMetric(float64(d.SizeBytes()), "heap-bytes")
+			benchEncode(b, d)
 		})
 	}
 }
@@ -156,7 +144,7 @@ type paneSketches struct {
 	panes  map[int64]*hyperloglog.Sketch
 }
 
-func (s *paneSketches) add(t int64, h uint64) {
+func (s *paneSketches) add(t int64, h uint64) bool {
 	p := floorDiv(t, s.res)
 	sk := s.panes[p]
 	if sk == nil {
@@ -165,6 +153,7 @@ func (s *paneSketches) add(t int64, h uint64) {
 		delete(s.panes, p-s.k-1)
 	}
 	sk.InsertHash(h)
+	return true
 }
 
 func (s *paneSketches) at(t int64) uint64 {
@@ -188,7 +177,7 @@ func (s *paneSketches) encodedBytes() int {
 }
 
 // BenchmarkDesignPaneSketches measures per-pane axiomhq sketches on the
-// same stream and window as BenchmarkDistinctAdd/AddQuery.
+// same stream and window as BenchmarkDistinct add and addquery.
 func BenchmarkDesignPaneSketches(b *testing.B) {
 	for _, n := range benchCards[:3] {
 		hs := benchHashes(n, 1)
@@ -204,23 +193,12 @@ func BenchmarkDesignPaneSketches(b *testing.B) {
 		}
 		b.Run(fmt.Sprintf("add/n=%d", n), func(b *testing.B) {
 			s, t := fill()
-			b.ReportAllocs()
-			for i := 0; b.Loop(); i++ {
-				t += 1_000_000
-				s.add(t, hs[i%len(hs)])
-			}
+			benchStream(b, t, hs, s.add, nil, 0)
 			b.ReportMetric(float64(s.encodedBytes()), "bytes/sketch")
 		})
 		b.Run(fmt.Sprintf("addquery/n=%d", n), func(b *testing.B) {
 			s, t := fill()
-			b.ReportAllocs()
-			var sink uint64
-			for i := 0; b.Loop(); i++ {
-				t += 1_000_000
-				s.add(t, hs[i%len(hs)])
-				sink += s.at(t)
-			}
-			_ = sink
+			benchStream(b, t, hs, s.add, s.at, 0)
 		})
 	}
 }
@@ -253,12 +231,7 @@ func BenchmarkCountMin(b *testing.B) {
 			for i := range n {
 				c.Add(HashString(fmt.Sprint(i%max(n/4, 1), rng.IntN(2))), 1)
 			}
-			var buf []byte
-			b.ReportAllocs()
-			for b.Loop() {
-				buf, _ = c.AppendBinary(buf[:0])
-			}
-			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+			benchEncode(b, c)
 		})
 	}
 }
@@ -295,12 +268,7 @@ func BenchmarkTopK(b *testing.B) {
 			for i := range n {
 				s.Add(hs[i&(1<<16-1)], 1)
 			}
-			var buf []byte
-			b.ReportAllocs()
-			for b.Loop() {
-				buf, _ = s.AppendBinary(buf[:0])
-			}
-			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+			benchEncode(b, s)
 		})
 	}
 }
@@ -337,12 +305,7 @@ func BenchmarkQuantiles(b *testing.B) {
 			for i := range n {
 				s.Add(xs[i&(1<<16-1)])
 			}
-			var buf []byte
-			b.ReportAllocs()
-			for b.Loop() {
-				buf, _ = s.AppendBinary(buf[:0])
-			}
-			b.ReportMetric(float64(len(buf)), "bytes/sketch")
+			benchEncode(b, s)
 		})
 	}
 }

@@ -21,37 +21,18 @@ func (r *reader) fail(format string, args ...any) {
 	}
 }
 
-func (r *reader) byte1() byte {
-	if r.err != nil {
-		return 0
-	}
-	if r.off >= len(r.b) {
-		r.fail("truncated")
-		return 0
-	}
-	v := r.b[r.off]
-	r.off++
-	return v
-}
+func (r *reader) byte1() byte { return r.fixed(1)[0] }
 
-func (r *reader) uvarint() uint64 {
-	if r.err != nil {
-		return 0
-	}
-	v, n := binary.Uvarint(r.b[r.off:])
-	if n <= 0 {
-		r.fail("bad uvarint")
-		return 0
-	}
-	r.off += n
-	return v
-}
+func (r *reader) uvarint() uint64 { return readVarint(r, binary.Uvarint) }
 
-func (r *reader) varint() int64 {
+func (r *reader) varint() int64 { return readVarint(r, binary.Varint) }
+
+// readVarint decodes one varint with f (binary.Uvarint or binary.Varint).
+func readVarint[T uint64 | int64](r *reader, f func([]byte) (T, int)) T {
 	if r.err != nil {
 		return 0
 	}
-	v, n := binary.Varint(r.b[r.off:])
+	v, n := f(r.b[r.off:])
 	if n <= 0 {
 		r.fail("bad varint")
 		return 0
@@ -60,31 +41,21 @@ func (r *reader) varint() int64 {
 	return v
 }
 
-func (r *reader) u32() uint32 {
-	if r.err != nil {
-		return 0
-	}
-	if len(r.b)-r.off < 4 {
+// fixed returns the next n bytes, or n zero bytes after a failure.
+func (r *reader) fixed(n int) []byte {
+	if r.err == nil && len(r.b)-r.off < n {
 		r.fail("truncated")
-		return 0
 	}
-	v := binary.BigEndian.Uint32(r.b[r.off:])
-	r.off += 4
-	return v
+	if r.err != nil {
+		return make([]byte, n)
+	}
+	r.off += n
+	return r.b[r.off-n : r.off]
 }
 
-func (r *reader) u64() uint64 {
-	if r.err != nil {
-		return 0
-	}
-	if len(r.b)-r.off < 8 {
-		r.fail("truncated")
-		return 0
-	}
-	v := binary.BigEndian.Uint64(r.b[r.off:])
-	r.off += 8
-	return v
-}
+func (r *reader) u32() uint32 { return binary.BigEndian.Uint32(r.fixed(4)) }
+
+func (r *reader) u64() uint64 { return binary.BigEndian.Uint64(r.fixed(8)) }
 
 func (r *reader) f64() float64 { return math.Float64frombits(r.u64()) }
 

@@ -26,12 +26,8 @@ type CountMinParams struct {
 const maxCountMinCells = 1 << 22
 
 func (p CountMinParams) withDefaults() CountMinParams {
-	if p.Epsilon == 0 {
-		p.Epsilon = 0.001
-	}
-	if p.Delta == 0 {
-		p.Delta = 0.01
-	}
+	orDefault(&p.Epsilon, 0.001)
+	orDefault(&p.Delta, 0.01)
 	return p
 }
 
@@ -41,14 +37,14 @@ func (p CountMinParams) Validate() error {
 	p = p.withDefaults()
 	var errs []error
 	if !(p.Epsilon >= 1e-6 && p.Epsilon < 1) {
-		errs = append(errs, fmt.Errorf("count-min: Epsilon %v must be in [1e-6, 1): %w", p.Epsilon, ErrInvalidSpec))
+		errs = appendSpecErr(errs, "count-min", "Epsilon %v must be in [1e-6, 1)", p.Epsilon)
 	}
 	if !(p.Delta >= 1e-12 && p.Delta < 1) {
-		errs = append(errs, fmt.Errorf("count-min: Delta %v must be in [1e-12, 1): %w", p.Delta, ErrInvalidSpec))
+		errs = appendSpecErr(errs, "count-min", "Delta %v must be in [1e-12, 1)", p.Delta)
 	}
 	if len(errs) == 0 {
 		if w, d := p.Dims(); w*d > maxCountMinCells {
-			errs = append(errs, fmt.Errorf("count-min: width %d * depth %d exceeds %d cells: %w", w, d, maxCountMinCells, ErrInvalidSpec))
+			errs = appendSpecErr(errs, "count-min", "width %d * depth %d exceeds %d cells", w, d, maxCountMinCells)
 		}
 	}
 	return errors.Join(errs...)

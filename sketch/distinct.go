@@ -1,8 +1,8 @@
 package sketch
 
 import (
+	"cmp"
 	"errors"
-	"fmt"
 	"math"
 	"slices"
 )
@@ -47,12 +47,8 @@ const (
 
 // withDefaults returns s with zero optional fields set to their defaults.
 func (s DistinctSpec) withDefaults() DistinctSpec {
-	if s.Precision == 0 {
-		s.Precision = defaultDistinctPrecision
-	}
-	if s.ExactLimit == 0 {
-		s.ExactLimit = defaultExactLimit
-	}
+	orDefault(&s.Precision, defaultDistinctPrecision)
+	orDefault(&s.ExactLimit, defaultExactLimit)
 	return s
 }
 
@@ -61,9 +57,7 @@ func (s DistinctSpec) withDefaults() DistinctSpec {
 func (s DistinctSpec) Validate() error {
 	s = s.withDefaults()
 	var errs []error
-	bad := func(format string, args ...any) {
-		errs = append(errs, fmt.Errorf("distinct spec: "+format+": %w", append(args, ErrInvalidSpec)...))
-	}
+	bad := func(format string, args ...any) { errs = appendSpecErr(errs, "distinct spec", format, args...) }
 	if s.Resolution <= 0 || s.Resolution > maxSpecDuration {
 		bad("Resolution %d must be in [1, 2^61]", s.Resolution)
 	}
@@ -221,19 +215,10 @@ func (d *Distinct) Add(t int64, h uint64) bool {
 }
 
 func cmpExact(a, b exactEntry) int {
-	if a.fp != b.fp {
-		if a.fp < b.fp {
-			return -1
-		}
-		return 1
+	if c := cmp.Compare(a.fp, b.fp); c != 0 {
+		return c
 	}
-	switch {
-	case a.t < b.t:
-		return -1
-	case a.t > b.t:
-		return 1
-	}
-	return 0
+	return cmp.Compare(a.t, b.t)
 }
 
 func (d *Distinct) addExact(e exactEntry) {
@@ -320,17 +305,10 @@ func (d *Distinct) promote() {
 }
 
 func cmpTail(a, b tailEntry) int {
-	switch {
-	case a.t < b.t:
-		return -1
-	case a.t > b.t:
-		return 1
-	case a.key < b.key:
-		return -1
-	case a.key > b.key:
-		return 1
+	if c := cmp.Compare(a.t, b.t); c != 0 {
+		return c
 	}
-	return 0
+	return cmp.Compare(a.key, b.key)
 }
 
 func (d *Distinct) addSketch(t int64, key uint32) {

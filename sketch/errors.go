@@ -49,3 +49,16 @@ func checkHeader(b []byte, kind byte, name string) error {
 	}
 	return nil
 }
+
+// orDefault sets *v to def if it is the zero value.
+func orDefault[T comparable](v *T, def T) {
+	var zero T
+	if *v == zero {
+		*v = def
+	}
+}
+
+// appendSpecErr appends one Validate problem, wrapping ErrInvalidSpec.
+func appendSpecErr(errs []error, what, format string, args ...any) []error {
+	return append(errs, fmt.Errorf("%s: %s: %w", what, fmt.Sprintf(format, args...), ErrInvalidSpec))
+}

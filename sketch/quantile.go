@@ -24,12 +24,8 @@ type QuantileParams struct {
 }
 
 func (p QuantileParams) withDefaults() QuantileParams {
-	if p.RelativeAccuracy == 0 {
-		p.RelativeAccuracy = 0.01
-	}
-	if p.MaxBuckets == 0 {
-		p.MaxBuckets = 2048
-	}
+	orDefault(&p.RelativeAccuracy, 0.01)
+	orDefault(&p.MaxBuckets, 2048)
 	return p
 }
 
@@ -39,10 +35,10 @@ func (p QuantileParams) Validate() error {
 	p = p.withDefaults()
 	var errs []error
 	if !(p.RelativeAccuracy >= 1e-4 && p.RelativeAccuracy <= 0.5) {
-		errs = append(errs, fmt.Errorf("quantiles: RelativeAccuracy %v must be in [1e-4, 0.5]: %w", p.RelativeAccuracy, ErrInvalidSpec))
+		errs = appendSpecErr(errs, "quantiles", "RelativeAccuracy %v must be in [1e-4, 0.5]", p.RelativeAccuracy)
 	}
 	if p.MaxBuckets < 16 || p.MaxBuckets > 1<<16 {
-		errs = append(errs, fmt.Errorf("quantiles: MaxBuckets %d must be in [16, 65536]: %w", p.MaxBuckets, ErrInvalidSpec))
+		errs = appendSpecErr(errs, "quantiles", "MaxBuckets %d must be in [16, 65536]", p.MaxBuckets)
 	}
 	return errors.Join(errs...)
 }

@@ -1,6 +1,7 @@
 package sketch
 
 import (
+	"cmp"
 	"encoding/binary"
 	"fmt"
 	"slices"
@@ -16,9 +17,7 @@ type TopKParams struct {
 }
 
 func (p TopKParams) withDefaults() TopKParams {
-	if p.Capacity == 0 {
-		p.Capacity = 32
-	}
+	orDefault(&p.Capacity, 32)
 	return p
 }
 
@@ -163,18 +162,10 @@ func (s *TopK) Estimate(h uint64) (Counter, bool) {
 }
 
 func cmpCounterDesc(a, b Counter) int {
-	switch {
-	case a.Count != b.Count:
-		if a.Count > b.Count {
-			return -1
-		}
-		return 1
-	case a.Hash < b.Hash:
-		return -1
-	case a.Hash > b.Hash:
-		return 1
+	if c := cmp.Compare(b.Count, a.Count); c != 0 {
+		return c
 	}
-	return 0
+	return cmp.Compare(a.Hash, b.Hash)
 }
 
 // Top appends the k largest counters to dst, by Count descending then Hash
@@ -244,29 +235,11 @@ func (s *TopK) Merge(o *TopK) error {
 func (s *TopK) setCounters(cs []Counter) {
 	s.heap = append(s.heap[:0], cs...)
 	clear(s.index)
-	for i := len(s.heap)/2 - 1; i >= 0; i-- {
-		s.siftNoIndex(i)
-	}
 	for i, c := range s.heap {
 		s.index[c.Hash] = int32(i)
 	}
-}
-
-func (s *TopK) siftNoIndex(i int) {
-	for {
-		l := 2*i + 1
-		if l >= len(s.heap) {
-			return
-		}
-		c := l
-		if r := l + 1; r < len(s.heap) && less(s.heap[r], s.heap[l]) {
-			c = r
-		}
-		if !less(s.heap[c], s.heap[i]) {
-			return
-		}
-		s.heap[i], s.heap[c] = s.heap[c], s.heap[i]
-		i = c
+	for i := len(s.heap)/2 - 1; i >= 0; i-- {
+		s.down(i)
 	}
 }
 
