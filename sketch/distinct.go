@@ -114,6 +114,10 @@ func floorDiv(a, b int64) int64 {
 // contract: they may miss expired items and, in sketch mode, count items of
 // t's own pane newer than t.
 //
+// Order: see the package doc; answers are independent of arrival order
+// except near the exact-to-sketch switch, which the first add that makes
+// more than ExactLimit items live triggers (permanently).
+//
 // Cost: Add is O(ExactLimit) in exact mode (a sorted insert) and O(1)
 // amortised in sketch mode; DistinctAt is O(live entries) in exact mode and
 // O(entries within Horizon) plus a cached O(64) estimate in sketch mode,

@@ -6,10 +6,12 @@ import (
 	"math/bits"
 )
 
-// Merge adds every item of o to d, as if o's adds had been made to d. Both
-// must have the same spec (ErrIncompatible otherwise, d unchanged). The
-// result does not depend on the order of merges and adds: exact entries and
-// sliding registers are both unions.
+// Merge adds every item of o to d. Both must have the same spec
+// (ErrIncompatible otherwise, d unchanged). Exact entries and register
+// frontiers are unions, so the answers do not depend on the order of
+// merges and adds, except at the exact-to-sketch switch: if o is in sketch
+// mode, d switches too, even if a single summary fed both streams would
+// still be exact (see the package doc, Order).
 func (d *Distinct) Merge(o *Distinct) error {
 	if d.spec != o.spec {
 		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.spec, o.spec, ErrIncompatible)

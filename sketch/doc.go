@@ -34,13 +34,19 @@
 //
 // # Order
 //
-// Distinct (pane-stamped register frontiers and exact sets), CountMin and
-// Quantiles are functions of the multiset of adds: any arrival order, and
-// any order of Merge, gives identical answers. TopK (Space-Saving) is
-// order-dependent and its Merge is commutative but not associative: for
-// results that do not depend on arrival order, apply its events in a
-// canonical order (the pipeline applies events in (time, tie-break) order
-// once the watermark passes them) and do not merge partial summaries.
+// CountMin and Quantiles are functions of the multiset of adds: any
+// arrival order, and any order of Merge, gives identical answers. Distinct
+// is too within a mode: its register frontiers and exact entries are
+// unions, and promoted items land in the same registers as items added
+// after the switch, so two summaries in sketch mode hold identical
+// registers. The one order-dependent point is the switch itself: it
+// happens at the first add after which more than ExactLimit items are
+// live, and near that limit one arrival order may still answer exactly
+// while another already estimates. TopK (Space-Saving) is order-dependent
+// and its Merge is commutative but not associative. For bit-identical
+// Settled results, apply the events of TopK and Distinct in the canonical
+// (time, tie-break) order once the watermark passes them, as the pipeline
+// does, and do not merge partial TopK summaries.
 //
 // # Encodings
 //
