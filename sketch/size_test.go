@@ -1,0 +1,42 @@
+package sketch
+
+import (
+	"fmt"
+	"math/rand/v2"
+	"testing"
+)
+
+// TestSmallEncodings: a summary holding 100 items encodes in at most 512
+// bytes (the target) for Distinct (exact mode, items spread over the
+// window and the Horizon), Quantiles, and TopK with 32 counters. A TopK
+// with 100 counters stores 100 full 8-byte hashes (about 1 KB) and
+// Count-Min's size is set by width*depth, not by the items: both are only
+// reported.
+func TestSmallEncodings(t *testing.T) {
+	rng := rand.New(rand.NewPCG(10, 10))
+	d := mustDistinct(t, DistinctSpec{Window: 24 * 3600 * sec, Resolution: 3600 * sec, Horizon: 10 * sec})
+	s := mustTopK(t, 100)
+	s32 := mustTopK(t, 32)
+	q := mustQ(t, QuantileParams{})
+	c := mustCM(t, CountMinParams{Epsilon: 0.01, Delta: 0.01})
+	t0 := int64(1_767_225_600) * sec
+	for i := range 100 {
+		h := HashString(fmt.Sprint("item-", i))
+		d.Add(t0+rng.Int64N(24*3600*sec), h)
+		w := 1 + rng.Uint64N(9)
+		s.Add(h, w)
+		s32.Add(h, w)
+		q.Add(rng.ExpFloat64() * 200)
+		c.Add(h, 1)
+	}
+	for _, x := range []struct {
+		name string
+		e    encoder
+	}{{"distinct", d}, {"topk100", s}, {"topk32", s32}, {"quantiles", q}, {"countmin", c}} {
+		b, _ := x.e.AppendBinary(nil)
+		t.Logf("%s: %d bytes for 100 items", x.name, len(b))
+		if x.name != "countmin" && x.name != "topk100" && len(b) > 512 {
+			t.Errorf("%s: %d bytes > 512", x.name, len(b))
+		}
+	}
+}
