@@ -191,3 +191,25 @@ func TestTopKCanonicalOrder(t *testing.T) {
 		}
 	}
 }
+
+// TestDistinctAddTooOld: an add whose pane no allowed query can read
+// returns false and changes nothing; times outside ±2^62 are refused.
+func TestDistinctAddTooOld(t *testing.T) {
+	d := mustDistinct(t, DistinctSpec{Window: 10 * sec, Resolution: sec, Horizon: 2 * sec})
+	if !d.Add(100*sec, 1<<40) {
+		t.Fatal("first add refused")
+	}
+	// Oldest readable pane: pane(100s-2s) - 10 + 1 = 89.
+	if d.Add(88*sec+sec/2, 2<<40) {
+		t.Fatal("add in pane 88 accepted")
+	}
+	if !d.Add(89*sec, 3<<40) {
+		t.Fatal("add in pane 89 refused")
+	}
+	if got := d.DistinctAt(98 * sec); got != 1 {
+		t.Fatalf("DistinctAt(98s) = %d, want 1", got)
+	}
+	if d.Add(maxTime+1, 4<<40) || d.Add(minTime-1, 4<<40) {
+		t.Fatal("time outside ±2^62 accepted")
+	}
+}
