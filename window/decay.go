@@ -15,11 +15,25 @@ type DecaySpec struct {
 	Horizon int64
 	// RebaseEvery is the number of half-lives between landmarks; the
 	// landmarks are the multiples of RebaseEvery·HalfLife since the Unix
-	// epoch, fixed in advance. 1..960; 0 means the default, 64.
+	// epoch, fixed in advance. 1..64; 0 means the default, 32.
 	RebaseEvery int64
 }
 
-const defaultRebaseEvery = 64
+const (
+	defaultRebaseEvery = 32
+	maxRebaseEvery     = 64
+
+	// MaxDecayedValue bounds |x| for Decayed.Add. With weights below
+	// 2^64, squared deviations times weights stay below 2^266, so no
+	// reachable state overflows float64.
+	MaxDecayedValue = 1e30
+
+	// Decoded states are checked against bounds far above what any real
+	// stream reaches (2^200 events at the largest weight) and far below
+	// overflow.
+	maxDecodedWeight = 0x1p300
+	maxDecodedM2     = 0x1p700
+)
 
 func (s DecaySpec) rebase() int64 {
 	if s.RebaseEvery == 0 {
@@ -35,7 +49,7 @@ func (s DecaySpec) Validate() error {
 	e.positive("HalfLife", s.HalfLife)
 	e.nonNegative("Horizon", s.Horizon)
 	k := s.rebase()
-	e.check(k >= 1 && k <= 960, "RebaseEvery", "must be in 1..960 (0 for 64)")
+	e.check(k >= 1 && k <= maxRebaseEvery, "RebaseEvery", "must be in 1..64 (0 for 32)")
 	e.check(s.HalfLife <= 0 || k < 1 || s.HalfLife <= math.MaxInt64/k,
 		"RebaseEvery", "times HalfLife overflows int64")
 	return e.err()
@@ -82,9 +96,8 @@ func (s DecaySpec) Validate() error {
 //
 // Float addition is not associative (Goldberg, ACM Computing Surveys 23(1),
 // 1991): bit-identical results need the same apply order, which the
-// pipeline supplies. Add rejects NaN and ±Inf values (returns false);
-// values should stay well inside the float64 range (|x| < 1e150, say) so
-// that squared deviations cannot overflow.
+// pipeline supplies. Add rejects NaN, ±Inf and |x| > MaxDecayedValue
+// (returns false), so that no reachable state overflows.
 //
 // The zero value is unusable: build with NewDecayed; an aggregate built
 // from an invalid spec ignores Add and answers NaN. Not safe for concurrent
@@ -139,9 +152,9 @@ func (d *Decayed) SizeBytes() int {
 func (d *Decayed) cutoff() int64 { return satSub(d.maxT, d.spec.Horizon) }
 
 // Add records value x at time t. It returns false, changing nothing, when x
-// is NaN or ±Inf (or the spec is invalid).
+// is NaN or |x| > MaxDecayedValue (or the spec is invalid).
 func (d *Decayed) Add(t int64, x float64) bool {
-	if !d.valid || !finite(x) {
+	if !d.valid || !(math.Abs(x) <= MaxDecayedValue) {
 		return false
 	}
 	switch {
@@ -292,13 +305,13 @@ func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
 //	byte     flags: bit 0 = some event was added; other bits zero
 //	if bit 0 is set:
 //	varint   maxT
-//	float    W, the folded weight relative to the landmark (finite, >= 0)
-//	float    mean (finite; 0 when W = 0)
-//	float    M2 (finite, >= 0; 0 when W = 0)
+//	float    W, the folded weight relative to the landmark, in [0, 2^300]
+//	float    mean, |mean| <= MaxDecayedValue; 0 when W = 0
+//	float    M2 in [0, 2^700]; 0 when W = 0
 //	uvarint  R, then R raw events, newest first:
 //	  uvarint  delta: the first time is maxT − delta, each next the
 //	           previous time − delta; all > maxT − Horizon
-//	  float    value (finite)
+//	  float    value, |value| <= MaxDecayedValue
 //	then end of input (else ErrTrailingBytes).
 func (d *Decayed) UnmarshalBinary(b []byte) error {
 	return decodeTwoPass(d.valid, "decayed", b, d.decode)
@@ -311,12 +324,12 @@ func (d *Decayed) decode(b []byte, store bool) error {
 		return r.err
 	}
 	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
-	if r.err == nil && (!finite(w) || !finite(mean) || !finite(m2) || w < 0 || m2 < 0 ||
-		(w == 0 && (mean != 0 || m2 != 0))) {
+	if r.err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= MaxDecayedValue) ||
+		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
 		r.fail("weights out of range")
 	}
 	cutoff := satSub(maxT, d.spec.Horizon)
-	readEvents(&r, &d.raw, maxT, cutoff, true, store)
+	readEvents(&r, &d.raw, maxT, cutoff, MaxDecayedValue, store)
 	if err := r.end(); err != nil || !store {
 		return err
 	}

@@ -50,10 +50,11 @@ func appendEvents(dst []byte, raw []event, maxT int64, values bool) []byte {
 }
 
 // readEvents decodes what appendEvents wrote, checking that every time lies
-// in (cutoff, maxT] and every value is finite. It stores into s only when
-// store is set; it returns the number of events and the oldest time (maxT
-// when there are none).
-func readEvents(r *reader, s *seq[event], maxT, cutoff int64, values, store bool) (int, int64) {
+// in (cutoff, maxT]. Values are present when limit > 0 and must satisfy
+// |v| <= limit. It stores into s only when store is set; it returns the
+// number of events and the oldest time (maxT when there are none).
+func readEvents(r *reader, s *seq[event], maxT, cutoff int64, limit float64, store bool) (int, int64) {
+	values := limit > 0
 	per := 1
 	if values {
 		per = 9
@@ -72,8 +73,8 @@ func readEvents(r *reader, s *seq[event], maxT, cutoff int64, values, store bool
 		}
 		var v float64
 		if values {
-			if v = r.float("raw value"); !finite(v) {
-				r.fail("infinite raw value")
+			if v = r.float("raw value"); !(math.Abs(v) <= limit) {
+				r.fail("raw value out of range")
 			}
 		}
 		if store {

@@ -49,9 +49,6 @@ func checkDecoded(t *testing.T, b []byte, fresh func() codec, invariants func(co
 		}
 		return
 	}
-	if err := invariants(recv); err != nil {
-		t.Fatalf("decoded %x breaks an invariant: %v", b, err)
-	}
 	b1, err := recv.AppendBinary(nil)
 	if err != nil {
 		t.Fatal(err)
@@ -62,6 +59,15 @@ func checkDecoded(t *testing.T, b []byte, fresh func() codec, invariants func(co
 	}
 	if b2, _ := again.AppendBinary(nil); !bytes.Equal(b1, b2) {
 		t.Fatalf("unstable re-encoding %x vs %x", b1, b2)
+	}
+	// Use the decoded state: queries and adds must keep the invariants, and
+	// whatever state they reach must encode to bytes the decoder accepts.
+	if err := invariants(recv); err != nil {
+		t.Fatalf("decoded %x, used, breaks an invariant: %v", b, err)
+	}
+	b3, _ := recv.AppendBinary(nil)
+	if err := fresh().UnmarshalBinary(b3); err != nil {
+		t.Fatalf("state reached from %x encodes to %x, which does not decode: %v", b, b3, err)
 	}
 }
 
@@ -109,7 +115,9 @@ func FuzzDecodeDecayed(f *testing.F) {
 			d := c.(*Decayed)
 			_ = d.VarianceAt(d.maxT)
 			_ = d.CountAt(d.maxT + hour)
-			d.Add(d.maxT+1, 2)
+			d.Add(d.maxT+1, MaxDecayedValue)
+			d.Add(d.maxT-d.spec.Horizon, -MaxDecayedValue)
+			d.Add(d.maxT+d.spec.HalfLife*100, 2)
 			return d.checkInvariants()
 		})
 	})

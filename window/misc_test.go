@@ -162,3 +162,30 @@ func TestArrivalOrderWithinHorizon(t *testing.T) {
 		}
 	}
 }
+
+// Extreme but accepted values never drive the decayed state out of the
+// range its decoder accepts.
+func TestDecayedExtremeValues(t *testing.T) {
+	d := NewDecayed(DecaySpec{HalfLife: 10, Horizon: 5, RebaseEvery: maxRebaseEvery})
+	if d.Add(0, 2*MaxDecayedValue) || d.Add(0, math.NaN()) || d.Add(0, math.Inf(-1)) {
+		t.Fatal("out-of-range value accepted")
+	}
+	rng := rand.New(rand.NewPCG(3, 4))
+	for i := range 20000 {
+		x := MaxDecayedValue
+		if rng.IntN(2) == 0 {
+			x = -x
+		}
+		// Many events just behind each landmark, where weights are largest.
+		if !d.Add(int64(i/100)*640+639-int64(rng.IntN(3)), x) {
+			t.Fatal("in-range value rejected")
+		}
+	}
+	b, _ := d.AppendBinary(nil)
+	if err := NewDecayed(d.spec).UnmarshalBinary(b); err != nil {
+		t.Fatalf("state from in-range values does not decode: %v", err)
+	}
+	if v := d.VarianceAt(d.Newest()); math.IsNaN(v) || math.IsInf(v, 0) {
+		t.Fatalf("variance %v", v)
+	}
+}

@@ -295,7 +295,7 @@ func (r *Recency) decode(b []byte, store bool) error {
 			rd.fail("folded session out of range")
 		}
 	}
-	n, oldest := readEvents(&rd, &r.raw, maxT, cutoff, false, store)
+	n, oldest := readEvents(&rd, &r.raw, maxT, cutoff, 0, store)
 	if rd.err == nil && (oldest < first || (!folded && (n == 0 || oldest != first))) {
 		rd.fail("first time inconsistent with the events")
 	}

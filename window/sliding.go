@@ -384,7 +384,11 @@ func (g *ring) decode(b []byte, store bool) error {
 		}
 		prev = p - 1
 	}
-	nr, _ := readEvents(&r, &g.raw, maxT, cutoff, vbytes > 0, store)
+	limit := 0.0
+	if vbytes > 0 {
+		limit = math.MaxFloat64
+	}
+	nr, _ := readEvents(&r, &g.raw, maxT, cutoff, limit, store)
 	if total+uint64(nr) < total {
 		r.fail("count overflow")
 	}
