@@ -37,6 +37,12 @@ func (k Sliding) describe(name string) string {
 
 func (k Sliding) validate() error { return k.spec(0).Validate() }
 
+func (k SlidingCount) reach() int64 { return int64(k.Window) }
+func (k SlidingSum) reach() int64   { return int64(k.Window) }
+func (k SlidingMin) reach() int64   { return int64(k.Window) }
+func (k SlidingMax) reach() int64   { return int64(k.Window) }
+func (k SlidingMean) reach() int64  { return int64(k.Window) }
+
 // SlidingCount counts an entity's events in a sliding window.
 type SlidingCount Sliding
 

@@ -99,6 +99,23 @@ type Options struct {
 	// Negative disables automatic commits. Default: 100000.
 	CommitEvery int
 
+	// TTL expires an entity's record once the watermark is this far past
+	// the newest event applied to it: its features then read as for a new
+	// entity, and the record is deleted at a later commit. Expiry follows
+	// event time only, so replay and live expire identically. Negative
+	// disables expiry. Default: per entity, the longest reach of its
+	// features (a sliding window's length, 64 half-lives of a decayed
+	// statistic, ...) plus MaxDisorder; an entity with a feature of
+	// unbounded reach (first seen) never expires by default.
+	TTL time.Duration
+
+	// Reset lists features ("entity.feature") whose stored definition may
+	// differ from the given one: on Open their state is discarded and
+	// starts empty, and Notices says a backfill is needed. A changed, new
+	// or removed feature that is not listed makes Open fail with
+	// ErrDefinitionChanged. Default: none.
+	Reset []string
+
 	// IdleAdvance, in live mode, raises the watermark to clock − MaxDisorder
 	// − IdleAdvance once no event has arrived for IdleAdvance of clock
 	// time, so Settled rows are not held forever on a quiet source. Zero

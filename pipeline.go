@@ -3,10 +3,8 @@ package tallyward
 import (
 	"container/heap"
 	"errors"
-	"fmt"
 	"math"
 	"slices"
-	"strings"
 
 	"github.com/tallyward/tallyward/state"
 )
@@ -45,12 +43,13 @@ type Pipeline[E any] struct {
 	in inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
-	recs   []*record
-	vals   []float64
-	held   heldHeap[E] // Settled: events waiting for the watermark
-	batch  []*held[E]  // Settled: scratch for one timestamp's events
-	closed bool
-	err    error // sticky storage error
+	recs    []*record
+	vals    []float64
+	held    heldHeap[E] // Settled: events waiting for the watermark
+	batch   []*held[E]  // Settled: scratch for one timestamp's events
+	closed  bool
+	err     error    // sticky storage error
+	notices []string // what Open did beyond the usual (resets)
 }
 
 type entityState[E any] struct {
@@ -60,6 +59,14 @@ type entityState[E any] struct {
 	first   int         // index of the entity's first feature in a row
 	zero    []aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
+	ttl     int64 // records idle this long (by the watermark) expire; 0 never
+}
+
+// expired reports whether rec has been idle for the entity's ttl as of
+// expiry clock w: it then counts as empty, whether or not a commit has
+// swept it yet, so expiry never depends on when commits happen.
+func (es *entityState[E]) expired(rec *record, w int64) bool {
+	return es.ttl > 0 && satAdd(rec.last, es.ttl) <= w
 }
 
 func (es *entityState[E]) fresh() []aggregate {
@@ -113,7 +120,8 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 			p.names = append(p.names, ent.Name+"."+f.Name)
 		}
 		es.zero = es.fresh()
-		es.table = state.NewTable(store, ent.Name, func(b []byte) (*record, error) {
+		es.ttl = ttlFor(ent.Features, opts)
+		es.table = state.NewTable(store, ent.Name, es.ttl, func(b []byte) (*record, error) {
 			return decodeRecord(b, es.fresh)
 		})
 		p.nfeat += len(ent.Features)
@@ -122,61 +130,22 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
 	p.vals = make([]float64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
-	if err := p.checkDefinitions(); err != nil {
-		store.Close()
-		return nil, err
-	}
 	if err := p.restore(store.Mark()); err != nil {
 		store.Close()
 		return nil, err
 	}
+	if err := p.checkDefinitions(); err != nil {
+		store.Close()
+		return nil, err
+	}
+	if len(p.notices) > 0 {
+		// Make the reset durable before any event is processed.
+		if err := p.store.Commit(store.Mark()); err != nil {
+			store.Close()
+			return nil, err
+		}
+	}
 	return p, nil
-}
-
-// definitions returns the fingerprints that shape stored state, by name.
-func (p *Pipeline[E]) definitions() map[string]string {
-	defs := map[string]string{}
-	for _, es := range p.ents {
-		names := make([]string, len(es.ent.Features))
-		for i, f := range es.ent.Features {
-			names[i] = f.Name
-			defs["feature/"+es.ent.Name+"."+f.Name] = f.Kind.Describe()
-		}
-		defs["entity/"+es.ent.Name] = "features=" + strings.Join(names, ",")
-	}
-	return defs
-}
-
-func (p *Pipeline[E]) checkDefinitions() error {
-	stored, err := p.store.Definitions()
-	if err != nil {
-		return err
-	}
-	want := p.definitions()
-	if len(stored) == 0 {
-		for name, d := range want {
-			if err := p.store.SetDefinition(name, []byte(d)); err != nil {
-				return err
-			}
-		}
-		return nil
-	}
-	var errs []error
-	for _, name := range sortedKeys(want) {
-		got, ok := stored[name]
-		switch {
-		case !ok:
-			errs = append(errs, fmt.Errorf("%w: %s is new (stored state has no such definition)", ErrDefinitionChanged, name))
-		case string(got) != want[name]:
-			errs = append(errs, fmt.Errorf("%w: %s was %q, now %q", ErrDefinitionChanged, name, got, want[name]))
-		}
-	}
-	for _, name := range sortedKeys(stored) {
-		if _, ok := want[name]; !ok {
-			errs = append(errs, fmt.Errorf("%w: %s is stored but no longer defined", ErrDefinitionChanged, name))
-		}
-	}
-	return errors.Join(errs...)
 }
 
 func sortedKeys[V any](m map[string]V) []string {
@@ -373,7 +342,14 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 			return err
 		}
 		if sl == nil {
+			if p.store.Erased(es.ent.Name, key) {
+				p.c.erasedSkips++
+				continue
+			}
 			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
+			p.c.live++
+		} else if es.expired(sl.Value, p.expiryClock()) {
+			sl.Value.aggs = es.fresh()
 		}
 		rec := sl.Value
 		for j, a := range rec.aggs {
@@ -411,8 +387,13 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			aggs = recs[i].aggs
 		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		} else if sl != nil {
+		} else if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
 			aggs = sl.Value.aggs
+		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
+			for j := range es.kinds {
+				out[es.first+j] = math.NaN()
+			}
+			continue
 		}
 		for j, a := range aggs {
 			t := in.t
@@ -459,6 +440,17 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 	}
 }
 
+// expiryClock is the time records expire by: the watermark as the data
+// alone define it (newest time − MaxDisorder). Raises of the watermark by
+// Flush or an idle Advance do not count, so the end of a replay keeps its
+// state, and expiry never depends on a wall clock.
+func (p *Pipeline[E]) expiryClock() int64 {
+	if !p.hasMax {
+		return math.MinInt64
+	}
+	return satSub(p.maxT, int64(p.opts.MaxDisorder))
+}
+
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below
 // the new watermark become late.
@@ -497,6 +489,13 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	n, err := p.store.Sweep(p.expiryClock())
+	if err != nil {
+		p.err = err
+		return err
+	}
+	p.c.expired += uint64(n)
+	p.c.live -= int64(n)
 	m.Extra = p.progress().append(nil)
 	if err := p.store.Commit(m); err != nil {
 		p.err = err

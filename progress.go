@@ -18,6 +18,11 @@ type counters struct {
 	late     uint64 // events below the watermark on arrival
 	tooOld   uint64 // feature updates an aggregate refused as older than it keeps
 	rejected [numReasons]uint64
+
+	live        int64  // entity records in the store
+	expired     uint64 // records removed by expiry
+	erased      uint64 // records removed by Erase
+	erasedSkips uint64 // entity updates skipped because the key was erased
 }
 
 // progress is the pipeline's part of a commit Mark (Mark.Extra).
@@ -40,7 +45,8 @@ func (p *Pipeline[E]) progress() progress {
 //	byte     version (1)
 //	byte     flags: 1 = has newest time, 2 = flushed
 //	varint   newest event time
-//	uvarint  events, applied, emitted, late, tooOld
+//	uvarint  events, applied, emitted, late, tooOld, live, expired,
+//	         erased, erasedSkips
 //	uvarint  number of reasons r, then r uvarint rejection counts
 //	uvarint  number of future-rejected seqs k, then k uvarint deltas
 func (pr progress) append(dst []byte) []byte {
@@ -54,7 +60,8 @@ func (pr progress) append(dst []byte) []byte {
 	}
 	dst = append(dst, flags)
 	dst = binary.AppendVarint(dst, pr.maxT)
-	for _, v := range []uint64{pr.c.events, pr.c.applied, pr.c.emitted, pr.c.late, pr.c.tooOld} {
+	for _, v := range []uint64{pr.c.events, pr.c.applied, pr.c.emitted, pr.c.late, pr.c.tooOld,
+		uint64(max(pr.c.live, 0)), pr.c.expired, pr.c.erased, pr.c.erasedSkips} {
 		dst = binary.AppendUvarint(dst, v)
 	}
 	dst = binary.AppendUvarint(dst, numReasons)
@@ -79,9 +86,12 @@ func (pr *progress) decode(b []byte) error {
 	flags := d.Byte()
 	out.hasMax, out.flushed = flags&1 != 0, flags&2 != 0
 	out.maxT = d.Varint()
-	for _, v := range []*uint64{&out.c.events, &out.c.applied, &out.c.emitted, &out.c.late, &out.c.tooOld} {
+	var live uint64
+	for _, v := range []*uint64{&out.c.events, &out.c.applied, &out.c.emitted, &out.c.late, &out.c.tooOld,
+		&live, &out.c.expired, &out.c.erased, &out.c.erasedSkips} {
 		*v = d.Uvarint()
 	}
+	out.c.live = int64(min(live, math.MaxInt64))
 	nr := d.Uvarint()
 	for i := uint64(0); i < nr && d.Err == nil; i++ {
 		v := d.Uvarint()
@@ -130,8 +140,15 @@ type Stats struct {
 	Late     uint64 // events below the watermark on arrival (any policy)
 	TooOld   uint64 // feature updates refused as older than an aggregate keeps
 	Rejected map[Reason]uint64
-	Held     int   // Settled: events waiting for the watermark
-	Newest   int64 // newest event time seen (0 if none)
+	// LiveEntities is the number of entity records stored; Expired and
+	// Erased count records removed by TTL and by Erase; ErasedSkips
+	// counts entity updates skipped because the key had been erased.
+	LiveEntities int64
+	Expired      uint64
+	Erased       uint64
+	ErasedSkips  uint64
+	Held         int   // Settled: events waiting for the watermark
+	Newest       int64 // newest event time seen (0 if none)
 	// Watermark is the current watermark; WatermarkLag is Newest minus it
 	// (math.MaxInt64 before any event has advanced it).
 	Watermark    int64
@@ -150,6 +167,7 @@ type Stats struct {
 func (p *Pipeline[E]) Stats() Stats {
 	s := Stats{
 		Events: p.c.events, Applied: p.c.applied, Emitted: p.c.emitted, Late: p.c.late, TooOld: p.c.tooOld,
+		LiveEntities: p.c.live, Expired: p.c.expired, Erased: p.c.erased, ErasedSkips: p.c.erasedSkips,
 		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, Seen: p.seen,
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
 	}

@@ -58,6 +58,9 @@ func (r *record) AppendBinary(dst []byte) ([]byte, error) {
 	return dst, nil
 }
 
+// LastTime returns the newest event time applied (state.Value).
+func (r *record) LastTime() int64 { return r.last }
+
 // SizeBytes estimates r's heap footprint.
 func (r *record) SizeBytes() int {
 	n := 48 + 16*len(r.aggs)

@@ -85,6 +85,9 @@ type Kind interface {
 
 	newAggregate(horizon int64) aggregate
 	input() inputKind
+	// reach is how long after an entity's newest event this feature's
+	// state can still change an answer, in ns; 0 means unbounded.
+	reach() int64
 }
 
 type inputKind uint8

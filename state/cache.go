@@ -6,11 +6,13 @@ import (
 	"github.com/cockroachdb/pebble/v2"
 )
 
-// Value is what a Table caches: a decoded record that can encode itself and
-// estimate its own memory.
+// Value is what a Table caches: a decoded record that can encode itself,
+// estimate its own memory and tell the newest event time applied to it
+// (which drives expiry).
 type Value interface {
 	AppendBinary(dst []byte) ([]byte, error)
 	SizeBytes() int
+	LastTime() int64
 }
 
 // budget is the byte bound shared by all tables of one store.
@@ -30,8 +32,9 @@ type Slot[V Value] struct {
 	size    int
 	dirty   bool
 	evicted bool
-	ref     bool // used since the clock hand last passed
-	idx     int  // position in Table.slots
+	ref     bool  // used since the clock hand last passed
+	idx     int   // position in Table.slots
+	indexed int64 // expiry bucket of this key's stored index entry; 0 = none
 }
 
 // Table is a write-back cache of one kind of record (one key space under a
@@ -45,6 +48,7 @@ type Table[V Value] struct {
 	store  *Store
 	name   string
 	decode func(b []byte) (V, error)
+	ttl    int64 // 0: records never expire
 
 	m      map[string]*Slot[V]
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
@@ -58,10 +62,28 @@ type Table[V Value] struct {
 
 // NewTable registers a cache over the records of table name in s. decode
 // turns stored bytes into a value; its error is reported with the key.
-func NewTable[V Value](s *Store, name string, decode func(b []byte) (V, error)) *Table[V] {
-	t := &Table[V]{store: s, name: name, decode: decode, m: map[string]*Slot[V]{}}
+//
+// ttl > 0 makes records expire once idle that long (see Store.Commit); 0
+// keeps them forever. The ttl must be the one the store's expiry index was
+// built with: a caller that changes it calls RebuildExpiry first.
+func NewTable[V Value](s *Store, name string, ttl int64, decode func(b []byte) (V, error)) *Table[V] {
+	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}}
 	s.tables = append(s.tables, t)
 	return t
+}
+
+// load reads key from the store without caching it.
+func (t *Table[V]) load(key string) (v V, found bool, err error) {
+	t.keybuf = RecordKey(t.keybuf[:0], t.name, key)
+	found, err = t.store.getRaw(t.keybuf, func(b []byte) error {
+		var derr error
+		v, derr = t.decode(b)
+		if derr != nil {
+			return fmt.Errorf("%w: %w", ErrCorrupt, derr)
+		}
+		return nil
+	})
+	return v, found, err
 }
 
 // Name returns the table name.
@@ -79,20 +101,11 @@ func (t *Table[V]) Get(key string) (*Slot[V], error) {
 		return nil, err
 	}
 	t.misses++
-	t.keybuf = RecordKey(t.keybuf[:0], t.name, key)
-	var v V
-	found, err := t.store.getRaw(t.keybuf, func(b []byte) error {
-		var derr error
-		v, derr = t.decode(b)
-		if derr != nil {
-			return fmt.Errorf("%w: %w", ErrCorrupt, derr)
-		}
-		return nil
-	})
+	v, found, err := t.load(key)
 	if err != nil || !found {
 		return nil, err
 	}
-	sl := &Slot[V]{Key: key, Value: v}
+	sl := &Slot[V]{Key: key, Value: v, indexed: t.bucket(v.LastTime())}
 	t.link(sl)
 	t.resize(sl)
 	return sl, nil
@@ -168,6 +181,8 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 	sl.size = 0
 }
 
+// stage writes sl's record, and moves its expiry index entry if its
+// bucket changed, into b.
 func (t *Table[V]) stage(b *pebble.Batch, sl *Slot[V]) error {
 	var err error
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, sl.Key)
@@ -175,7 +190,43 @@ func (t *Table[V]) stage(b *pebble.Batch, sl *Slot[V]) error {
 	if err != nil {
 		return fmt.Errorf("state: encode %q: %w", t.keybuf, err)
 	}
-	return b.Set(t.keybuf, t.valbuf, nil)
+	if err := b.Set(t.keybuf, t.valbuf, nil); err != nil {
+		return err
+	}
+	if nb := t.bucket(sl.Value.LastTime()); nb != sl.indexed {
+		if sl.indexed != 0 {
+			t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, sl.Key)
+			if err := b.Delete(t.keybuf, nil); err != nil {
+				return err
+			}
+		}
+		t.keybuf = expiryKey(t.keybuf[:0], nb, t.name, sl.Key)
+		if err := b.Set(t.keybuf, nil, nil); err != nil {
+			return err
+		}
+		sl.indexed = nb
+	}
+	return nil
+}
+
+// bucket is the expiry index time of a record last updated at last: its
+// expiry time rounded up to a multiple of ttl/16, so that a busy entity
+// moves its index entry about sixteen times per ttl, not on every commit.
+// 0 when records never expire.
+func (t *Table[V]) bucket(last int64) int64 {
+	if t.ttl <= 0 {
+		return 0
+	}
+	g := max(t.ttl/16, 1)
+	exp := satAdd(last, t.ttl)
+	b := exp / g * g
+	if b < exp {
+		b = satAdd(b, g)
+	}
+	if b == 0 {
+		b = g
+	}
+	return b
 }
 
 func (t *Table[V]) flushDirty(b *pebble.Batch) error {
@@ -193,20 +244,31 @@ func (t *Table[V]) flushDirty(b *pebble.Batch) error {
 	return nil
 }
 
-// Delete removes key from the cache and stages its deletion.
-func (t *Table[V]) Delete(key string) error {
+// Delete removes key's record and expiry index entry from the cache and
+// stages their deletion for the next commit. It reports whether a record
+// existed.
+func (t *Table[V]) Delete(key string) (bool, error) {
 	if err := t.store.check(); err != nil {
-		return err
+		return false, err
 	}
-	if sl := t.m[key]; sl != nil {
-		sl.dirty = false
-		t.drop(sl)
+	sl, err := t.Get(key)
+	if err != nil || sl == nil {
+		return false, err
+	}
+	sl.dirty = false
+	t.drop(sl)
+	b := t.store.pending
+	if sl.indexed != 0 {
+		t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, key)
+		if err := b.Delete(t.keybuf, nil); err != nil {
+			return true, t.store.fail(err)
+		}
 	}
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, key)
-	if err := t.store.pending.Delete(t.keybuf, nil); err != nil {
-		return t.store.fail(err)
+	if err := b.Delete(t.keybuf, nil); err != nil {
+		return true, t.store.fail(err)
 	}
-	return nil
+	return true, nil
 }
 
 // Len returns the number of cached entries.

@@ -24,6 +24,8 @@
 //	0x01 meta        0x01 | name                        -> versioned meta value
 //	0x02 definition  0x02 | name                        -> definition fingerprint (bytes)
 //	0x03 record      0x03 | uvarint len(table) | table | entity key -> record bytes
+//	0x04 expiry      0x04 | 8-byte big-endian bucket (sign bit flipped) | uvarint len(table) | table | entity key -> empty
+//	0x05 tombstone   0x05 | 16-byte salted SHA-256 of (table, entity key) -> empty
 //
 // Values under 0x03 are the caller's versioned encodings. The Mark under
 // meta name "mark" is encoded as documented on [Mark.AppendBinary].

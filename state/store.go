@@ -120,6 +120,9 @@ type Store struct {
 	err     error // sticky: set once a write fails
 	closed  bool
 
+	salt       []byte
+	tombstones map[[16]byte]struct{}
+
 	commits     uint64
 	commitNanos int64 // total time spent in Commit, measured by the caller's clock if any
 }
@@ -177,6 +180,11 @@ func Open(opts Options) (*Store, error) {
 	}
 	if found {
 		s.mark = m
+	}
+	if err := s.ensureSalt(); err != nil {
+		s.pending.Close()
+		db.Close()
+		return nil, err
 	}
 	return s, nil
 }
@@ -312,6 +320,27 @@ func (s *Store) Commit(m Mark) error {
 	s.mark.Extra = bytes.Clone(m.Extra)
 	s.commits++
 	return nil
+}
+
+// Sweep removes records idle for their table's ttl as of watermark w,
+// examining at most SweepLimit expiry index entries; the removals are
+// staged for the next Commit (call Sweep just before it, so that a record
+// both expired and dirty is dropped rather than written). It returns the
+// number of records removed.
+func (s *Store) Sweep(w int64) (int, error) {
+	if err := s.check(); err != nil {
+		return 0, err
+	}
+	b := s.db.NewBatch()
+	defer b.Close()
+	n, err := s.sweep(b, w)
+	if err == nil && !b.Empty() {
+		err = s.pending.Apply(b, nil)
+	}
+	if err != nil {
+		return 0, s.fail(fmt.Errorf("state: expiry sweep: %w", err))
+	}
+	return n, nil
 }
 
 // Close discards anything not committed and closes the database.

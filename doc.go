@@ -1,0 +1,59 @@
+// Package tallyward computes per-entity behavioural features for fraud and
+// abuse detection (how many failed sign-ins from this address in the last
+// ten minutes, how many distinct accounts on this device today) inline in a
+// Go service, and recomputes them identically over replayed history.
+//
+// # Model
+//
+// A [Spec] names entities (account, card, device, address...) and, per
+// entity, features: an aggregate [Kind] with an optional filter, value and
+// item. [Open] builds a [Pipeline] over a Pebble store (in memory when
+// Options.Dir is empty). Events carry an event time in Unix nanoseconds;
+// window panes are aligned to the Unix epoch, so every instance and every
+// restart cuts identical panes.
+//
+// The watermark is the newest event time minus Options.MaxDisorder and
+// never decreases. An event below it on arrival is late: it is counted and
+// then dropped, applied or diverted according to Options.Lateness. Events
+// with a zero time, a NaN or infinite value, or a time beyond
+// Options.FutureSkew are rejected with a *RejectError and counted; they
+// never reach state.
+//
+// # Emission
+//
+// In Eager mode [Pipeline.Score] returns an event's features at once, as of
+// its time, over every event applied so far: for inline scoring. In Settled
+// mode an event's row goes to Spec.Emit once the watermark passes its time;
+// held events are applied in canonical (time, tie-break) order, so the rows
+// depend only on the multiset of events, not on their arrival order within
+// MaxDisorder. Either way, as-of answers never count an event newer than
+// the asked time.
+//
+// # Replay and live
+//
+// [Pipeline.Replay] (a finite [Source]) and [Live] (goroutines, a channel,
+// an injected [Clock]) drive the same synchronous core: a live run and a
+// replay of the same sequence give bit-identical rows.
+//
+// # Durability
+//
+// [Pipeline.Commit] writes changed state, the source position and the
+// watermark in one synced batch (automatically every Options.CommitEvery
+// events). After a crash, [Open] reports in [Pipeline.Resume] where the
+// source must restart; re-feeding from there reproduces the uninterrupted
+// run. Rows emitted after the last commit are emitted again (at-least-once;
+// Row.Seq identifies them), so a sink should make rows durable before the
+// commit that covers their events.
+//
+// # What it is not
+//
+// Features are signals for a model or a human reviewer, not verdicts;
+// thresholds must be validated on your own labelled data. The state kept
+// here is personal data in many jurisdictions: erasure requests and local
+// data-protection law apply to it.
+//
+// # Concurrency
+//
+// A Pipeline is not safe for concurrent use; [Live] serialises goroutines
+// onto one.
+package tallyward

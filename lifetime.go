@@ -1,0 +1,101 @@
+package tallyward
+
+import (
+	"errors"
+	"fmt"
+
+	"github.com/cockroachdb/pebble/v2/vfs"
+	"github.com/tallyward/tallyward/state"
+)
+
+// ErrUnknownEntity is returned for an entity name the Spec does not define.
+var ErrUnknownEntity = errors.New("tallyward: unknown entity")
+
+func (p *Pipeline[E]) entity(name string) (int, *entityState[E], error) {
+	for i, es := range p.ents {
+		if es.ent.Name == name {
+			return i, es, nil
+		}
+	}
+	return 0, nil, fmt.Errorf("%w %q", ErrUnknownEntity, name)
+}
+
+// Erase removes every stored trace of one entity key (say, for a privacy
+// or legal request): its record with all feature states, its expiry index
+// entry, and its inputs in held Settled events. It then commits, so the
+// erasure is durable when Erase returns.
+//
+// The erasure is remembered by a tombstone holding only a salted hash of
+// the key: later events naming the key, including a replay of older
+// history, do not recreate it (they are counted in Stats.ErasedSkips and
+// read NaN) until Readmit. After a compaction no byte sequence of the key
+// remains in the store.
+func (p *Pipeline[E]) Erase(entity, key string) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	i, es, err := p.entity(entity)
+	if err != nil {
+		return err
+	}
+	if key == "" {
+		return fmt.Errorf("tallyward: Erase: empty key")
+	}
+	existed, err := es.table.Delete(key)
+	if err != nil {
+		p.err = err
+		return err
+	}
+	if existed {
+		p.c.live--
+		p.c.erased++
+	}
+	if err := p.store.SetTombstone(entity, key, true); err != nil {
+		p.err = err
+		return err
+	}
+	for _, h := range p.held {
+		if h.in.keys[i] == key {
+			h.in.keys[i] = ""
+			clear(h.in.on[es.first : es.first+len(es.kinds)])
+		}
+	}
+	return p.Commit(nil)
+}
+
+// Readmit lifts the tombstone Erase left for (entity, key): later events
+// build its state afresh. It commits.
+func (p *Pipeline[E]) Readmit(entity, key string) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	if _, _, err := p.entity(entity); err != nil {
+		return err
+	}
+	if err := p.store.SetTombstone(entity, key, false); err != nil {
+		p.err = err
+		return err
+	}
+	return p.Commit(nil)
+}
+
+// Snapshot commits and writes a consistent copy of the pipeline's state
+// (records, definitions, source position and watermark) to dir, which must
+// not exist, on the pipeline's filesystem. Opening a pipeline with
+// Options{Dir: dir} (or on a copy made by CopySnapshot) resumes exactly
+// where this one was at the snapshot: feed it from its Resume().
+//
+// Settled events held at the snapshot are re-read from the source by the
+// opened copy (Resume is at or below the oldest of them).
+func (p *Pipeline[E]) Snapshot(dir string) error {
+	if err := p.Commit(nil); err != nil {
+		return err
+	}
+	return p.store.Snapshot(dir)
+}
+
+// CopySnapshot copies a snapshot directory between filesystems (nil means
+// the OS filesystem), e.g. onto the machine that takes over a partition.
+func CopySnapshot(srcFS vfs.FS, src string, dstFS vfs.FS, dst string) error {
+	return state.CopySnapshot(srcFS, src, dstFS, dst)
+}

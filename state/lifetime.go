@@ -1,0 +1,380 @@
+package state
+
+import (
+	"bytes"
+	"crypto/rand"
+	"crypto/sha256"
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+
+	"github.com/cockroachdb/pebble/v2"
+	"github.com/cockroachdb/pebble/v2/vfs"
+)
+
+// More key tags (frozen numbers, see the package doc):
+//
+//	0x04 expiry      0x04 | 8-byte big-endian bucket (sign bit flipped) | uvarint len(table) | table | entity key -> empty
+//	0x05 tombstone   0x05 | 16-byte salted SHA-256 of (table, entity key) -> empty
+//
+// The expiry index lets a commit find idle records without scanning them
+// all. Tombstones remember erased entities without keeping their key: only
+// a hash salted with a random per-store secret (meta "salt") is stored.
+const (
+	tagExpiry    byte = 0x04
+	tagTombstone byte = 0x05
+)
+
+const metaSalt = "salt"
+
+// SweepLimit bounds the expiry index entries one commit examines, so a
+// commit's cost stays proportional to the work since the last one.
+const SweepLimit = 100_000
+
+func expiryKey(dst []byte, bucket int64, table, entity string) []byte {
+	dst = append(dst, tagExpiry)
+	dst = binary.BigEndian.AppendUint64(dst, uint64(bucket)^(1<<63))
+	dst = binary.AppendUvarint(dst, uint64(len(table)))
+	dst = append(dst, table...)
+	return append(dst, entity...)
+}
+
+func parseExpiryKey(k []byte) (bucket int64, table, entity string, err error) {
+	if len(k) < 10 || k[0] != tagExpiry {
+		return 0, "", "", fmt.Errorf("%w: expiry key %q", ErrCorrupt, k)
+	}
+	bucket = int64(binary.BigEndian.Uint64(k[1:9]) ^ (1 << 63))
+	n, w := binary.Uvarint(k[9:])
+	if w <= 0 || uint64(len(k)-9-w) < n {
+		return 0, "", "", fmt.Errorf("%w: expiry key %q", ErrCorrupt, k)
+	}
+	rest := k[9+w:]
+	return bucket, string(rest[:n]), string(rest[n:]), nil
+}
+
+// expirer is a table that can judge and remove expired records.
+type expirer interface {
+	flusher
+	tableName() string
+	expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error)
+}
+
+func (t *Table[V]) tableName() string { return t.name }
+
+// sweep examines up to SweepLimit expiry index entries with a bucket at or
+// below w and removes, in b, the records whose last time + ttl <= w. It
+// returns how many records it removed.
+func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
+	if w == math.MinInt64 {
+		return 0, nil
+	}
+	byName := map[string]expirer{}
+	for _, t := range s.tables {
+		if e, ok := t.(expirer); ok {
+			byName[e.tableName()] = e
+		}
+	}
+	upper := expiryKey(nil, satAdd(w, 1), "", "")[:9]
+	if w == math.MaxInt64 {
+		upper = []byte{tagExpiry + 1}
+	}
+	it, err := s.pending.NewIter(&pebble.IterOptions{LowerBound: []byte{tagExpiry}, UpperBound: upper})
+	if err != nil {
+		return 0, err
+	}
+	defer it.Close()
+	removed := 0
+	n := 0
+	for ok := it.First(); ok && n < SweepLimit; ok = it.Next() {
+		n++
+		bucket, table, entity, err := parseExpiryKey(it.Key())
+		if err != nil {
+			return removed, err
+		}
+		t := byName[table]
+		if t == nil {
+			// A table no longer defined: its records are dropped by the
+			// definition reset that removed it; the entry is stale.
+			if err := b.Delete(it.Key(), nil); err != nil {
+				return removed, err
+			}
+			continue
+		}
+		gone, err := t.expire(b, bytes.Clone(it.Key()), bucket, entity, w)
+		if err != nil {
+			return removed, err
+		}
+		if gone {
+			removed++
+		}
+	}
+	return removed, it.Error()
+}
+
+// expire handles one expiry index entry at or below the watermark w.
+func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error) {
+	var v V
+	sl := t.m[entity]
+	found := sl != nil
+	if found {
+		v = sl.Value
+	} else {
+		var err error
+		if v, found, err = t.load(entity); err != nil {
+			return false, err
+		}
+	}
+	if err := b.Delete(indexKey, nil); err != nil {
+		return false, err
+	}
+	if !found {
+		return false, nil
+	}
+	if satAdd(v.LastTime(), t.ttl) > w {
+		// Updated since the entry was written: re-index it where it now
+		// belongs.
+		if sl != nil {
+			if sl.indexed == bucket {
+				sl.indexed = 0
+			}
+			if !sl.dirty {
+				sl.dirty = true
+				t.dirty = append(t.dirty, sl)
+			}
+			return false, nil
+		}
+		t.keybuf = expiryKey(t.keybuf[:0], t.bucket(v.LastTime()), t.name, entity)
+		return false, b.Set(t.keybuf, nil, nil)
+	}
+	if sl != nil {
+		sl.dirty = false
+		t.drop(sl)
+	}
+	t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
+	return true, b.Delete(t.keybuf, nil)
+}
+
+// RebuildExpiry rewrites this table's expiry index entries from its
+// records, for a store whose ttl changed. It stages the writes for the
+// next commit and visits every record of the table.
+func (t *Table[V]) RebuildExpiry() error {
+	if err := t.store.check(); err != nil {
+		return err
+	}
+	b := t.store.pending
+	// Index entries of every bucket: scan the index for this table.
+	it, err := b.NewIter(&pebble.IterOptions{LowerBound: []byte{tagExpiry}, UpperBound: []byte{tagExpiry + 1}})
+	if err != nil {
+		return t.store.fail(err)
+	}
+	var stale [][]byte
+	for ok := it.First(); ok; ok = it.Next() {
+		if _, table, _, err := parseExpiryKey(it.Key()); err == nil && table == t.name {
+			stale = append(stale, bytes.Clone(it.Key()))
+		}
+	}
+	if err := it.Close(); err != nil {
+		return t.store.fail(err)
+	}
+	for _, k := range stale {
+		if err := b.Delete(k, nil); err != nil {
+			return t.store.fail(err)
+		}
+	}
+	return t.Rewrite(func(entity string, val []byte) ([]byte, error) {
+		v, err := t.decode(val)
+		if err != nil {
+			return nil, fmt.Errorf("%w: %w", ErrCorrupt, err)
+		}
+		if bk := t.bucket(v.LastTime()); bk != 0 {
+			if err := b.Set(expiryKey(nil, bk, t.name, entity), nil, nil); err != nil {
+				return nil, err
+			}
+		}
+		if sl := t.m[entity]; sl != nil {
+			sl.indexed = t.bucket(v.LastTime())
+		}
+		return val, nil
+	})
+}
+
+// Rewrite passes every stored record of the table to fn and stages what fn
+// returns in its place (nil deletes the record). It is for definition
+// changes at open; cached entries must not be dirty.
+func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) error {
+	lower := RecordKey(nil, t.name, "")
+	upper := prefixEnd(lower)
+	b := t.store.pending
+	it, err := b.NewIter(&pebble.IterOptions{LowerBound: lower, UpperBound: upper})
+	if err != nil {
+		return t.store.fail(err)
+	}
+	type kv struct{ k, v []byte }
+	var out []kv
+	for ok := it.First(); ok; ok = it.Next() {
+		entity := string(it.Key()[len(lower):])
+		nv, err := fn(entity, it.Value())
+		if err != nil {
+			it.Close()
+			return fmt.Errorf("state: key %q: %w", it.Key(), err)
+		}
+		if nv == nil || !bytes.Equal(nv, it.Value()) {
+			out = append(out, kv{bytes.Clone(it.Key()), bytes.Clone(nv)})
+		}
+	}
+	if err := it.Close(); err != nil {
+		return t.store.fail(err)
+	}
+	for _, e := range out {
+		if sl := t.m[string(e.k[len(lower):])]; sl != nil {
+			sl.dirty = false
+			t.drop(sl)
+		}
+		if e.v == nil {
+			err = b.Delete(e.k, nil)
+		} else {
+			err = b.Set(e.k, e.v, nil)
+		}
+		if err != nil {
+			return t.store.fail(err)
+		}
+	}
+	return nil
+}
+
+// prefixEnd returns the smallest key greater than every key with prefix p.
+func prefixEnd(p []byte) []byte {
+	end := bytes.Clone(p)
+	for i := len(end) - 1; i >= 0; i-- {
+		if end[i] < 0xff {
+			end[i]++
+			return end[:i+1]
+		}
+	}
+	return nil
+}
+
+// ensureSalt loads or creates the store's tombstone salt and loads the
+// tombstones into memory (erasures are rare; the set is small).
+func (s *Store) ensureSalt() error {
+	found, err := s.getRaw(metaKey(metaSalt), func(v []byte) error {
+		if len(v) != 32 {
+			return fmt.Errorf("%w: salt of %d bytes", ErrCorrupt, len(v))
+		}
+		s.salt = bytes.Clone(v)
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	if !found {
+		s.salt = make([]byte, 32)
+		rand.Read(s.salt)
+		if err := s.pending.Set(metaKey(metaSalt), s.salt, nil); err != nil {
+			return s.fail(err)
+		}
+	}
+	s.tombstones = map[[16]byte]struct{}{}
+	it, err := s.pending.NewIter(&pebble.IterOptions{LowerBound: []byte{tagTombstone}, UpperBound: []byte{tagTombstone + 1}})
+	if err != nil {
+		return s.fail(err)
+	}
+	for ok := it.First(); ok; ok = it.Next() {
+		var h [16]byte
+		if len(it.Key()) != 17 {
+			it.Close()
+			return fmt.Errorf("%w: tombstone key %q", ErrCorrupt, it.Key())
+		}
+		copy(h[:], it.Key()[1:])
+		s.tombstones[h] = struct{}{}
+	}
+	return it.Close()
+}
+
+func (s *Store) tombstoneHash(table, entity string) [16]byte {
+	h := sha256.New()
+	h.Write(s.salt)
+	var n [binary.MaxVarintLen64]byte
+	h.Write(n[:binary.PutUvarint(n[:], uint64(len(table)))])
+	h.Write([]byte(table))
+	h.Write([]byte(entity))
+	var out [16]byte
+	copy(out[:], h.Sum(nil))
+	return out
+}
+
+// Erased reports whether (table, entity) has a tombstone. Cheap when
+// nothing was ever erased.
+func (s *Store) Erased(table, entity string) bool {
+	if len(s.tombstones) == 0 {
+		return false
+	}
+	_, ok := s.tombstones[s.tombstoneHash(table, entity)]
+	return ok
+}
+
+// SetTombstone stages (on) or removes (off) the tombstone of (table,
+// entity).
+func (s *Store) SetTombstone(table, entity string, on bool) error {
+	if err := s.check(); err != nil {
+		return err
+	}
+	h := s.tombstoneHash(table, entity)
+	key := append([]byte{tagTombstone}, h[:]...)
+	var err error
+	if on {
+		s.tombstones[h] = struct{}{}
+		err = s.pending.Set(key, nil, nil)
+	} else {
+		delete(s.tombstones, h)
+		err = s.pending.Delete(key, nil)
+	}
+	if err != nil {
+		return s.fail(err)
+	}
+	return nil
+}
+
+// Snapshot writes a consistent copy of the store as of its last commit
+// (records, definitions, Mark) to dir, which must not exist, on the
+// store's filesystem. Call Commit first to include recent changes. The
+// copy opens as a store of its own: Options{Dir: dir}.
+func (s *Store) Snapshot(dir string) error {
+	if err := s.check(); err != nil {
+		return err
+	}
+	if err := s.db.Checkpoint(dir, pebble.WithFlushedWAL()); err != nil {
+		return fmt.Errorf("state: snapshot to %q: %w", dir, err)
+	}
+	return nil
+}
+
+// CopySnapshot copies a snapshot directory src on srcFS to dst on dstFS,
+// e.g. onto another disk or machine-local directory before opening it.
+func CopySnapshot(srcFS vfs.FS, src string, dstFS vfs.FS, dst string) error {
+	if srcFS == nil {
+		srcFS = vfs.Default
+	}
+	if dstFS == nil {
+		dstFS = vfs.Default
+	}
+	ok, err := vfs.Clone(srcFS, dstFS, src, dst)
+	if err != nil {
+		return fmt.Errorf("state: copy snapshot %q to %q: %w", src, dst, err)
+	}
+	if !ok {
+		return fmt.Errorf("state: copy snapshot: %q: %w", src, errors.New("no such directory"))
+	}
+	return nil
+}
+
+func satAdd(a, b int64) int64 {
+	if b > 0 && a > math.MaxInt64-b {
+		return math.MaxInt64
+	}
+	if b < 0 && a < math.MinInt64-b {
+		return math.MinInt64
+	}
+	return a + b
+}
