@@ -340,7 +340,8 @@ func (s *Store) SetTombstone(table, entity string, on bool) error {
 // (records, definitions, Mark) to dir, which must not exist, on the
 // store's filesystem. Call Commit first to include recent changes. The
 // copy opens as a store of its own: Options{Dir: dir}.
-func (s *Store) Snapshot(dir string) error {
+func (s *Store) Snapshot(dir string) (err error) {
+	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return err
 	}

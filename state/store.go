@@ -97,14 +97,32 @@ func (o *Options) Validate() error {
 	return errors.Join(errs...)
 }
 
-// quietLogger drops Pebble's chatter. Fatalf panics with a descriptive
-// error instead of exiting, so the caller's recover or test harness sees it.
+// quietLogger drops Pebble's chatter. Fatalf panics with a fatalError
+// instead of exiting the process: Pebble calls it when a write to the log
+// fails inside a commit, and the Store recovers that panic on its own
+// goroutine and turns it into a sticky ErrFailed. (A Fatalf on one of
+// Pebble's background goroutines still ends the process, as Pebble's own
+// logger would.)
 type quietLogger struct{}
 
 func (quietLogger) Infof(string, ...any)  {}
 func (quietLogger) Errorf(string, ...any) {}
 func (quietLogger) Fatalf(format string, args ...any) {
-	panic(fmt.Errorf("pebble fatal: "+format, args...))
+	panic(fatalError{fmt.Errorf("pebble: "+format, args...)})
+}
+
+type fatalError struct{ err error }
+
+// guard turns a Pebble fatal panic raised on the caller's goroutine into
+// the store's sticky error. Use as: defer s.guard(&err).
+func (s *Store) guard(err *error) {
+	if r := recover(); r != nil {
+		f, ok := r.(fatalError)
+		if !ok {
+			panic(r)
+		}
+		*err = s.fail(f.err)
+	}
 }
 
 // Store is one Pebble database holding the records, definitions and
@@ -215,10 +233,10 @@ func (s *Store) fail(err error) error {
 
 // getRaw looks key up in the pending batch and the database and passes the
 // value to fn, which must not retain it.
-func (s *Store) getRaw(key []byte, fn func(v []byte) error) (bool, error) {
+func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err error) {
+	defer s.guard(&err)
 	var v []byte
 	var closer io.Closer
-	var err error
 	if s.pending.Empty() {
 		v, closer, err = s.db.Get(key)
 	} else {
@@ -285,7 +303,8 @@ func (s *Store) DeleteDefinition(name string) error {
 // Commit writes every dirty cached entry, anything staged, and m in one
 // synced batch. On error the store is failed: nothing of this commit is
 // visible after a reopen, and every later call returns the error.
-func (s *Store) Commit(m Mark) error {
+func (s *Store) Commit(m Mark) (err error) {
+	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return err
 	}
@@ -327,7 +346,8 @@ func (s *Store) Commit(m Mark) error {
 // staged for the next Commit (call Sweep just before it, so that a record
 // both expired and dirty is dropped rather than written). It returns the
 // number of records removed.
-func (s *Store) Sweep(w int64) (int, error) {
+func (s *Store) Sweep(w int64) (_ int, err error) {
+	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return 0, err
 	}
@@ -343,14 +363,20 @@ func (s *Store) Sweep(w int64) (int, error) {
 	return n, nil
 }
 
-// Close discards anything not committed and closes the database.
-func (s *Store) Close() error {
+// Close discards anything not committed and closes the database. After a
+// failure it still releases what it can and returns the failure.
+func (s *Store) Close() (err error) {
 	if s.closed {
 		return nil
 	}
 	s.closed = true
+	defer s.guard(&err)
 	s.pending.Close()
-	return s.db.Close()
+	err = s.db.Close()
+	if s.err != nil {
+		err = errors.Join(s.err, err)
+	}
+	return err
 }
 
 // DB exposes the underlying database for maintenance (compaction, raw
