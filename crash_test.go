@@ -16,6 +16,7 @@ import (
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/vfs"
+	"github.com/cockroachdb/pebble/v2/vfs/errorfs"
 	"github.com/stretchr/testify/require"
 )
 
@@ -138,12 +139,10 @@ func TestKillAndRestartProcess(t *testing.T) {
 			if r.IntN(5) != 0 { // most runs die; some get to the end
 				killAt = r.IntN(len(evs))
 			}
-			cmd := exec.Command(os.Args[0], "-test.run=^TestKillChild$", "-test.count=1")
-			cmd.Env = append(os.Environ(), "TALLYWARD_CHILD_DIR="+dir, "TALLYWARD_KILL_AT="+strconv.Itoa(killAt))
-			out, err := cmd.CombinedOutput()
-			if err != nil {
-				ws, ok := cmd.ProcessState.Sys().(syscall.WaitStatus)
-				require.True(t, ok && ws.Signaled() && ws.Signal() == syscall.SIGKILL, "child failed: %v\n%s", err, out)
+			out, ee := runChild(t, dir, "TALLYWARD_KILL_AT="+strconv.Itoa(killAt))
+			if ee != nil {
+				ws, ok := ee.Sys().(syscall.WaitStatus)
+				require.True(t, ok && ws.Signaled() && ws.Signal() == syscall.SIGKILL, "child failed: %v\n%s", ee, out)
 				kills++
 				continue
 			}
@@ -199,24 +198,55 @@ func TestKillChild(t *testing.T) {
 	}
 	opts := crashOpts()
 	opts.Dir = filepath.Join(dir, "db")
+	if spec := os.Getenv("TALLYWARD_FAULT"); spec != "" {
+		opts.FS = errorfs.Wrap(vfs.Default, parseFault(t, spec))
+	}
 	p, err := Open(loginSpec(emit), opts)
-	require.NoError(t, err)
+	reportIfFailed(err)
 	for i := p.Resume(); i < uint64(len(evs)); i++ {
 		if int(i) == killAt {
 			syscall.Kill(os.Getpid(), syscall.SIGKILL)
 			select {} // the signal is on its way
 		}
-		if err := p.Process(evs[i]); err != nil {
-			require.True(t, benign(err), err)
+		if err := p.Process(evs[i]); err != nil && !benign(err) {
+			reportIfFailed(err)
 		}
 		// Rows are written before the commit that makes their events
 		// durable: at-least-once emission.
 		if (i+1)%crashCommitEvery == 0 {
-			require.NoError(t, p.Commit(nil))
+			reportIfFailed(p.Commit(nil))
+			if strings.HasPrefix(os.Getenv("TALLYWARD_FAULT"), "table-read") {
+				// Move committed records into tables so that lookups
+				// of evicted records read them.
+				reportIfFailed(p.Store().DB().Flush())
+			}
 		}
 	}
 	require.NoError(t, p.Flush())
 	require.NoError(t, p.Close())
 	require.NoError(t, rowsFile.Close())
 	require.NoError(t, os.WriteFile(filepath.Join(dir, "done"), nil, 0o644))
+}
+
+// reportIfFailed ends a child whose pipeline reported an error: exit code 3
+// and the error on stderr, for the parent to check.
+func reportIfFailed(err error) {
+	if err != nil {
+		fmt.Fprintf(os.Stderr, "REPORTED: %v\n", err)
+		os.Exit(3)
+	}
+}
+
+// runChild runs one child process over dir and returns its output and
+// exit status.
+func runChild(t *testing.T, dir string, env ...string) ([]byte, *exec.ExitError) {
+	cmd := exec.Command(os.Args[0], "-test.run=^TestKillChild$", "-test.count=1")
+	cmd.Env = append(append(os.Environ(), "TALLYWARD_CHILD_DIR="+dir), env...)
+	out, err := cmd.CombinedOutput()
+	if err == nil {
+		return out, nil
+	}
+	var ee *exec.ExitError
+	require.ErrorAs(t, err, &ee, "child did not run: %s", out)
+	return out, ee
 }
