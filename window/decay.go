@@ -219,12 +219,15 @@ func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64,
 }
 
 // westUpdate adds x with weight g > 0 to a weighted (W, mean, M2) triple
-// (West, CACM 22(9), 1979).
+// (West, CACM 22(9), 1979). The M2 increment is written as
+// δ²·g·W/(W+g), which equals g·δ·(x − new mean) but cannot turn negative
+// through rounding.
 func westUpdate(w, mean, m2, g, x float64) (float64, float64, float64) {
+	w0 := w
 	w += g
 	delta := x - mean
 	mean += delta * (g / w)
-	m2 += g * delta * (x - mean)
+	m2 += delta * delta * (g * w0 / w)
 	return w, mean, m2
 }
 

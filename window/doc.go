@@ -40,7 +40,7 @@
 // for P retained panes, P_w panes in the window and R raw events within the
 // horizon. Memory is about 24 bytes per non-empty pane and 16 per raw event
 // plus a fixed header; SizeBytes reports it. A 1 h window at 1 min
-// resolution holding 10 events encodes in about 35 bytes.
+// resolution holding 10 events encodes in about 30 bytes.
 //
 // # Not for
 //
