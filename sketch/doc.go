@@ -64,8 +64,8 @@
 //
 // # Costs
 //
-// Distinct: Add about 30-150 ns amortised and 0 allocations; the per-event
-// Add+DistinctAt about 100-300 ns (see Benchmark*; 2 shared cores). Exact
+// Distinct: Add about 45-190 ns amortised and 0 allocations; the per-event
+// Add+DistinctAt about 75-275 ns (BenchmarkDistinct; 2 shared cores). Exact
 // mode holds 16 bytes per live (item, pane) entry; sketch mode 8*2^p bytes
 // of register frontiers plus 2^p bytes per cached view (at most three),
 // about 33 KiB at the default p=12 and 0.6 MiB at 10M items with p=12
@@ -85,16 +85,17 @@
 // # Windowed distinct: the measured choice
 //
 // Two designs were measured on the same stream (1 h window of 1 min panes,
-// 5 s Horizon, p=12, one event per ms, BenchmarkDistinct* against
-// BenchmarkDesignPaneSketches, 2 shared cores under load):
+// 5 s Horizon, p=12, one event per ms, items cycling through n distinct;
+// BenchmarkDistinct against BenchmarkDesignPaneSketches, go test -bench .,
+// 2 cores shared with other work; bytes are encoded sizes):
 //
-//	                           n=10      n=1k      n=100k
-//	per-pane axiomhq  add      30 ns     610 ns    46 ns
-//	  add + query              2.4 us    563 us    433 us
-//	  bytes (encoded)          300       7.4 KB    127 KB
-//	sliding registers add      33-56 ns  77-110 ns 150-180 ns
-//	  add + query              85-110 ns 110-220 ns 170-260 ns
-//	  bytes (encoded/heap)     82/488    6.0/33 KB 29/53 KB
+//	                              n=10      n=1k      n=100k    n=10M
+//	per-pane axiomhq   add        31 ns     1214 ns   65 ns     -
+//	                   add+query  2.4 us    541 us    301 us    -
+//	                   bytes      3.7 KB    54 KB     250 KB    -
+//	sliding registers  add        44 ns     70 ns     93 ns     193 ns
+//	                   add+query  76 ns     93 ns     107 ns    275 ns
+//	                   bytes      82 B      6.0 KB    29 KB     255 KB
 //
 // Per-pane sketches must merge the window's panes and estimate on every
 // query (about 0.5 ms once panes are dense); the sliding registers keep,
