@@ -58,6 +58,36 @@ type expirer interface {
 	flusher
 	tableName() string
 	expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error)
+	expireDirty(b *pebble.Batch, w int64) (int, error)
+}
+
+// expireDirty removes the dirty cached records that are already expired
+// as of w: they would otherwise be written, indexed and only swept at a
+// later commit, so the live count would lag by a commit interval.
+func (t *Table[V]) expireDirty(b *pebble.Batch, w int64) (int, error) {
+	if t.ttl <= 0 {
+		return 0, nil
+	}
+	n := 0
+	for _, sl := range t.dirty {
+		if !sl.dirty || satAdd(sl.Value.LastTime(), t.ttl) > w {
+			continue
+		}
+		if sl.indexed != 0 {
+			t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, sl.Key)
+			if err := b.Delete(t.keybuf, nil); err != nil {
+				return n, err
+			}
+		}
+		t.keybuf = RecordKey(t.keybuf[:0], t.name, sl.Key)
+		if err := b.Delete(t.keybuf, nil); err != nil {
+			return n, err
+		}
+		sl.dirty = false
+		t.drop(sl)
+		n++
+	}
+	return n, nil
 }
 
 func (t *Table[V]) tableName() string { return t.name }
@@ -109,7 +139,17 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 			removed++
 		}
 	}
-	return removed, it.Error()
+	if err := it.Error(); err != nil {
+		return removed, err
+	}
+	for _, t := range byName {
+		n, err := t.expireDirty(b, w)
+		removed += n
+		if err != nil {
+			return removed, err
+		}
+	}
+	return removed, nil
 }
 
 // expire handles one expiry index entry at or below the watermark w.
