@@ -31,8 +31,11 @@ const (
 	// Decoded states are checked against bounds far above what any real
 	// stream reaches (2^200 events at the largest weight) and far below
 	// overflow.
+	// A weighted mean of values within ±MaxDecayedValue can round a little
+	// past it: the bound on a decoded mean has slack.
 	maxDecodedWeight = 0x1p300
 	maxDecodedM2     = 0x1p700
+	maxDecodedMean   = 2 * MaxDecayedValue
 )
 
 func (s DecaySpec) rebase() int64 {
@@ -309,7 +312,7 @@ func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
 //	if bit 0 is set:
 //	varint   maxT
 //	float    W, the folded weight relative to the landmark, in [0, 2^300]
-//	float    mean, |mean| <= MaxDecayedValue; 0 when W = 0
+//	float    mean, |mean| <= 2·MaxDecayedValue; 0 when W = 0
 //	float    M2 in [0, 2^700]; 0 when W = 0
 //	uvarint  R, then R raw events, newest first:
 //	  uvarint  delta: the first time is maxT − delta, each next the
@@ -327,7 +330,7 @@ func (d *Decayed) decode(b []byte, store bool) error {
 		return r.err
 	}
 	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
-	if r.err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= MaxDecayedValue) ||
+	if r.err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= maxDecodedMean) ||
 		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
 		r.fail("weights out of range")
 	}
