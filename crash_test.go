@@ -46,7 +46,7 @@ func dumpRecords(t testing.TB, db *pebble.DB) []string {
 // final records.
 func reference(t *testing.T, evs []login) (map[uint64]string, []string, Stats) {
 	rows := newRowLog()
-	p := openTest(t, loginSpec(rows.add), crashOpts())
+	p := openTest(t, richSpec(rows.add), crashOpts())
 	require.NoError(t, p.Replay(context.Background(), slice(evs)))
 	return rows.rows, dumpRecords(t, p.Store().DB()), p.Stats()
 }
@@ -79,7 +79,7 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 		all := map[uint64]string{}
 		for crashes := 0; ; crashes++ {
 			rows := newRowLog()
-			p, err := Open(loginSpec(rows.add), opts)
+			p, err := Open(richSpec(rows.add), opts)
 			require.NoError(t, err)
 			start := p.Resume()
 			stop := uint64(len(evs))
@@ -150,7 +150,7 @@ func TestKillAndRestartProcess(t *testing.T) {
 				break
 			}
 		}
-		p, err := Open(loginSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
+		p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
 		require.NoError(t, err)
 		require.Equal(t, wantRecords, dumpRecords(t, p.Store().DB()), "round %d", round)
 		require.NoError(t, p.Close())
@@ -201,7 +201,7 @@ func TestKillChild(t *testing.T) {
 	if spec := os.Getenv("TALLYWARD_FAULT"); spec != "" {
 		opts.FS = errorfs.Wrap(vfs.Default, parseFault(t, spec))
 	}
-	p, err := Open(loginSpec(emit), opts)
+	p, err := Open(richSpec(emit), opts)
 	reportIfFailed(err)
 	for i := p.Resume(); i < uint64(len(evs)); i++ {
 		if int(i) == killAt {

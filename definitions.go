@@ -238,7 +238,7 @@ func splitRecord(b []byte) (last int64, blobs [][]byte, err error) {
 type rawAgg []byte
 
 func (r rawAgg) add(int64, float64, uint64) bool         { return false }
-func (r rawAgg) at(int64) float64                        { return 0 }
+func (r rawAgg) at(int64, uint64) float64                { return 0 }
 func (r rawAgg) AppendBinary(dst []byte) ([]byte, error) { return append(dst, r...), nil }
 func (r rawAgg) UnmarshalBinary([]byte) error            { return errors.New("raw") }
 func (r rawAgg) SizeBytes() int                          { return len(r) }

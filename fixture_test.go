@@ -141,3 +141,25 @@ func slice[E any](evs []E) Source[E] {
 		}
 	}
 }
+
+// richSpec is loginSpec plus one feature of every other kind, for the
+// invariant tests: what holds for counts must hold for all of them.
+func richSpec(emit func(Row[login])) Spec[login] {
+	s := loginSpec(emit)
+	amount := func(e login) float64 { return e.Amount }
+	addr := func(e login) string { return e.Addr }
+	s.Entities[1].Features = append(s.Entities[1].Features,
+		Feature[login]{Name: "amount_sum_1h", Kind: SlidingSum{Window: time.Hour, Resolution: time.Minute}, Value: amount},
+		Feature[login]{Name: "amount_max_1h", Kind: SlidingMax{Window: time.Hour, Resolution: time.Minute}, Value: amount},
+		Feature[login]{Name: "amount_mean_dec", Kind: Decayed{HalfLife: 30 * time.Minute, Stat: DecayedMean}, Value: amount},
+		Feature[login]{Name: "amount_var_dec", Kind: Decayed{HalfLife: 30 * time.Minute, Stat: DecayedVariance}, Value: amount},
+		Feature[login]{Name: "burst", Kind: Velocity{Short: 5 * time.Minute, Long: time.Hour, Resolution: time.Minute}},
+		Feature[login]{Name: "since_last", Kind: Recency{}, BeforeEvent: true},
+		Feature[login]{Name: "session", Kind: Recency{Stat: SessionEvents, Gap: 10 * time.Minute}},
+		Feature[login]{Name: "addrs_1h", Kind: Distinct{Window: time.Hour, Resolution: time.Minute}, Item: addr},
+		Feature[login]{Name: "addr_freq", Kind: Frequency{}, Item: addr},
+		Feature[login]{Name: "top_addr_share", Kind: TopShare{Capacity: 8}, Item: addr},
+		Feature[login]{Name: "amount_p95", Kind: Quantile{Q: 0.95}, Value: amount},
+	)
+	return s
+}

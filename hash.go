@@ -1,9 +1,14 @@
 package tallyward
 
-import "math"
+import (
+	"math"
 
-// hashItem maps an item to the 64-bit hash that item kinds consume.
-func hashItem(s string) uint64 { return fnv1a(fnvOffset, s) }
+	"github.com/tallyward/tallyward/sketch"
+)
+
+// hashItem maps an item to the 64-bit hash that item kinds consume: the
+// sketch package's fixed hash, which its formats are versioned with.
+func hashItem(s string) uint64 { return sketch.HashString(s) }
 
 const (
 	fnvOffset = 14695981039346656037

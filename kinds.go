@@ -120,4 +120,4 @@ func adapt(c codec, add func(int64, float64) bool, at func(int64) float64) *valu
 }
 
 func (a *valueAgg) add(t int64, v float64, _ uint64) bool { return a.addFn(t, v) }
-func (a *valueAgg) at(t int64) float64                    { return a.atFn(t) }
+func (a *valueAgg) at(t int64, _ uint64) float64          { return a.atFn(t) }

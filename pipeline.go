@@ -95,7 +95,10 @@ func (in *inputs) clone() inputs {
 // feature definitions match spec. The source must restart at Resume().
 func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	opts.EnsureDefaults()
-	err := errors.Join(opts.Validate(), spec.validate())
+	// One nanosecond more than the allowed disorder keeps as-of answers
+	// exact for BeforeEvent features, which ask at the event's time − 1.
+	horizon := int64(opts.MaxDisorder) + 1
+	err := errors.Join(opts.Validate(), spec.validate(horizon))
 	if opts.Mode == Settled && spec.Emit == nil {
 		err = errors.Join(err, errors.New("tallyward: Settled mode needs Spec.Emit"))
 	}
@@ -110,9 +113,6 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		return nil, err
 	}
 	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64}
-	// One nanosecond more than the allowed disorder keeps as-of answers
-	// exact for BeforeEvent features, which ask at the event's time − 1.
-	horizon := int64(opts.MaxDisorder) + 1
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
@@ -305,6 +305,11 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 			on := key != "" && (f.Where == nil || f.Where(e))
 			p.in.on[fi] = on
 			p.in.v[fi], p.in.item[fi] = 0, 0
+			if key != "" && f.Item != nil {
+				// Extracted even when the event does not update the
+				// feature: a frequency answers about the asking item.
+				p.in.item[fi] = hashItem(f.Item(e))
+			}
 			if !on {
 				continue
 			}
@@ -318,10 +323,6 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 					return reject(BadValue, p.names[fi])
 				}
 				p.in.v[fi] = v
-			case inputItem:
-				if f.Item != nil {
-					p.in.item[fi] = hashItem(f.Item(e))
-				}
 			}
 		}
 	}
@@ -400,7 +401,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			if es.ent.Features[j].BeforeEvent {
 				t--
 			}
-			out[es.first+j] = a.at(t)
+			out[es.first+j] = a.at(t, in.item[es.first+j])
 		}
 	}
 }

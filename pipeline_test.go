@@ -140,12 +140,12 @@ func TestReplayEqualsLive(t *testing.T) {
 			opts := Options{Mode: mode, MaxDisorder: 3 * time.Second, CommitEvery: 10_000, CacheBytes: 4 << 20}
 
 			replayed := newRowLog()
-			p := openTest(t, loginSpec(replayed.add), opts)
+			p := openTest(t, richSpec(replayed.add), opts)
 			require.NoError(t, p.Replay(context.Background(), slice(evs)))
 
 			lived := newRowLog()
 			var mu sync.Mutex // rows arrive from the goroutine holding the core
-			lp := openTest(t, loginSpec(func(r Row[login]) { mu.Lock(); lived.add(r); mu.Unlock() }), opts)
+			lp := openTest(t, richSpec(func(r Row[login]) { mu.Lock(); lived.add(r); mu.Unlock() }), opts)
 			clock := &fakeClock{now: t0 + int64(24*time.Hour)}
 			live := NewLive(lp, clock)
 			const workers = 4
@@ -187,7 +187,7 @@ func TestSettledIndependentOfArrivalOrder(t *testing.T) {
 	base := genLogins(7, 20_000, 2_000, 500, 0)
 	run := func(evs []login) map[uint64]string {
 		rows := newRowLog()
-		p := openTest(t, loginSpec(rows.add), Options{Mode: Settled, MaxDisorder: d, CommitEvery: -1})
+		p := openTest(t, richSpec(rows.add), Options{Mode: Settled, MaxDisorder: d, CommitEvery: -1})
 		require.NoError(t, p.Replay(context.Background(), slice(evs)))
 		require.Zero(t, p.Stats().Late)
 		return rows.byEvent(evs)

@@ -4,6 +4,7 @@ import (
 	"errors"
 	"fmt"
 	"strings"
+	"time"
 )
 
 // Spec describes what a pipeline computes over events of type E.
@@ -101,13 +102,21 @@ const (
 // aggregate is one feature's state for one entity key.
 type aggregate interface {
 	add(t int64, v float64, item uint64) bool
-	at(t int64) float64
+	// at answers as of t; item is the asking event's item, for kinds that
+	// answer about it (frequency).
+	at(t int64, item uint64) float64
 	AppendBinary(dst []byte) ([]byte, error)
 	UnmarshalBinary(b []byte) error
 	SizeBytes() int
 }
 
-func (s *Spec[E]) validate() error {
+// horizonValidator is a Kind whose validity depends on the pipeline's
+// horizon (its allowed disorder).
+type horizonValidator interface {
+	validateWith(horizon int64) error
+}
+
+func (s *Spec[E]) validate(horizon int64) error {
 	var errs []error
 	if s.Time == nil {
 		errs = append(errs, errors.New("tallyward: Spec.Time is required"))
@@ -146,6 +155,10 @@ func (s *Spec[E]) validate() error {
 			}
 			if err := f.Kind.Validate(); err != nil {
 				errs = append(errs, fmt.Errorf("%s: %w", where, err))
+			} else if hv, ok := f.Kind.(horizonValidator); ok {
+				if err := hv.validateWith(horizon); err != nil {
+					errs = append(errs, fmt.Errorf("%s with MaxDisorder %v: %w", where, time.Duration(horizon), err))
+				}
 			}
 			if f.Kind.input() != inputItem && f.Item != nil {
 				errs = append(errs, fmt.Errorf("%s: Item is set but %s does not count items", where, f.Kind.Describe()))

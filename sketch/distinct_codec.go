@@ -145,10 +145,11 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 }
 
 // riceParam picks the Rice parameter for n sorted 32-bit fingerprints:
-// about log2 of the mean gap 2^32/n.
+// about log2 of the mean gap 2^32/n, at most 31 (the decoder's limit; a
+// single fingerprint would otherwise ask for 32).
 func riceParam(n int) uint {
 	k := bits.Len64(uint64(1)<<32/uint64(n)) - 1
-	return uint(max(k, 0))
+	return uint(min(max(k, 0), 31))
 }
 
 // UnmarshalBinary replaces d with the decoded summary, spec included. On

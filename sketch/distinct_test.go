@@ -250,3 +250,26 @@ func TestDistinctMergeOrderFree(t *testing.T) {
 		t.Fatalf("merge of different specs: %v", err)
 	}
 }
+
+// One settled item encodes with the largest Rice parameter the decoder
+// accepts (found by the pipeline's invariant tests: a lone item asked for
+// k = 32, which the decoder rejects).
+func TestDistinctSingleSettledItemRoundTrips(t *testing.T) {
+	d, err := NewDistinct(DistinctSpec{Window: 60e9, Resolution: 1e9})
+	if err != nil {
+		t.Fatal(err)
+	}
+	d.Add(1_000e9, HashString("only"))
+	d.Add(1_002e9, HashString("only"))
+	b, err := d.AppendBinary(nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var back Distinct
+	if err := back.UnmarshalBinary(b); err != nil {
+		t.Fatalf("decode: %v", err)
+	}
+	if got := back.DistinctAt(1_002e9); got != 1 {
+		t.Fatalf("DistinctAt = %d, want 1", got)
+	}
+}

@@ -1,0 +1,220 @@
+package tallyward
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"time"
+
+	"github.com/tallyward/tallyward/window"
+)
+
+// DecayStat selects what a Decayed feature reports. Values are frozen
+// (they appear in stored definitions).
+type DecayStat uint8
+
+const (
+	// DecayedCount is the exponentially decayed number of events.
+	DecayedCount DecayStat = 0
+	// DecayedSum is the decayed sum of values.
+	DecayedSum DecayStat = 1
+	// DecayedMean is the decayed (weighted) mean of values; NaN if empty.
+	DecayedMean DecayStat = 2
+	// DecayedVariance is the decayed population variance of values
+	// (weighted second moment about the weighted mean); NaN if empty.
+	DecayedVariance DecayStat = 3
+)
+
+var decayStatNames = [...]string{"count", "sum", "mean", "variance"}
+
+func (s DecayStat) String() string {
+	if int(s) < len(decayStatNames) {
+		return decayStatNames[s]
+	}
+	return fmt.Sprintf("DecayStat(%d)", s)
+}
+
+// Decayed is an exponentially decayed statistic of an entity's events: an
+// event's weight halves every HalfLife of event time. It is computed by
+// forward decay, so the answer does not depend on the order events were
+// added in (up to float rounding; the pipeline's canonical order in
+// Settled mode makes it bit-identical), and it never overflows: the
+// landmark moves at event-time points fixed in advance (package window).
+type Decayed struct {
+	// HalfLife is the time for a weight to halve. Required.
+	HalfLife time.Duration
+	// Stat selects count, sum, mean or variance. Default: DecayedCount.
+	Stat DecayStat
+}
+
+func (k Decayed) spec(h int64) window.DecaySpec {
+	return window.DecaySpec{HalfLife: int64(k.HalfLife), Horizon: h}
+}
+
+// Describe implements Kind.
+func (k Decayed) Describe() string {
+	return fmt.Sprintf("decayed-%v half-life=%d", k.Stat, int64(k.HalfLife))
+}
+
+// Validate implements Kind.
+func (k Decayed) Validate() error {
+	var errs []error
+	if int(k.Stat) >= len(decayStatNames) {
+		errs = append(errs, fmt.Errorf("unknown DecayStat %d", k.Stat))
+	}
+	return errors.Join(append(errs, k.spec(0).Validate())...)
+}
+
+func (k Decayed) input() inputKind {
+	if k.Stat == DecayedCount {
+		return inputNone
+	}
+	return inputValue
+}
+
+// reach: after 64 half-lives a weight is below 2^-64 of its start.
+func (k Decayed) reach() int64 { return satAdd(0, 64*int64(k.HalfLife)) }
+
+func (k Decayed) newAggregate(h int64) aggregate {
+	d := window.NewDecayed(k.spec(h))
+	at := [...]func(int64) float64{d.CountAt, d.SumAt, d.MeanAt, d.VarianceAt}[k.Stat]
+	if k.Stat == DecayedCount {
+		return adapt(d, func(t int64, _ float64) bool { return d.Add(t, 1) }, at)
+	}
+	return adapt(d, d.Add, at)
+}
+
+// Velocity is the ratio of an entity's event rate in a Short window to its
+// rate in a Long window, with additive smoothing so that a new entity
+// reads a finite value (package window states the formula):
+//
+//	(short + α) / Short  ÷  (long + α·Long/Short) / Long
+//
+// 1 means the usual pace, large values a burst.
+type Velocity struct {
+	// Short and Long are the two windows; Short < Long, both multiples
+	// of Resolution. Required.
+	Short, Long time.Duration
+	// Resolution is the pane width. Default: Short/10.
+	Resolution time.Duration
+	// Smoothing is α. Default: 1.
+	Smoothing float64
+}
+
+func (k Velocity) spec(h int64) window.VelocitySpec {
+	res := k.Resolution
+	if res == 0 {
+		res = k.Short / 10
+	}
+	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(res), Horizon: h, Smoothing: k.Smoothing}
+}
+
+// Describe implements Kind.
+func (k Velocity) Describe() string {
+	s := k.spec(0)
+	return fmt.Sprintf("velocity short=%d long=%d resolution=%d smoothing=%g", s.Short, s.Long, s.Resolution, s.Smoothing)
+}
+
+// Validate implements Kind.
+func (k Velocity) Validate() error { return k.spec(0).Validate() }
+
+func (Velocity) input() inputKind { return inputNone }
+func (k Velocity) reach() int64   { return int64(k.Long) }
+
+func (k Velocity) newAggregate(h int64) aggregate {
+	v := window.NewVelocity(k.spec(h))
+	return adapt(v, func(t int64, _ float64) bool { return v.Add(t) }, v.RatioAt)
+}
+
+// RecencyStat selects what a Recency feature reports. Values are frozen.
+type RecencyStat uint8
+
+const (
+	// SinceLast is the time since the entity's previous event, in seconds,
+	// as of the asking event (NaN if none). Use with BeforeEvent to
+	// exclude the asking event itself.
+	SinceLast RecencyStat = 0
+	// Age is the time since the entity was first seen, in seconds (NaN if
+	// never).
+	Age RecencyStat = 1
+	// SessionEvents is the number of events in the entity's current
+	// session: events chained by gaps of at most Gap.
+	SessionEvents RecencyStat = 2
+)
+
+var recencyStatNames = [...]string{"since-last", "age", "session-events"}
+
+func (s RecencyStat) String() string {
+	if int(s) < len(recencyStatNames) {
+		return recencyStatNames[s]
+	}
+	return fmt.Sprintf("RecencyStat(%d)", s)
+}
+
+// Recency reports when an entity was seen: time since its last event, its
+// age, or the events in its current session.
+//
+// Age and SinceLast have unbounded reach: an entity with one of them never
+// expires by default (set Options.TTL to bound state; an expired entity
+// then reads as new).
+type Recency struct {
+	// Stat selects the answer. Default: SinceLast.
+	Stat RecencyStat
+	// Gap ends a session. Required for SessionEvents; default 30 minutes
+	// (common practice for web sessions).
+	Gap time.Duration
+}
+
+func (k Recency) spec(h int64) window.RecencySpec {
+	gap := k.Gap
+	if gap == 0 {
+		gap = 30 * time.Minute
+	}
+	return window.RecencySpec{Gap: int64(gap), Horizon: h}
+}
+
+// Describe implements Kind.
+func (k Recency) Describe() string {
+	return fmt.Sprintf("recency-%v gap=%d", k.Stat, k.spec(0).Gap)
+}
+
+// Validate implements Kind.
+func (k Recency) Validate() error {
+	var errs []error
+	if int(k.Stat) >= len(recencyStatNames) {
+		errs = append(errs, fmt.Errorf("unknown RecencyStat %d", k.Stat))
+	}
+	return errors.Join(append(errs, k.spec(0).Validate())...)
+}
+
+func (Recency) input() inputKind { return inputNone }
+
+func (k Recency) reach() int64 {
+	if k.Stat == SessionEvents {
+		return k.spec(0).Gap
+	}
+	return 0
+}
+
+func (k Recency) newAggregate(h int64) aggregate {
+	r := window.NewRecency(k.spec(h))
+	seconds := func(d int64, ok bool) float64 {
+		if !ok {
+			return math.NaN()
+		}
+		return float64(d) / float64(time.Second)
+	}
+	var at func(int64) float64
+	switch k.Stat {
+	case SinceLast:
+		at = func(t int64) float64 { return seconds(r.SinceLastAt(t)) }
+	case Age:
+		at = func(t int64) float64 {
+			first, ok := r.FirstSeenAt(t)
+			return seconds(t-first, ok)
+		}
+	default:
+		at = func(t int64) float64 { return float64(r.SessionCountAt(t)) }
+	}
+	return adapt(r, func(t int64, _ float64) bool { return r.Add(t) }, at)
+}
