@@ -228,9 +228,10 @@ func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64,
 func westUpdate(w, mean, m2, g, x float64) (float64, float64, float64) {
 	w0 := w
 	w += g
+	r := g / w
 	delta := x - mean
-	mean += delta * (g / w)
-	m2 += delta * delta * (g * w0 / w)
+	mean += delta * r
+	m2 += delta * delta * (r * w0)
 	return w, mean, m2
 }
 

@@ -55,10 +55,16 @@ func (o op) merge(acc, v float64) float64 {
 	switch o {
 	case opSum:
 		return acc + v
-	case opMin:
-		return math.Min(acc, v)
+	case opMin: // values are never NaN, so plain comparisons do
+		if v < acc {
+			return v
+		}
+		return acc
 	case opMax:
-		return math.Max(acc, v)
+		if v > acc {
+			return v
+		}
+		return acc
 	}
 	return 0
 }
@@ -249,10 +255,12 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 	if !exact {
 		hi--
 	}
+	vals := g.op.hasValue()
 	ps := g.panes.live()
-	i := searchPane(ps, lo)
-	for ; i < len(ps) && ps[i].idx <= hi; i++ {
-		v = g.mergeInto(n, v, ps[i].v)
+	for i := searchPane(ps, lo); i < len(ps) && ps[i].idx <= hi; i++ {
+		if vals {
+			v = g.mergeInto(n, v, ps[i].v)
+		}
 		n += ps[i].n
 	}
 	if !exact {
@@ -264,7 +272,9 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 			break
 		}
 		if e.t >= start {
-			v = g.mergeInto(n, v, e.v)
+			if vals {
+				v = g.mergeInto(n, v, e.v)
+			}
 			n++
 		}
 	}
