@@ -309,6 +309,22 @@ func (l *lifetime) UnmarshalBinary(b []byte) error {
 
 type frequencySummary struct{ *sketch.CountMin }
 
+// UnmarshalBinary also checks the stored parameters against the
+// definition's: the definition check on Open covers the kind, this covers
+// a record written under other parameters.
+func (s *frequencySummary) UnmarshalBinary(b []byte) error {
+	want := s.Params()
+	var cm sketch.CountMin
+	if err := cm.UnmarshalBinary(b); err != nil {
+		return err
+	}
+	if got := cm.Params(); got != want {
+		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errLifetime, got, want)
+	}
+	*s.CountMin = cm
+	return nil
+}
+
 func (s *frequencySummary) fold(_ float64, h uint64) { s.Add(h, 1) }
 func (s *frequencySummary) answer(extra []tailEvent, item uint64) float64 {
 	n := s.Estimate(item)
