@@ -180,10 +180,14 @@ func TestDefinitionReset(t *testing.T) {
 // Corrupt stored bytes give an error naming the key, never a panic, and
 // stop the pipeline.
 func TestCorruptRecordNamesKey(t *testing.T) {
-	p := openTest(t, loginSpec(nil), Options{})
+	dir := t.TempDir()
+	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
 	key := state.RecordKey(nil, "account", "mallory")
 	require.NoError(t, p.Store().DB().Set(key, []byte{1, 0x80}, pebble.Sync))
-	_, err := p.Score(login{T: t0, Account: "mallory", Addr: "x"}, nil)
+	require.NoError(t, p.Close())
+	p = openTest(t, loginSpec(nil), Options{Dir: dir})
+	_, err = p.Score(login{T: t0, Account: "mallory", Addr: "x"}, nil)
 	require.ErrorIs(t, err, state.ErrCorrupt)
 	require.ErrorContains(t, err, "mallory")
 	_, err = p.Score(login{T: t0 + 1, Account: "someone", Addr: "x"}, nil)

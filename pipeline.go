@@ -124,6 +124,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		es.table = state.NewTable(store, ent.Name, es.ttl, func(b []byte) (*record, error) {
 			return decodeRecord(b, es.fresh)
 		})
+		es.table.PeekLast = peekLast
 		p.nfeat += len(ent.Features)
 		p.ents = append(p.ents, es)
 	}

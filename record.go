@@ -70,6 +70,20 @@ func (r *record) SizeBytes() int {
 	return n
 }
 
+// peekLast reads a record's last event time without decoding its
+// features.
+func peekLast(b []byte) (int64, error) {
+	d := wire.Decoder{B: b}
+	if v := d.Byte(); d.Err == nil && v != recordVersion1 {
+		return 0, fmt.Errorf("%w: unknown version %d", errRecord, v)
+	}
+	last := d.Varint()
+	if d.Err != nil {
+		return 0, fmt.Errorf("%w: %w", errRecord, d.Err)
+	}
+	return last, nil
+}
+
 // decodeRecord decodes b into fresh aggregates made by fresh. It returns an
 // error, never panics, on any malformed input.
 func decodeRecord(b []byte, fresh func() []aggregate) (*record, error) {

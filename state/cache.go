@@ -50,6 +50,17 @@ type Table[V Value] struct {
 	decode func(b []byte) (V, error)
 	ttl    int64 // 0: records never expire
 
+	// knownAbsent: the table held no record when it was opened and no
+	// record has since left the cache except by deletion, so a key not in
+	// the cache is in no batch and not in Pebble either. A replay into a
+	// new store with a cache that holds its working set then never reads
+	// Pebble for a new entity.
+	knownAbsent bool
+
+	// PeekLast, if set, reads a stored record's newest time without
+	// decoding it all; the expiry sweep uses it.
+	PeekLast func(b []byte) (int64, error)
+
 	m      map[string]*Slot[V]
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
 	hand   int        // clock hand into slots
@@ -69,6 +80,7 @@ type Table[V Value] struct {
 func NewTable[V Value](s *Store, name string, ttl int64, decode func(b []byte) (V, error)) *Table[V] {
 	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}}
 	s.tables = append(s.tables, t)
+	t.knownAbsent = s.empty(RecordKey(nil, name, ""))
 	return t
 }
 
@@ -101,6 +113,9 @@ func (t *Table[V]) Get(key string) (*Slot[V], error) {
 		return nil, err
 	}
 	t.misses++
+	if t.knownAbsent {
+		return nil, nil
+	}
 	v, found, err := t.load(key)
 	if err != nil || !found {
 		return nil, err
@@ -163,6 +178,7 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 		}
 		victim.dirty = false
 	}
+	t.knownAbsent = false
 	t.drop(victim)
 	t.evictions++
 	return nil

@@ -154,14 +154,14 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 
 // expire handles one expiry index entry at or below the watermark w.
 func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error) {
-	var v V
+	var last int64
 	sl := t.m[entity]
 	found := sl != nil
 	if found {
-		v = sl.Value
+		last = sl.Value.LastTime()
 	} else {
 		var err error
-		if v, found, err = t.load(entity); err != nil {
+		if last, found, err = t.loadLast(entity); err != nil {
 			return false, err
 		}
 	}
@@ -171,7 +171,7 @@ func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity
 	if !found {
 		return false, nil
 	}
-	if satAdd(v.LastTime(), t.ttl) > w {
+	if satAdd(last, t.ttl) > w {
 		// Updated since the entry was written: re-index it where it now
 		// belongs.
 		if sl != nil {
@@ -184,7 +184,7 @@ func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity
 			}
 			return false, nil
 		}
-		t.keybuf = expiryKey(t.keybuf[:0], t.bucket(v.LastTime()), t.name, entity)
+		t.keybuf = expiryKey(t.keybuf[:0], t.bucket(last), t.name, entity)
 		return false, b.Set(t.keybuf, nil, nil)
 	}
 	if sl != nil {
@@ -193,6 +193,28 @@ func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity
 	}
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
 	return true, b.Delete(t.keybuf, nil)
+}
+
+// loadLast reads the newest time of a stored record, with PeekLast when
+// set.
+func (t *Table[V]) loadLast(entity string) (last int64, found bool, err error) {
+	if t.PeekLast == nil {
+		v, found, err := t.load(entity)
+		if err != nil || !found {
+			return 0, found, err
+		}
+		return v.LastTime(), true, nil
+	}
+	t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
+	found, err = t.store.getRaw(t.keybuf, func(b []byte) error {
+		var perr error
+		last, perr = t.PeekLast(b)
+		if perr != nil {
+			return fmt.Errorf("%w: %w", ErrCorrupt, perr)
+		}
+		return nil
+	})
+	return last, found, err
 }
 
 // RebuildExpiry rewrites this table's expiry index entries from its
@@ -265,6 +287,9 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) e
 	}
 	if err := it.Close(); err != nil {
 		return t.store.fail(err)
+	}
+	if len(out) > 0 {
+		t.knownAbsent = false
 	}
 	for _, e := range out {
 		if sl := t.m[string(e.k[len(lower):])]; sl != nil {

@@ -256,6 +256,17 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 	return true, nil
 }
 
+// empty reports whether no key with prefix exists (an error counts as not
+// empty: the caller then just takes the slower path).
+func (s *Store) empty(prefix []byte) bool {
+	it, err := s.pending.NewIter(&pebble.IterOptions{LowerBound: prefix, UpperBound: prefixEnd(prefix)})
+	if err != nil {
+		return false
+	}
+	found := it.First()
+	return it.Close() == nil && !found
+}
+
 // Definitions returns the stored definition fingerprints by name.
 func (s *Store) Definitions() (map[string][]byte, error) {
 	if err := s.check(); err != nil {
