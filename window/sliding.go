@@ -257,6 +257,9 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 	}
 	vals := g.op.hasValue()
 	ps := g.panes.live()
+	if exact && !vals {
+		return g.countExact(t, lo), 0
+	}
 	for i := searchPane(ps, lo); i < len(ps) && ps[i].idx <= hi; i++ {
 		if vals {
 			v = g.mergeInto(n, v, ps[i].v)
@@ -279,6 +282,28 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 		}
 	}
 	return n, v
+}
+
+// countExact is query for counts at t >= cutoff in time independent of
+// the window's length: the total less what lies outside the window. Every
+// folded pane is at or before pane(cutoff) <= pane(t), so only panes below
+// lo (at most Horizon/Resolution + 1 of them, between the floor and lo)
+// and raw events after t or before the window's start are subtracted.
+func (g *ring) countExact(t, lo int64) uint64 {
+	n := g.total
+	ps := g.panes.live()
+	for i := 0; i < len(ps) && ps[i].idx < lo; i++ {
+		n -= ps[i].n
+	}
+	raw := g.raw.live()
+	for i := len(raw) - 1; i >= 0 && raw[i].t > t; i-- {
+		n--
+	}
+	start := g.paneStart(lo)
+	for i := 0; i < len(raw) && raw[i].t < start; i++ {
+		n--
+	}
+	return n
 }
 
 // mergeInto joins x into the accumulator v that holds n events so far.
