@@ -154,7 +154,7 @@ func richSpec(emit func(Row[login])) Spec[login] {
 		Feature[login]{Name: "amount_mean_dec", Kind: Decayed{HalfLife: 30 * time.Minute, Stat: DecayedMean}, Value: amount},
 		Feature[login]{Name: "amount_var_dec", Kind: Decayed{HalfLife: 30 * time.Minute, Stat: DecayedVariance}, Value: amount},
 		Feature[login]{Name: "burst", Kind: Velocity{Short: 5 * time.Minute, Long: time.Hour, Resolution: time.Minute}},
-		Feature[login]{Name: "since_last", Kind: Recency{}, BeforeEvent: true},
+		Feature[login]{Name: "since_last", Kind: Recency{}},
 		Feature[login]{Name: "session", Kind: Recency{Stat: SessionEvents, Gap: 10 * time.Minute}},
 		Feature[login]{Name: "addrs_1h", Kind: Distinct{Window: time.Hour, Resolution: time.Minute}, Item: addr},
 		Feature[login]{Name: "addr_freq", Kind: Frequency{}, Item: addr},

@@ -30,7 +30,7 @@ func TestKindsAgainstBruteForce(t *testing.T) {
 		{Name: "dmean", Kind: Decayed{HalfLife: half, Stat: DecayedMean}, Value: amount},
 		{Name: "dvar", Kind: Decayed{HalfLife: half, Stat: DecayedVariance}, Value: amount},
 		{Name: "velocity", Kind: Velocity{Short: 30 * time.Second, Long: win, Resolution: res}},
-		{Name: "since", Kind: Recency{}, BeforeEvent: true},
+		{Name: "since", Kind: Recency{}},
 		{Name: "age", Kind: Recency{Stat: Age}},
 		{Name: "session", Kind: Recency{Stat: SessionEvents, Gap: 20 * time.Second}},
 		{Name: "distinct", Kind: Distinct{Window: win, Resolution: res}, Item: addr},
@@ -154,7 +154,7 @@ func bruteForce(evs []login, e login, win, res, half time.Duration) map[string]f
 		out["dmean"], out["dvar"] = mean, swx/w
 	}
 
-	// Recency. since: strictly before t (BeforeEvent asks at t−1).
+	// Recency. since: from the newest event strictly before t.
 	last, first := int64(math.MinInt64), int64(math.MaxInt64)
 	for _, a := range evs {
 		if a.T < t {
@@ -166,7 +166,7 @@ func bruteForce(evs []login, e login, win, res, half time.Duration) map[string]f
 	}
 	out["since"] = math.NaN()
 	if last != math.MinInt64 {
-		out["since"] = float64(t-1-last) / 1e9
+		out["since"] = float64(t-last) / 1e9
 	}
 	out["age"] = float64(t-first) / 1e9
 	// Session: walk back from t over events at or before t while the gaps

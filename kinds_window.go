@@ -130,9 +130,9 @@ func (k Velocity) newAggregate(h int64) aggregate {
 type RecencyStat uint8
 
 const (
-	// SinceLast is the time since the entity's previous event, in seconds,
-	// as of the asking event (NaN if none). Use with BeforeEvent to
-	// exclude the asking event itself.
+	// SinceLast is the time, in seconds, from the entity's newest event
+	// strictly before the asked time to the asked time (NaN if none): the
+	// gap before the asking event, which itself is never the "last" one.
 	SinceLast RecencyStat = 0
 	// Age is the time since the entity was first seen, in seconds (NaN if
 	// never).
@@ -207,7 +207,10 @@ func (k Recency) newAggregate(h int64) aggregate {
 	var at func(int64) float64
 	switch k.Stat {
 	case SinceLast:
-		at = func(t int64) float64 { return seconds(r.SinceLastAt(t)) }
+		at = func(t int64) float64 {
+			last, ok := r.LastSeenAt(t - 1)
+			return seconds(t-last, ok)
+		}
 	case Age:
 		at = func(t int64) float64 {
 			first, ok := r.FirstSeenAt(t)
