@@ -2,6 +2,8 @@ package state
 
 import (
 	"fmt"
+	"slices"
+	"strings"
 
 	"github.com/cockroachdb/pebble/v2"
 )
@@ -246,6 +248,10 @@ func (t *Table[V]) bucket(last int64) int64 {
 }
 
 func (t *Table[V]) flushDirty(b *pebble.Batch) error {
+	// In key order, Pebble's memtable inserts walk nearby skiplist nodes,
+	// which are then in the CPU cache: several times cheaper than random
+	// order for a large commit.
+	slices.SortFunc(t.dirty, func(a, b *Slot[V]) int { return strings.Compare(a.Key, b.Key) })
 	for _, sl := range t.dirty {
 		if !sl.dirty {
 			continue
