@@ -54,12 +54,15 @@ func (p *Pipeline[E]) Erase(entity, key string) error {
 		p.err = err
 		return err
 	}
-	for _, h := range p.held {
+	// Editing held inputs in place keeps the tree valid: its order is
+	// (time, tie-break, seq), and the tie-break was hashed on arrival.
+	p.held.Ascend(func(h *held[E]) bool {
 		if h.in.keys[i] == key {
 			h.in.keys[i] = ""
 			clear(h.in.on[es.first : es.first+len(es.kinds)])
 		}
-	}
+		return true
+	})
 	return p.Commit(nil)
 }
 

@@ -1,11 +1,11 @@
 package tallyward
 
 import (
-	"container/heap"
 	"errors"
 	"math"
 	"slices"
 
+	"github.com/google/btree"
 	"github.com/tallyward/tallyward/state"
 )
 
@@ -45,8 +45,8 @@ type Pipeline[E any] struct {
 	// none), so the Eager row reads it without a second lookup.
 	recs    []*record
 	vals    []float64
-	held    heldHeap[E] // Settled: events waiting for the watermark
-	batch   []*held[E]  // Settled: scratch for one timestamp's events
+	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
+	batch   []*held[E]              // Settled: scratch for one timestamp's events
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
@@ -112,7 +112,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64}
+	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64, held: btree.NewG(16, heldLess[E])}
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
@@ -249,7 +249,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		heap.Push(&p.held, &held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
 	}
 	p.raiseWatermark(satSub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
@@ -271,7 +271,7 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 		return nil // rejected the first time too; already counted
 	}
 	if p.opts.Mode == Settled && p.in.t >= p.wm {
-		heap.Push(&p.held, &held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
 	}
 	return nil
 }
@@ -421,13 +421,18 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		return
 	}
 	p.wm = w
-	for p.err == nil && p.held.Len() > 0 && p.held[0].in.t < p.wm {
+	for p.err == nil {
+		first, ok := p.held.Min()
+		if !ok || first.in.t >= p.wm {
+			break
+		}
 		// Apply every event of the earliest timestamp before emitting any
 		// of them, so each row covers all events at its time.
-		t := p.held[0].in.t
+		t := first.in.t
 		p.batch = p.batch[:0]
-		for p.held.Len() > 0 && p.held[0].in.t == t {
-			p.batch = append(p.batch, heap.Pop(&p.held).(*held[E]))
+		for h, ok := p.held.Min(); ok && h.in.t == t; h, ok = p.held.Min() {
+			p.batch = append(p.batch, h)
+			p.held.DeleteMin()
 		}
 		for _, h := range p.batch {
 			if p.apply(&h.in) != nil {
@@ -485,9 +490,10 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
 	}
-	for _, h := range p.held {
+	p.held.Ascend(func(h *held[E]) bool {
 		m.Resume = min(m.Resume, h.seq)
-	}
+		return true
+	})
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
@@ -523,12 +529,7 @@ func (p *Pipeline[E]) Close() error {
 // Store exposes the pipeline's store for maintenance and inspection.
 func (p *Pipeline[E]) Store() *state.Store { return p.store }
 
-// heldHeap orders held events canonically: by time, then by a hash of the
-// event's extracted inputs (an order-free tie-break: two events with equal
-// time and hash have identical inputs, so their order cannot change state),
-// then by sequence number so heap order is total.
-type heldHeap[E any] []*held[E]
-
+// held is an event waiting for the watermark in Settled mode.
 type held[E any] struct {
 	seq uint64
 	tie uint64
@@ -536,9 +537,11 @@ type held[E any] struct {
 	in  inputs
 }
 
-func (h heldHeap[E]) Len() int { return len(h) }
-func (h heldHeap[E]) Less(i, j int) bool {
-	a, b := h[i], h[j]
+// heldLess orders held events canonically: by time, then by a hash of the
+// event's extracted inputs (an order-free tie-break: two events with equal
+// time and hash have identical inputs, so their order cannot change
+// state), then by sequence number so the order is total.
+func heldLess[E any](a, b *held[E]) bool {
 	if a.in.t != b.in.t {
 		return a.in.t < b.in.t
 	}
@@ -546,15 +549,6 @@ func (h heldHeap[E]) Less(i, j int) bool {
 		return a.tie < b.tie
 	}
 	return a.seq < b.seq
-}
-func (h heldHeap[E]) Swap(i, j int) { h[i], h[j] = h[j], h[i] }
-func (h *heldHeap[E]) Push(x any)   { *h = append(*h, x.(*held[E])) }
-func (h *heldHeap[E]) Pop() any {
-	old := *h
-	x := old[len(old)-1]
-	old[len(old)-1] = nil
-	*h = old[:len(old)-1]
-	return x
 }
 
 func satAdd(a, b int64) int64 {
