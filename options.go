@@ -116,6 +116,10 @@ type Options struct {
 	// ErrDefinitionChanged. Default: none.
 	Reset []string
 
+	// MetricsClock times commits for Stats. It is read for metrics only,
+	// never for any decision about data. Default: SystemClock.
+	MetricsClock Clock
+
 	// IdleAdvance, in live mode, raises the watermark to clock − MaxDisorder
 	// − IdleAdvance once no event has arrived for IdleAdvance of clock
 	// time, so Settled rows are not held forever on a quiet source. Zero
@@ -130,6 +134,9 @@ func (o *Options) EnsureDefaults() {
 	}
 	if o.CommitEvery == 0 {
 		o.CommitEvery = 100_000
+	}
+	if o.MetricsClock == nil {
+		o.MetricsClock = SystemClock{}
 	}
 }
 

@@ -38,6 +38,8 @@ type Pipeline[E any] struct {
 	// moved on. Sorted.
 	futureRejected []uint64
 	lastCommitSeen uint64
+	// Commit latency by MetricsClock, for Stats only.
+	lastCommitNanos, commitNanos int64
 
 	c  counters
 	in inputs // scratch for the current event
@@ -486,6 +488,7 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	began := p.opts.MetricsClock.Now()
 	m := state.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
@@ -510,6 +513,8 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 		return err
 	}
 	p.lastCommitSeen = p.seen
+	p.lastCommitNanos = p.opts.MetricsClock.Now() - began
+	p.commitNanos += p.lastCommitNanos
 	return nil
 }
 

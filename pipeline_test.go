@@ -251,3 +251,31 @@ func TestDefinitionChangeNamesFeature(t *testing.T) {
 	require.Equal(t, []float64{2, 2, 2, 1}, got, "state survived the reopen")
 	require.NoError(t, p.Close())
 }
+
+// tickClock advances by step on every reading.
+type tickClock struct{ now, step int64 }
+
+func (c *tickClock) Now() int64 { c.now += c.step; return c.now }
+
+func TestStatsReportEverything(t *testing.T) {
+	p := openTest(t, loginSpec(nil), Options{MaxDisorder: time.Second, MetricsClock: &tickClock{step: int64(time.Millisecond)}, CommitEvery: -1})
+	for i := range 10 {
+		_, err := p.Score(login{T: t0 + int64(i)*int64(time.Second), Account: "a", Addr: "x"}, nil)
+		require.NoError(t, err)
+	}
+	_, err := p.Score(login{T: 0, Account: "a", Addr: "x"}, nil)
+	require.ErrorIs(t, err, ErrZeroTime)
+	require.NoError(t, p.Commit(nil))
+	s := p.Stats()
+	require.Equal(t, uint64(11), s.Events)
+	require.Equal(t, uint64(10), s.Applied)
+	require.Equal(t, uint64(10), s.Emitted)
+	require.Equal(t, uint64(1), s.Rejected[ZeroTime])
+	require.Equal(t, t0+9*int64(time.Second), s.Newest)
+	require.Equal(t, int64(time.Second), s.WatermarkLag)
+	require.Equal(t, int64(2), s.LiveEntities)
+	require.Equal(t, time.Millisecond, s.LastCommit)
+	require.Equal(t, uint64(1), s.Commits)
+	require.InDelta(t, 18.0/20, s.HitRate(), 1e-9) // 2 first sights, 18 hits
+	require.Positive(t, s.DiskBytes)
+}

@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math"
+	"time"
 
 	"github.com/tallyward/tallyward/internal/wire"
 	"github.com/tallyward/tallyward/state"
@@ -159,7 +160,17 @@ type Stats struct {
 	CacheHits    uint64
 	CacheMisses  uint64
 	Commits      uint64 // commits since Open
-	DiskBytes    uint64 // Pebble's estimate of the store's size
+	// LastCommit and CommitTime are the latency of the last commit and
+	// the total spent committing since Open (wall clock, metrics only).
+	LastCommit time.Duration
+	CommitTime time.Duration
+	DiskBytes  uint64 // Pebble's estimate of the store's size
+}
+
+// HitRate is the share of record lookups served by the cache (NaN before
+// any lookup).
+func (s Stats) HitRate() float64 {
+	return float64(s.CacheHits) / float64(s.CacheHits+s.CacheMisses)
 }
 
 // Stats returns the current counters. It costs a few dozen loads and one
@@ -170,6 +181,7 @@ func (p *Pipeline[E]) Stats() Stats {
 		LiveEntities: p.c.live, Expired: p.c.expired, Erased: p.c.erased, ErasedSkips: p.c.erasedSkips,
 		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, Seen: p.seen,
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
+		LastCommit: time.Duration(p.lastCommitNanos), CommitTime: time.Duration(p.commitNanos),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n
