@@ -7,6 +7,7 @@ import (
 	"strconv"
 	"strings"
 
+	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
 	"github.com/tallyward/tallyward/state"
 )
@@ -27,7 +28,7 @@ func ttlFor[E any](features []Feature[E], opts Options) int64 {
 		}
 		longest = max(longest, r)
 	}
-	return satAdd(longest, int64(opts.MaxDisorder))
+	return sat.Add(longest, int64(opts.MaxDisorder))
 }
 
 // Stored definition names:

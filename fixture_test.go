@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -60,22 +61,12 @@ func shuffleWithin(r *rand.Rand, evs []login, d time.Duration) []login {
 	for i, e := range evs {
 		ks[i] = keyed{e.T + r.Int64N(int64(d)+1), e}
 	}
-	slices.SortStableFunc(ks, func(a, b keyed) int { return cmpInt(a.k, b.k) })
+	slices.SortStableFunc(ks, func(a, b keyed) int { return cmp.Compare(a.k, b.k) })
 	out := make([]login, len(evs))
 	for i, k := range ks {
 		out[i] = k.e
 	}
 	return out
-}
-
-func cmpInt(a, b int64) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }
 
 // loginSpec is a small but representative definition: a count per address

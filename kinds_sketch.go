@@ -8,6 +8,7 @@ import (
 	"slices"
 	"time"
 
+	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
 	"github.com/tallyward/tallyward/sketch"
 )
@@ -207,7 +208,7 @@ func newLifetime(horizon int64, s summary) *lifetime {
 func (l *lifetime) add(t int64, v float64, h uint64) bool {
 	if !l.has || t > l.newest {
 		l.newest, l.has = t, true
-		cut := satSub(l.newest, l.horizon)
+		cut := sat.Sub(l.newest, l.horizon)
 		i := 0
 		for i < len(l.raw) && l.raw[i].t <= cut {
 			l.sum.fold(l.raw[i].v, l.raw[i].h)
@@ -215,7 +216,7 @@ func (l *lifetime) add(t int64, v float64, h uint64) bool {
 		}
 		l.raw = append(l.raw[:0], l.raw[i:]...)
 	}
-	if t <= satSub(l.newest, l.horizon) {
+	if t <= sat.Sub(l.newest, l.horizon) {
 		l.sum.fold(v, h)
 		return true
 	}

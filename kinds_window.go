@@ -6,6 +6,7 @@ import (
 	"math"
 	"time"
 
+	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/window"
 )
 
@@ -73,7 +74,7 @@ func (k Decayed) input() inputKind {
 }
 
 // reach: after 64 half-lives a weight is below 2^-64 of its start.
-func (k Decayed) reach() int64 { return satAdd(0, 64*int64(k.HalfLife)) }
+func (k Decayed) reach() int64 { return sat.Add(0, 64*int64(k.HalfLife)) }
 
 func (k Decayed) newAggregate(h int64) aggregate {
 	d := window.NewDecayed(k.spec(h))

@@ -4,6 +4,8 @@ import (
 	"context"
 	"sync"
 	"time"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // Live is the live driver: a thin, goroutine-safe shell around a Pipeline.
@@ -86,7 +88,7 @@ func (l *Live[E]) Tick() error {
 	if now-l.lastArr < idle {
 		return l.p.usable()
 	}
-	return l.p.Advance(satSub(now, int64(l.p.opts.MaxDisorder)+idle))
+	return l.p.Advance(sat.Sub(now, int64(l.p.opts.MaxDisorder)+idle))
 }
 
 // Run consumes ch until it is closed or ctx ends, ticking every tick of

@@ -6,6 +6,7 @@ import (
 	"slices"
 
 	"github.com/google/btree"
+	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/state"
 )
 
@@ -68,7 +69,7 @@ type entityState[E any] struct {
 // expiry clock w: it then counts as empty, whether or not a commit has
 // swept it yet, so expiry never depends on when commits happen.
 func (es *entityState[E]) expired(rec *record, w int64) bool {
-	return es.ttl > 0 && satAdd(rec.last, es.ttl) <= w
+	return es.ttl > 0 && sat.Add(rec.last, es.ttl) <= w
 }
 
 func (es *entityState[E]) fresh() []aggregate {
@@ -253,7 +254,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	} else {
 		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
 	}
-	p.raiseWatermark(satSub(p.maxT, int64(p.opts.MaxDisorder)))
+	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
 		if err := p.Commit(nil); err != nil {
 			return dst, err
@@ -293,7 +294,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 		return reject(ZeroTime, "")
 	}
 	skew := int64(p.opts.FutureSkew)
-	if (p.hasMax && t > satAdd(p.maxT, skew)) || (now != 0 && t > satAdd(now, skew)) {
+	if (p.hasMax && t > sat.Add(p.maxT, skew)) || (now != 0 && t > sat.Add(now, skew)) {
 		if seq >= p.reread {
 			p.futureRejected = append(p.futureRejected, seq)
 		}
@@ -457,7 +458,7 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	if !p.hasMax {
 		return math.MinInt64
 	}
-	return satSub(p.maxT, int64(p.opts.MaxDisorder))
+	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
 
 // Advance raises the watermark to w if w is higher, emitting the Settled
@@ -555,15 +556,3 @@ func heldLess[E any](a, b *held[E]) bool {
 	}
 	return a.seq < b.seq
 }
-
-func satAdd(a, b int64) int64 {
-	if b > 0 && a > math.MaxInt64-b {
-		return math.MaxInt64
-	}
-	if b < 0 && a < math.MinInt64-b {
-		return math.MinInt64
-	}
-	return a + b
-}
-
-func satSub(a, b int64) int64 { return satAdd(a, -b) }

@@ -6,6 +6,7 @@ import (
 	"strings"
 
 	"github.com/cockroachdb/pebble/v2"
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // Value is what a Table caches: a decoded record that can encode itself,
@@ -236,10 +237,10 @@ func (t *Table[V]) bucket(last int64) int64 {
 		return 0
 	}
 	g := max(t.ttl/16, 1)
-	exp := satAdd(last, t.ttl)
+	exp := sat.Add(last, t.ttl)
 	b := exp / g * g
 	if b < exp {
-		b = satAdd(b, g)
+		b = sat.Add(b, g)
 	}
 	if b == 0 {
 		b = g

@@ -11,6 +11,7 @@ import (
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/vfs"
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // More key tags (frozen numbers, see the package doc):
@@ -70,7 +71,7 @@ func (t *Table[V]) expireDirty(b *pebble.Batch, w int64) (int, error) {
 	}
 	n := 0
 	for _, sl := range t.dirty {
-		if !sl.dirty || satAdd(sl.Value.LastTime(), t.ttl) > w {
+		if !sl.dirty || sat.Add(sl.Value.LastTime(), t.ttl) > w {
 			continue
 		}
 		if sl.indexed != 0 {
@@ -105,7 +106,7 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 			byName[e.tableName()] = e
 		}
 	}
-	upper := expiryKey(nil, satAdd(w, 1), "", "")[:9]
+	upper := expiryKey(nil, sat.Add(w, 1), "", "")[:9]
 	if w == math.MaxInt64 {
 		upper = []byte{tagExpiry + 1}
 	}
@@ -171,7 +172,7 @@ func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity
 	if !found {
 		return false, nil
 	}
-	if satAdd(last, t.ttl) > w {
+	if sat.Add(last, t.ttl) > w {
 		// Updated since the entry was written: re-index it where it now
 		// belongs.
 		if sl != nil {
@@ -433,14 +434,4 @@ func CopySnapshot(srcFS vfs.FS, src string, dstFS vfs.FS, dst string) error {
 		return fmt.Errorf("state: copy snapshot: %q: %w", src, errors.New("no such directory"))
 	}
 	return nil
-}
-
-func satAdd(a, b int64) int64 {
-	if b > 0 && a > math.MaxInt64-b {
-		return math.MaxInt64
-	}
-	if b < 0 && a < math.MinInt64-b {
-		return math.MinInt64
-	}
-	return a + b
 }

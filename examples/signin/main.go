@@ -14,6 +14,7 @@
 package main
 
 import (
+	"cmp"
 	"context"
 	"flag"
 	"fmt"
@@ -93,7 +94,7 @@ func run(n int, seed uint64) error {
 	// History: the first five hours through the replay driver, without
 	// flushing, so the same pipeline can go on live.
 	switchAt := begin + int64(5*time.Hour)
-	split, _ := slices.BinarySearchFunc(events, switchAt, func(a attempt, t int64) int { return int(a.At - t) })
+	split, _ := slices.BinarySearchFunc(events, switchAt, func(a attempt, t int64) int { return cmp.Compare(a.At, t) })
 	start := time.Now()
 	if err := p.Feed(context.Background(), source(events[:split])); err != nil {
 		return err
@@ -135,10 +136,10 @@ func run(n int, seed uint64) error {
 		all = append(all, p)
 	}
 	slices.SortFunc(all, func(a, b peak) int {
-		if a.vals[0] != b.vals[0] {
-			return int(b.vals[0] - a.vals[0])
+		if c := cmp.Compare(b.vals[0], a.vals[0]); c != 0 {
+			return c
 		}
-		return cmp(a.addr, b.addr)
+		return cmp.Compare(a.addr, b.addr)
 	})
 	fmt.Println("addresses with the most failed sign-ins in any 10 minutes, at that moment (demo threshold: 50)")
 	fmt.Printf("%-14s %-20s %10s %11s %11s %10s\n", "address", "at (UTC)", "failed_10m", "attempts_1h", "accounts_1h", "fail_burst")
@@ -167,16 +168,6 @@ type followClock struct{ now atomic.Int64 }
 
 func (c *followClock) set(t int64) { c.now.Store(t) }
 func (c *followClock) Now() int64  { return c.now.Load() }
-
-func cmp(a, b string) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
-}
 
 func source(evs []attempt) tallyward.Source[attempt] {
 	return func(yield func(attempt, error) bool) {
@@ -218,6 +209,6 @@ func generate(n int, seed uint64) []attempt {
 			OK:      r.IntN(200) == 0,
 		})
 	}
-	slices.SortFunc(evs, func(a, b attempt) int { return int(a.At - b.At) })
+	slices.SortFunc(evs, func(a, b attempt) int { return cmp.Compare(a.At, b.At) })
 	return evs
 }

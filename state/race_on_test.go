@@ -1,0 +1,7 @@
+//go:build race
+
+package state
+
+// raceEnabled makes the longest randomized tests run fewer seeds under the
+// race detector, which slows Pebble about fifteenfold.
+const raceEnabled = true
