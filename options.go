@@ -92,7 +92,7 @@ type Options struct {
 	FS vfs.FS
 
 	// CacheBytes bounds the approximate memory of decoded entity records.
-	// Default: 64 MiB.
+	// Default: 256 MiB.
 	CacheBytes int64
 
 	// CommitEvery commits automatically after this many source events.

@@ -41,7 +41,7 @@ var (
 )
 
 // Options configures a Store. The zero value is valid: an in-memory store
-// with a 64 MiB record cache.
+// with a 256 MiB record cache.
 type Options struct {
 	// Dir is the directory of the Pebble database. Empty means an in-memory
 	// filesystem that vanishes on Close. Default: "".
@@ -53,7 +53,7 @@ type Options struct {
 	FS vfs.FS
 
 	// CacheBytes bounds the approximate memory of decoded records held by
-	// all caches of the store together. Default: 64 MiB.
+	// all caches of the store together. Default: 256 MiB.
 	CacheBytes int64
 
 	// BlockCacheBytes is Pebble's block cache size. Default: 32 MiB.
@@ -68,7 +68,7 @@ type Options struct {
 // EnsureDefaults fills zero fields with their defaults.
 func (o *Options) EnsureDefaults() {
 	if o.CacheBytes == 0 {
-		o.CacheBytes = 64 << 20
+		o.CacheBytes = 256 << 20
 	}
 	if o.BlockCacheBytes == 0 {
 		o.BlockCacheBytes = 32 << 20
