@@ -263,6 +263,11 @@ func (c modelRun) run() (st modelStats, err error) {
 }
 
 func TestCacheMatchesModel(t *testing.T) {
+	t.Parallel()
+	seeds, ops, reopenP := uint64(3), 12_000, 0.002
+	if raceEnabled {
+		seeds, ops, reopenP = 1, 10_000, 0.001
+	}
 	for _, c := range []struct {
 		name       string
 		cacheBytes int64
@@ -274,13 +279,10 @@ func TestCacheMatchesModel(t *testing.T) {
 		// misses for long stretches before the first eviction.
 		{"roomy", 60_000},
 	} {
-		seeds := uint64(3)
-		if raceEnabled {
-			seeds = 1
-		}
 		for seed := uint64(1); seed <= seeds; seed++ {
 			t.Run(fmt.Sprintf("%s/seed=%d", c.name, seed), func(t *testing.T) {
-				st, err := modelRun{seed: seed, ops: 12_000, keys: 300, cacheBytes: c.cacheBytes, reopenP: 0.002}.run()
+				t.Parallel()
+				st, err := modelRun{seed: seed, ops: ops, keys: 300, cacheBytes: c.cacheBytes, reopenP: reopenP}.run()
 				if err != nil {
 					t.Fatal(err)
 				}

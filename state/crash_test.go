@@ -85,12 +85,13 @@ func (f *walCrashFile) SyncData() error {
 // the last commit that returned, or, for an image taken inside a commit,
 // possibly those of that commit, never a mixture.
 func TestCrashExposesWholeCommits(t *testing.T) {
-	seeds := uint64(4)
+	t.Parallel()
+	seeds, steps := uint64(4), 60
 	if raceEnabled {
-		seeds = 2
+		seeds, steps = 1, 20
 	}
 	for seed := uint64(1); seed <= seeds; seed++ {
-		t.Run(fmt.Sprintf("seed=%d", seed), func(t *testing.T) { crashRun(t, seed) })
+		t.Run(fmt.Sprintf("seed=%d", seed), func(t *testing.T) { crashRun(t, seed, steps) })
 	}
 }
 
@@ -99,7 +100,7 @@ type cut struct {
 	recs map[string]rec
 }
 
-func crashRun(t *testing.T, seed uint64) {
+func crashRun(t *testing.T, seed uint64, steps int) {
 	r := rand.New(rand.NewPCG(seed, 0xc4a5))
 	mem := vfs.NewCrashableMem()
 	fs := &walCrashFS{FS: mem, mem: mem, armed: -1}
@@ -139,7 +140,7 @@ func crashRun(t *testing.T, seed uint64) {
 		t.Fatalf("image mark %+v is none of the allowed cuts", got.mark)
 	}
 
-	for step := 1; step <= 60; step++ {
+	for step := 1; step <= steps; step++ {
 		// A burst of changes, large enough that a commit spans several
 		// WAL writes.
 		for range 20 + r.IntN(200) {

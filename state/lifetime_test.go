@@ -58,6 +58,7 @@ func checkIndex(t *testing.T, db *pebble.DB, table string, ttl int64) {
 // A record with last+ttl > w is never removed. After every commit the
 // committed records equal the model and the index is exact.
 func TestExpiryMatchesModel(t *testing.T) {
+	t.Parallel()
 	for _, peek := range []bool{false, true} {
 		t.Run(fmt.Sprintf("peek=%v", peek), func(t *testing.T) {
 			const ttl = 1600
@@ -73,10 +74,14 @@ func TestExpiryMatchesModel(t *testing.T) {
 				return tb
 			}
 			tb := open()
+			steps := 150
+			if raceEnabled {
+				steps = 80
+			}
 			model := map[string]rec{}
 			clock := int64(0)
 			removedTotal := 0
-			for step := range 150 {
+			for step := range steps {
 				for range 40 {
 					k := fmt.Sprintf("u%03d", r.IntN(300))
 					clock += r.Int64N(8)
@@ -239,6 +244,9 @@ func TestRebuildExpiryAfterTTLChange(t *testing.T) {
 // TestSweepLimit: one sweep examines at most SweepLimit index entries;
 // the next picks up the rest.
 func TestSweepLimit(t *testing.T) {
+	if raceEnabled || testing.Short() {
+		t.Skip("writes and sweeps more than 100k entries: run without -race and -short")
+	}
 	extra := 37
 	fs := vfs.NewMem()
 	s := mustOpen(t, Options{FS: fs})
