@@ -105,7 +105,9 @@ func (t *Table[V]) load(key string) (v V, found bool, err error) {
 func (t *Table[V]) Name() string { return t.name }
 
 // Get returns the slot of key, loading it from the store on a miss. It
-// returns nil, nil when the key is stored nowhere.
+// returns nil, nil when the key is stored nowhere. A hit is served from
+// memory even after the store failed; the failure surfaces at the next
+// miss, Commit or Sweep.
 func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if sl := t.m[key]; sl != nil {
 		t.hits++
@@ -138,8 +140,10 @@ func (t *Table[V]) Insert(key string, v V) *Slot[V] {
 	return sl
 }
 
-// Touch marks sl dirty, re-measures it and evicts least recently used
-// entries (never sl) while the store is over its byte budget.
+// Touch marks sl dirty, re-measures it and evicts entries (never sl, by
+// CLOCK) while the store is over its byte budget. sl must be a slot this
+// table returned and has not since evicted or deleted: slots are only
+// valid until the next call that can evict.
 func (t *Table[V]) Touch(sl *Slot[V]) {
 	if !sl.dirty {
 		sl.dirty = true

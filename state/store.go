@@ -357,6 +357,12 @@ func (s *Store) Commit(m Mark) (err error) {
 // staged for the next Commit (call Sweep just before it, so that a record
 // both expired and dirty is dropped rather than written). It returns the
 // number of records removed.
+//
+// Stored records are found through the expiry index, whose entries sit at
+// the expiry time rounded up to a multiple of ttl/16: a stored record is
+// removed less than ttl/16 after it expires. Dirty cached records are
+// removed exactly. Callers that must not see an expired record before the
+// sweep (the pipeline does) check LastTime themselves.
 func (s *Store) Sweep(w int64) (_ int, err error) {
 	defer s.guard(&err)
 	if err := s.check(); err != nil {
