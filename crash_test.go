@@ -24,7 +24,9 @@ import (
 // held events and the resume point below Seen are exercised, with a cache
 // small enough to evict dirty records between commits.
 func crashOpts() Options {
-	return Options{Mode: Settled, MaxDisorder: 3 * time.Second, CommitEvery: -1, CacheBytes: 256 << 10}
+	// A low ingest threshold sends most commits down the ingested-table
+	// path, the rest (fewer writes) down the batch path.
+	return Options{Mode: Settled, MaxDisorder: 3 * time.Second, CommitEvery: -1, CacheBytes: 256 << 10, IngestThreshold: 600}
 }
 
 const crashCommitEvery = 1000
@@ -200,6 +202,9 @@ func TestKillChild(t *testing.T) {
 	opts.Dir = filepath.Join(dir, "db")
 	if spec := os.Getenv("TALLYWARD_FAULT"); spec != "" {
 		opts.FS = errorfs.Wrap(vfs.Default, parseFault(t, spec))
+	}
+	if v := os.Getenv("TALLYWARD_INGEST"); v != "" {
+		opts.IngestThreshold, _ = strconv.Atoi(v)
 	}
 	p, err := Open(richSpec(emit), opts)
 	reportIfFailed(err)

@@ -20,10 +20,16 @@ var faultPoints = map[string]struct {
 	kinds  []errorfs.OpKind
 	suffix string
 }{
-	"wal-write":  {[]errorfs.OpKind{errorfs.OpFileWrite, errorfs.OpFileWriteAt}, ".log"},
-	"wal-sync":   {[]errorfs.OpKind{errorfs.OpFileSync, errorfs.OpFileSyncData, errorfs.OpFileSyncTo}, ".log"},
-	"table-read": {[]errorfs.OpKind{errorfs.OpFileReadAt, errorfs.OpFileRead}, ".sst"},
+	"wal-write":   {[]errorfs.OpKind{errorfs.OpFileWrite, errorfs.OpFileWriteAt}, ".log"},
+	"wal-sync":    {[]errorfs.OpKind{errorfs.OpFileSync, errorfs.OpFileSyncData, errorfs.OpFileSyncTo}, ".log"},
+	"table-read":  {[]errorfs.OpKind{errorfs.OpFileReadAt, errorfs.OpFileRead}, ".sst"},
+	"table-write": {[]errorfs.OpKind{errorfs.OpFileWrite, errorfs.OpFileWriteAt}, ".sst"},
+	"table-sync":  {[]errorfs.OpKind{errorfs.OpFileSync, errorfs.OpFileSyncData, errorfs.OpFileSyncTo}, ".sst"},
 }
+
+// faultIngest is the ingest threshold each point runs with: the log is
+// only written by batch commits, tables mostly by ingested commits.
+var faultIngest = map[string]string{"wal-write": "-1", "wal-sync": "-1", "table-read": "600", "table-write": "600", "table-sync": "600"}
 
 // faultAt fails the n-th filesystem operation matching its point.
 type faultAt struct {
@@ -58,7 +64,9 @@ func parseFault(t *testing.T, spec string) errorfs.Injector {
 	return f
 }
 
-// Faults from the filesystem at write, sync and read points, injected with
+// Faults from the filesystem at log write and sync points (batch commits),
+// table write and sync points (ingested commits, flushes, compactions) and
+// table read points, injected with
 // Pebble's error-injecting filesystem into a child process working on
 // disk. Every fault that fires is reported: as an error returned to the
 // caller naming the injected fault (the child prints it and exits 3), or,
@@ -74,12 +82,12 @@ func TestInjectedFaultsAreReportedAndResumeExactly(t *testing.T) {
 	wantRows, wantRecords, _ := reference(t, evs)
 	r := rand.New(rand.NewPCG(23, 23))
 	reported := map[string]int{}
-	for _, name := range []string{"wal-write", "wal-sync", "table-read"} {
-		for trial := range 4 {
+	for _, name := range []string{"wal-write", "wal-sync", "table-read", "table-write", "table-sync"} {
+		for trial := range 3 {
 			dir := t.TempDir()
 			// The n-th matching operation after open fails.
-			n := 5 + r.IntN(map[string]int{"wal-write": 60, "wal-sync": 20, "table-read": 400}[name])
-			out, ee := runChild(t, dir, "TALLYWARD_KILL_AT=-1", fmt.Sprintf("TALLYWARD_FAULT=%s:%d", name, n))
+			n := 5 + r.IntN(map[string]int{"wal-write": 60, "wal-sync": 20, "table-read": 400, "table-write": 40, "table-sync": 15}[name])
+			out, ee := runChild(t, dir, "TALLYWARD_KILL_AT=-1", fmt.Sprintf("TALLYWARD_FAULT=%s:%d", name, n), "TALLYWARD_INGEST="+faultIngest[name])
 			if ee == nil {
 				t.Logf("%s trial %d: operation %d never happened", name, trial, n)
 			} else {
@@ -97,7 +105,7 @@ func TestInjectedFaultsAreReportedAndResumeExactly(t *testing.T) {
 				if _, err := os.Stat(filepath.Join(dir, "done")); err == nil {
 					break
 				}
-				out, ee := runChild(t, dir, "TALLYWARD_KILL_AT=-1")
+				out, ee := runChild(t, dir, "TALLYWARD_KILL_AT=-1", "TALLYWARD_INGEST="+faultIngest[name])
 				require.Nil(t, ee, "restart failed: %s", out)
 			}
 			p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})

@@ -95,6 +95,12 @@ type Options struct {
 	// Default: 256 MiB.
 	CacheBytes int64
 
+	// IngestThreshold: a commit of at least this many writes goes to
+	// Pebble as one ingested table rather than a batch (cheaper for large
+	// commits; see package state). Negative: always a batch.
+	// Default: state.DefaultIngestThreshold.
+	IngestThreshold int
+
 	// CommitEvery commits automatically after this many source events.
 	// Negative disables automatic commits. Default: 100000.
 	CommitEvery int

@@ -111,7 +111,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	store, err := state.Open(state.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes})
+	store, err := state.Open(state.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold})
 	if err != nil {
 		return nil, err
 	}

@@ -2,10 +2,7 @@ package state
 
 import (
 	"fmt"
-	"slices"
-	"strings"
 
-	"github.com/cockroachdb/pebble/v2"
 	"github.com/tallyward/tallyward/internal/sat"
 )
 
@@ -206,7 +203,7 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 
 // stage writes sl's record, and moves its expiry index entry if its
 // bucket changed, into b.
-func (t *Table[V]) stage(b *pebble.Batch, sl *Slot[V]) error {
+func (t *Table[V]) stage(b writer, sl *Slot[V]) error {
 	var err error
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, sl.Key)
 	t.valbuf, err = sl.Value.AppendBinary(t.valbuf[:0])
@@ -252,11 +249,7 @@ func (t *Table[V]) bucket(last int64) int64 {
 	return b
 }
 
-func (t *Table[V]) flushDirty(b *pebble.Batch) error {
-	// In key order, Pebble's memtable inserts walk nearby skiplist nodes,
-	// which are then in the CPU cache: several times cheaper than random
-	// order for a large commit.
-	slices.SortFunc(t.dirty, func(a, b *Slot[V]) int { return strings.Compare(a.Key, b.Key) })
+func (t *Table[V]) flushDirty(b writer) error {
 	for _, sl := range t.dirty {
 		if !sl.dirty {
 			continue
@@ -297,6 +290,8 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	}
 	return true, nil
 }
+
+func (t *Table[V]) dirtyCount() int { return len(t.dirty) }
 
 // Len returns the number of cached entries.
 func (t *Table[V]) Len() int { return len(t.m) }
