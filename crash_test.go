@@ -74,7 +74,11 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 	wantRows, wantRecords, wantStats := reference(t, evs)
 
 	r := rand.New(rand.NewPCG(5, 5))
-	for trial := range 6 {
+	trials := 6
+	if testing.Short() {
+		trials = 2 // the race-detector run in CI; the full run keeps 6
+	}
+	for trial := range trials {
 		fs := vfs.NewCrashableMem()
 		opts := crashOpts()
 		opts.FS, opts.Dir = fs, "db"
