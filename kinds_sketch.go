@@ -31,7 +31,11 @@ func (k Distinct) spec(h int64) sketch.DistinctSpec {
 	if res == 0 {
 		res = k.Window / 60
 	}
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(res), Horizon: h, Precision: k.Precision}
+	p := k.Precision
+	if p == 0 {
+		p = 12 // the sketch package's default, spelled out so Describe is canonical
+	}
+	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(res), Horizon: h, Precision: p}
 }
 
 // Describe implements Kind.
@@ -113,11 +117,17 @@ type TopShare struct {
 	Capacity int
 }
 
-func (k TopShare) params() sketch.TopKParams { return sketch.TopKParams{Capacity: k.Capacity} }
+func (k TopShare) params() sketch.TopKParams {
+	c := k.Capacity
+	if c == 0 {
+		c = 32 // the sketch package's default, spelled out so Describe is canonical
+	}
+	return sketch.TopKParams{Capacity: c}
+}
 
 // Describe implements Kind.
 func (k TopShare) Describe() string {
-	return fmt.Sprintf("top-share capacity=%d", max(k.Capacity, 0))
+	return fmt.Sprintf("top-share capacity=%d", k.params().Capacity)
 }
 
 // Validate implements Kind.
@@ -143,12 +153,12 @@ type Quantile struct {
 }
 
 func (k Quantile) params() sketch.QuantileParams {
-	return sketch.QuantileParams{RelativeAccuracy: k.RelativeAccuracy}
+	return sketch.QuantileParams{RelativeAccuracy: orDefault(k.RelativeAccuracy, 0.01)}
 }
 
 // Describe implements Kind.
 func (k Quantile) Describe() string {
-	return fmt.Sprintf("quantile q=%g alpha=%g", k.Q, orDefault(k.RelativeAccuracy, 0.01))
+	return fmt.Sprintf("quantile q=%g alpha=%g", k.Q, k.params().RelativeAccuracy)
 }
 
 // Validate implements Kind.

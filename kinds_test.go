@@ -210,3 +210,20 @@ func bruteForce(evs []login, e login, win, res, half time.Duration) map[string]f
 	out["p90"] = all[int(0.9*float64(len(all)-1))]
 	return out
 }
+
+// A default spelled out is the same definition as the default left zero:
+// reopening with either must not count as a change.
+func TestDescribeIsCanonical(t *testing.T) {
+	pairs := [][2]Kind{
+		{SlidingCount{Window: time.Hour}, SlidingCount{Window: time.Hour, Resolution: time.Minute}},
+		{Distinct{Window: time.Hour}, Distinct{Window: time.Hour, Resolution: time.Minute, Precision: 12}},
+		{TopShare{}, TopShare{Capacity: 32}},
+		{Quantile{Q: 0.5}, Quantile{Q: 0.5, RelativeAccuracy: 0.01}},
+		{Frequency{}, Frequency{Epsilon: 0.01, Delta: 0.01}},
+		{Velocity{Short: time.Minute, Long: time.Hour}, Velocity{Short: time.Minute, Long: time.Hour, Resolution: 6 * time.Second, Smoothing: 1}},
+		{Recency{Stat: SessionEvents}, Recency{Stat: SessionEvents, Gap: 30 * time.Minute}},
+	}
+	for _, p := range pairs {
+		require.Equal(t, p[0].Describe(), p[1].Describe())
+	}
+}

@@ -107,7 +107,11 @@ func (k Velocity) spec(h int64) window.VelocitySpec {
 	if res == 0 {
 		res = k.Short / 10
 	}
-	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(res), Horizon: h, Smoothing: k.Smoothing}
+	alpha := k.Smoothing
+	if alpha == 0 {
+		alpha = 1 // the window package's default, spelled out so Describe is canonical
+	}
+	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(res), Horizon: h, Smoothing: alpha}
 }
 
 // Describe implements Kind.
