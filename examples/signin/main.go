@@ -19,6 +19,7 @@ import (
 	"flag"
 	"fmt"
 	"log"
+	"math"
 	"math/rand/v2"
 	"os"
 	"slices"
@@ -158,7 +159,11 @@ func run(n int, seed uint64) error {
 		return err
 	}
 	defer p.Close()
-	fmt.Printf("\nreopened: resume at event %d, watermark %d, %d events counted before\n", p.Resume(), p.Watermark(), p.Stats().Events)
+	wm := "+inf (the replay was flushed at its end)"
+	if p.Watermark() != math.MaxInt64 {
+		wm = time.Unix(0, p.Watermark()).UTC().String()
+	}
+	fmt.Printf("\nreopened: resume at event %d, watermark %s, %d events counted before\n", p.Resume(), wm, p.Stats().Events)
 	return nil
 }
 
