@@ -23,11 +23,7 @@ type Sliding struct {
 }
 
 func (k Sliding) spec(horizon int64) window.SlidingSpec {
-	res := k.Resolution
-	if res == 0 {
-		res = k.Window / 60
-	}
-	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(res), Horizon: horizon}
+	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)), Horizon: horizon}
 }
 
 func (k Sliding) describe(name string) string {

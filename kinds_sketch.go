@@ -27,15 +27,8 @@ type Distinct struct {
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
-	res := k.Resolution
-	if res == 0 {
-		res = k.Window / 60
-	}
-	p := k.Precision
-	if p == 0 {
-		p = 12 // the sketch package's default, spelled out so Describe is canonical
-	}
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(res), Horizon: h, Precision: p}
+	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)),
+		Horizon: h, Precision: orDefault(k.Precision, 12)} // 12: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -83,8 +76,12 @@ func (k Frequency) params() sketch.CountMinParams {
 	return sketch.CountMinParams{Epsilon: orDefault(k.Epsilon, 0.01), Delta: orDefault(k.Delta, 0.01)}
 }
 
-func orDefault(v, def float64) float64 {
-	if v == 0 {
+// orDefault is v, or def when v is the zero value. Kinds spell their
+// defaults out through it, so that Describe is the same whether a default
+// is left zero or written explicitly.
+func orDefault[T comparable](v, def T) T {
+	var zero T
+	if v == zero {
 		return def
 	}
 	return v
@@ -118,11 +115,7 @@ type TopShare struct {
 }
 
 func (k TopShare) params() sketch.TopKParams {
-	c := k.Capacity
-	if c == 0 {
-		c = 32 // the sketch package's default, spelled out so Describe is canonical
-	}
-	return sketch.TopKParams{Capacity: c}
+	return sketch.TopKParams{Capacity: orDefault(k.Capacity, 32)} // 32: the sketch package's default
 }
 
 // Describe implements Kind.

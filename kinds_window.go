@@ -103,15 +103,8 @@ type Velocity struct {
 }
 
 func (k Velocity) spec(h int64) window.VelocitySpec {
-	res := k.Resolution
-	if res == 0 {
-		res = k.Short / 10
-	}
-	alpha := k.Smoothing
-	if alpha == 0 {
-		alpha = 1 // the window package's default, spelled out so Describe is canonical
-	}
-	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(res), Horizon: h, Smoothing: alpha}
+	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(orDefault(k.Resolution, k.Short/10)),
+		Horizon: h, Smoothing: orDefault(k.Smoothing, 1)} // 1: the window package's default
 }
 
 // Describe implements Kind.
@@ -171,11 +164,7 @@ type Recency struct {
 }
 
 func (k Recency) spec(h int64) window.RecencySpec {
-	gap := k.Gap
-	if gap == 0 {
-		gap = 30 * time.Minute
-	}
-	return window.RecencySpec{Gap: int64(gap), Horizon: h}
+	return window.RecencySpec{Gap: int64(orDefault(k.Gap, 30*time.Minute)), Horizon: h}
 }
 
 // Describe implements Kind.
