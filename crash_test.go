@@ -50,7 +50,7 @@ func reference(t *testing.T, evs []login) (map[uint64]string, []string, Stats) {
 	rows := newRowLog()
 	p := openTest(t, richSpec(rows.add), crashOpts())
 	require.NoError(t, p.Replay(context.Background(), slice(evs)))
-	return rows.rows, dumpRecords(t, p.Store().DB()), p.Stats()
+	return rows.rows, dumpRecords(t, p.store.DB()), p.Stats()
 }
 
 // mergeRows adds rows to all, failing on a re-emitted row that differs.
@@ -87,7 +87,7 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 			rows := newRowLog()
 			p, err := Open(richSpec(rows.add), opts)
 			require.NoError(t, err)
-			start := p.Resume()
+			start := p.ResumeSeq()
 			stop := uint64(len(evs))
 			if crashes < 3 {
 				stop = start + uint64(r.IntN(len(evs)-int(start)+1))
@@ -104,7 +104,7 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 				require.NoError(t, p.Flush())
 				require.NoError(t, p.Commit(nil))
 				mergeRows(t, all, rows.rows)
-				require.Equal(t, wantRecords, dumpRecords(t, p.Store().DB()), "trial %d", trial)
+				require.Equal(t, wantRecords, dumpRecords(t, p.store.DB()), "trial %d", trial)
 				got := p.Stats()
 				require.Equal(t, wantStats.Applied, got.Applied)
 				require.Equal(t, wantStats.Events, got.Events)
@@ -158,7 +158,7 @@ func TestKillAndRestartProcess(t *testing.T) {
 		}
 		p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
 		require.NoError(t, err)
-		require.Equal(t, wantRecords, dumpRecords(t, p.Store().DB()), "round %d", round)
+		require.Equal(t, wantRecords, dumpRecords(t, p.store.DB()), "round %d", round)
 		require.NoError(t, p.Close())
 		require.Equal(t, wantRows, readRows(t, filepath.Join(dir, "rows")), "round %d", round)
 	}
@@ -212,7 +212,7 @@ func TestKillChild(t *testing.T) {
 	}
 	p, err := Open(richSpec(emit), opts)
 	reportIfFailed(err)
-	for i := p.Resume(); i < uint64(len(evs)); i++ {
+	for i := p.ResumeSeq(); i < uint64(len(evs)); i++ {
 		if int(i) == killAt {
 			syscall.Kill(os.Getpid(), syscall.SIGKILL)
 			select {} // the signal is on its way
@@ -227,7 +227,7 @@ func TestKillChild(t *testing.T) {
 			if strings.HasPrefix(os.Getenv("TALLYWARD_FAULT"), "table-read") {
 				// Move committed records into tables so that lookups
 				// of evicted records read them.
-				reportIfFailed(p.Store().DB().Flush())
+				reportIfFailed(p.store.DB().Flush())
 			}
 		}
 	}

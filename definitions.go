@@ -8,8 +8,8 @@ import (
 	"strings"
 
 	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/store"
 	"github.com/tallyward/tallyward/internal/wire"
-	"github.com/tallyward/tallyward/state"
 )
 
 // ttlFor is the default or configured expiry of an entity's records.
@@ -51,7 +51,7 @@ func (p *Pipeline[E]) definitions() map[string]string {
 }
 
 // checkDefinitions compares the stored definitions with the spec. Every
-// difference in a feature must be listed in Options.Reset; listed ones are
+// difference in a feature must be listed in Options.ResetFeatures; listed ones are
 // reset by rewriting the entity's records. A changed TTL only rebuilds the
 // expiry index.
 func (p *Pipeline[E]) checkDefinitions() error {
@@ -64,7 +64,7 @@ func (p *Pipeline[E]) checkDefinitions() error {
 		return p.writeDefinitions(stored, want)
 	}
 	reset := map[string]bool{}
-	for _, n := range p.opts.Reset {
+	for _, n := range p.opts.ResetFeatures {
 		reset[n] = true
 	}
 	var errs []error
@@ -72,7 +72,7 @@ func (p *Pipeline[E]) checkDefinitions() error {
 	note := func(ent, feat, what string) {
 		name := ent + "." + feat
 		if !reset[name] {
-			errs = append(errs, fmt.Errorf("%w: feature %s %s; list it in Options.Reset to discard its state (a backfill is then needed)", ErrDefinitionChanged, name, what))
+			errs = append(errs, fmt.Errorf("%w: feature %s %s; list it in Options.ResetFeatures to discard its state (a backfill is then needed)", ErrDefinitionChanged, name, what))
 			return
 		}
 		if changed[ent] == nil {
@@ -244,12 +244,12 @@ func (r rawAgg) AppendBinary(dst []byte) ([]byte, error) { return append(dst, r.
 func (r rawAgg) UnmarshalBinary([]byte) error            { return errors.New("raw") }
 func (r rawAgg) SizeBytes() int                          { return len(r) }
 
-func newDropTable[E any](p *Pipeline[E], ent string) *state.Table[*record] {
-	return state.NewTable(p.store, ent, 0, func([]byte) (*record, error) {
+func newDropTable[E any](p *Pipeline[E], ent string) *store.Table[*record] {
+	return store.NewTable(p.store, ent, 0, func([]byte) (*record, error) {
 		return nil, errors.New("entity no longer defined")
 	})
 }
 
 // Notices returns what Open did beyond the usual: features reset by
-// Options.Reset, each needing a backfill.
+// Options.ResetFeatures, each needing a backfill.
 func (p *Pipeline[E]) Notices() []string { return slices.Clone(p.notices) }

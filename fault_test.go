@@ -110,7 +110,7 @@ func TestInjectedFaultsAreReportedAndResumeExactly(t *testing.T) {
 			}
 			p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
 			require.NoError(t, err)
-			require.Equal(t, wantRecords, dumpRecords(t, p.Store().DB()), "%s trial %d", name, trial)
+			require.Equal(t, wantRecords, dumpRecords(t, p.store.DB()), "%s trial %d", name, trial)
 			require.NoError(t, p.Close())
 			require.Equal(t, wantRows, readRows(t, filepath.Join(dir, "rows")), "%s trial %d", name, trial)
 		}

@@ -6,7 +6,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/tallyward/tallyward/state"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 // richRecord builds a record of every kind of richSpec's account entity
@@ -79,7 +79,7 @@ func FuzzProgressDecode(f *testing.F) {
 	f.Fuzz(func(t *testing.T, b []byte) {
 		var out progress
 		if err := out.decode(b); err != nil {
-			if !errors.Is(err, state.ErrCorrupt) {
+			if !errors.Is(err, store.ErrCorrupt) {
 				t.Fatalf("error does not wrap ErrCorrupt: %v", err)
 			}
 			return
@@ -92,14 +92,14 @@ func FuzzProgressDecode(f *testing.F) {
 }
 
 func FuzzMarkDecode(f *testing.F) {
-	m := state.Mark{Seen: 10, Resume: 7, Watermark: t0, Cursor: []byte("offset-42"), Extra: []byte{1, 2}}
+	m := store.Mark{Seen: 10, Resume: 7, Watermark: t0, Cursor: []byte("offset-42"), Extra: []byte{1, 2}}
 	good, _ := m.AppendBinary(nil)
 	f.Add(good)
 	f.Add(good[:5])
 	f.Fuzz(func(t *testing.T, b []byte) {
-		var out state.Mark
+		var out store.Mark
 		if err := out.UnmarshalBinary(b); err != nil {
-			if !errors.Is(err, state.ErrCorrupt) {
+			if !errors.Is(err, store.ErrCorrupt) {
 				t.Fatalf("error does not wrap ErrCorrupt: %v", err)
 			}
 			if out.Seen != 0 || out.Cursor != nil {

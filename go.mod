@@ -6,6 +6,7 @@ require (
 	github.com/axiomhq/hyperloglog v0.3.0
 	github.com/cespare/xxhash/v2 v2.2.0
 	github.com/cockroachdb/pebble/v2 v2.1.7
+	github.com/google/btree v1.1.3
 	github.com/stretchr/testify v1.12.1
 	gonum.org/v1/gonum v0.17.0
 )
@@ -26,7 +27,6 @@ require (
 	github.com/gogo/protobuf v1.3.2 // indirect
 	github.com/golang/protobuf v1.5.3 // indirect
 	github.com/golang/snappy v0.0.5-0.20231225225746-43d5d4cd4e0e // indirect
-	github.com/google/btree v1.1.3 // indirect
 	github.com/kamstrup/intmap v0.5.2 // indirect
 	github.com/klauspost/compress v1.17.11 // indirect
 	github.com/kr/pretty v0.3.1 // indirect

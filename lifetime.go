@@ -4,8 +4,7 @@ import (
 	"errors"
 	"fmt"
 
-	"github.com/cockroachdb/pebble/v2/vfs"
-	"github.com/tallyward/tallyward/state"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 // ErrUnknownEntity is returned for an entity name the Spec does not define.
@@ -28,7 +27,7 @@ func (p *Pipeline[E]) entity(name string) (int, *entityState[E], error) {
 // The erasure is remembered by a tombstone holding only a salted hash of
 // the key: later events naming the key, including a replay of older
 // history, do not recreate it (they are counted in Stats.ErasedSkips and
-// read NaN) until Readmit. After a compaction no byte sequence of the key
+// read NaN) until LiftErasure. After a compaction no byte sequence of the key
 // remains in the store.
 func (p *Pipeline[E]) Erase(entity, key string) error {
 	if err := p.usable(); err != nil {
@@ -66,9 +65,9 @@ func (p *Pipeline[E]) Erase(entity, key string) error {
 	return p.Commit(nil)
 }
 
-// Readmit lifts the tombstone Erase left for (entity, key): later events
+// LiftErasure lifts the tombstone Erase left for (entity, key): later events
 // build its state afresh. It commits.
-func (p *Pipeline[E]) Readmit(entity, key string) error {
+func (p *Pipeline[E]) LiftErasure(entity, key string) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
@@ -86,7 +85,7 @@ func (p *Pipeline[E]) Readmit(entity, key string) error {
 // (records, definitions, source position and watermark) to dir, which must
 // not exist, on the pipeline's filesystem. Opening a pipeline with
 // Options{Dir: dir} (or on a copy made by CopySnapshot) resumes exactly
-// where this one was at the snapshot: feed it from its Resume().
+// where this one was at the snapshot: feed it from its ResumeSeq().
 //
 // Settled events held at the snapshot are re-read from the source by the
 // opened copy (Resume is at or below the oldest of them).
@@ -97,8 +96,10 @@ func (p *Pipeline[E]) Snapshot(dir string) error {
 	return p.store.Snapshot(dir)
 }
 
-// CopySnapshot copies a snapshot directory between filesystems (nil means
-// the OS filesystem), e.g. onto the machine that takes over a partition.
-func CopySnapshot(srcFS vfs.FS, src string, dstFS vfs.FS, dst string) error {
-	return state.CopySnapshot(srcFS, src, dstFS, dst)
+// CopySnapshot copies a snapshot directory src to dst (which must not
+// exist) on the OS filesystem, e.g. onto a volume that another machine
+// mounts. A snapshot is plain files: any copy that preserves them whole
+// works as well.
+func CopySnapshot(src, dst string) error {
+	return store.CopySnapshot(nil, src, nil, dst)
 }

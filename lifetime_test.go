@@ -10,7 +10,7 @@ import (
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/stretchr/testify/require"
-	"github.com/tallyward/tallyward/state"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 func countRecords(t testing.TB, db *pebble.DB) int {
@@ -25,7 +25,7 @@ func TestTTLExpiresIdleEntities(t *testing.T) {
 		require.NoError(t, err)
 	}
 	require.NoError(t, p.Commit(nil))
-	require.Equal(t, 4, countRecords(t, p.Store().DB())) // 3 accounts, 1 address
+	require.Equal(t, 4, countRecords(t, p.store.DB())) // 3 accounts, 1 address
 	require.Equal(t, int64(4), p.Stats().LiveEntities)
 
 	// Only "c" and the address stay busy for ten minutes.
@@ -41,7 +41,7 @@ func TestTTLExpiresIdleEntities(t *testing.T) {
 	s := p.Stats()
 	require.Equal(t, uint64(1), s.Expired, "b expired; a was renewed before the sweep")
 	require.Equal(t, int64(3), s.LiveEntities)
-	require.Equal(t, 3, countRecords(t, p.Store().DB()))
+	require.Equal(t, 3, countRecords(t, p.store.DB()))
 }
 
 // With the default TTL (longest window + MaxDisorder), expiry never
@@ -69,7 +69,7 @@ func TestDefaultTTLDoesNotChangeRows(t *testing.T) {
 
 // Invariant 5 (DESIGN.md): after Erase and a manual compaction, no stored
 // key or value contains the erased key's bytes; a replay of older history
-// does not bring it back until Readmit.
+// does not bring it back until LiftErasure.
 func TestEraseLeavesNoBytes(t *testing.T) {
 	const victim = "person-erase-me-7f3a"
 	evs := genLogins(21, 20_000, 500, 300, 0)
@@ -91,7 +91,7 @@ func TestEraseLeavesNoBytes(t *testing.T) {
 	require.NoError(t, p.Commit(nil))
 	require.Positive(t, p.Stats().ErasedSkips)
 
-	db := p.Store().DB()
+	db := p.store.DB()
 	require.NoError(t, db.Compact(context.Background(), []byte{0x00}, []byte{0xff, 0xff}, true))
 	it, err := db.NewIter(nil)
 	require.NoError(t, err)
@@ -111,7 +111,7 @@ func TestEraseLeavesNoBytes(t *testing.T) {
 		}
 	}
 
-	require.NoError(t, p.Readmit("account", victim))
+	require.NoError(t, p.LiftErasure("account", victim))
 	got, err := Open(loginSpec(rows.add), Options{})
 	require.NoError(t, err)
 	got.Close()
@@ -128,19 +128,19 @@ func TestSnapshotRoundTrip(t *testing.T) {
 	snap := t.TempDir() + "/snap"
 	require.NoError(t, p.Snapshot(snap))
 	moved := t.TempDir() + "/moved"
-	require.NoError(t, CopySnapshot(nil, snap, nil, moved))
+	require.NoError(t, CopySnapshot(snap, moved))
 	require.NoError(t, p.Replay(context.Background(), slice(evs[9_000:])))
 
 	copyRows := newRowLog()
 	opts.Dir = moved
 	q := openTest(t, loginSpec(copyRows.add), opts)
-	require.LessOrEqual(t, q.Resume(), uint64(9_000), "held events are re-read")
-	require.Equal(t, uint64(9_000), q.Store().Mark().Seen)
-	require.NoError(t, q.Replay(context.Background(), Skip(slice(evs), q.Resume())))
+	require.LessOrEqual(t, q.ResumeSeq(), uint64(9_000), "held events are re-read")
+	require.Equal(t, uint64(9_000), q.store.Mark().Seen)
+	require.NoError(t, q.Replay(context.Background(), Skip(slice(evs), q.ResumeSeq())))
 	for seq, r := range copyRows.rows {
 		require.Equal(t, origRows.rows[seq], r, "row %d", seq)
 	}
-	require.Equal(t, dumpRecords(t, p.Store().DB()), dumpRecords(t, q.Store().DB()))
+	require.Equal(t, dumpRecords(t, p.store.DB()), dumpRecords(t, q.store.DB()))
 	require.Equal(t, p.Stats().Applied, q.Stats().Applied)
 }
 
@@ -157,12 +157,12 @@ func TestDefinitionReset(t *testing.T) {
 	spec := loginSpec(nil)
 	spec.Entities[0].Features[0].Kind = SlidingCount{Window: 20 * time.Minute, Resolution: 10 * time.Second}
 	spec.Entities[0].Features = append(spec.Entities[0].Features, Feature[login]{Name: "new_one", Kind: SlidingCount{Window: time.Hour}})
-	_, err = Open(spec, Options{Dir: dir, Reset: []string{"addr.failed_10m"}})
+	_, err = Open(spec, Options{Dir: dir, ResetFeatures: []string{"addr.failed_10m"}})
 	require.ErrorIs(t, err, ErrDefinitionChanged)
 	require.ErrorContains(t, err, "addr.new_one is new")
 	require.NotContains(t, err.Error(), "failed_10m", "listed features are not errors")
 
-	p, err = Open(spec, Options{Dir: dir, Reset: []string{"addr.failed_10m", "addr.new_one"}})
+	p, err = Open(spec, Options{Dir: dir, ResetFeatures: []string{"addr.failed_10m", "addr.new_one"}})
 	require.NoError(t, err)
 	require.Len(t, p.Notices(), 2)
 	require.Contains(t, strings.Join(p.Notices(), "\n"), "backfill")
@@ -183,12 +183,12 @@ func TestCorruptRecordNamesKey(t *testing.T) {
 	dir := t.TempDir()
 	p, err := Open(loginSpec(nil), Options{Dir: dir})
 	require.NoError(t, err)
-	key := state.RecordKey(nil, "account", "mallory")
-	require.NoError(t, p.Store().DB().Set(key, []byte{1, 0x80}, pebble.Sync))
+	key := store.RecordKey(nil, "account", "mallory")
+	require.NoError(t, p.store.DB().Set(key, []byte{1, 0x80}, pebble.Sync))
 	require.NoError(t, p.Close())
 	p = openTest(t, loginSpec(nil), Options{Dir: dir})
 	_, err = p.Score(login{T: t0, Account: "mallory", Addr: "x"}, nil)
-	require.ErrorIs(t, err, state.ErrCorrupt)
+	require.ErrorIs(t, err, store.ErrCorrupt)
 	require.ErrorContains(t, err, "mallory")
 	_, err = p.Score(login{T: t0 + 1, Account: "someone", Addr: "x"}, nil)
 	require.Error(t, err, "the pipeline stopped")

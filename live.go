@@ -51,7 +51,7 @@ func (l *Live[E]) Score(e E, dst []float64) ([]float64, error) {
 }
 
 // SubmitInOrder processes e as event number n of the sequence: it waits
-// until events n0..n-1 have been submitted (n0 = Resume() when Live was
+// until events n0..n-1 have been submitted (n0 = ResumeSeq() when Live was
 // made), so several goroutines that decode or fetch a source in parallel
 // still feed the core one ordered sequence. Each n must be submitted once.
 func (l *Live[E]) SubmitInOrder(n uint64, e E) error {

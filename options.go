@@ -86,9 +86,12 @@ type Options struct {
 	// discarded on Close. Default: "".
 	Dir string
 
-	// FS overrides the filesystem (tests: crash-simulating or
-	// error-injecting filesystems). Default: the OS filesystem when Dir is
-	// set, a fresh in-memory one otherwise.
+	// FS overrides the filesystem the store writes through. It is the one
+	// place a type of the storage engine (Pebble's vfs.FS) appears in this
+	// API, kept because it is the sanctioned way to run a pipeline on a
+	// crash-simulating or fault-injecting filesystem in tests; production
+	// code leaves it nil. Default: the OS filesystem when Dir is set, a
+	// fresh in-memory one otherwise.
 	FS vfs.FS
 
 	// CacheBytes bounds the approximate memory of decoded entity records.
@@ -97,8 +100,8 @@ type Options struct {
 
 	// IngestThreshold: a commit of at least this many writes goes to
 	// Pebble as one ingested table rather than a batch (cheaper for large
-	// commits; see package state). Negative: always a batch.
-	// Default: state.DefaultIngestThreshold.
+	// commits; see internal/store). Negative: always a batch.
+	// Default: 16384 writes.
 	IngestThreshold int
 
 	// CommitEvery commits automatically after this many source events.
@@ -115,12 +118,12 @@ type Options struct {
 	// unbounded reach (first seen) never expires by default.
 	TTL time.Duration
 
-	// Reset lists features ("entity.feature") whose stored definition may
+	// ResetFeatures lists features ("entity.feature") whose stored definition may
 	// differ from the given one: on Open their state is discarded and
 	// starts empty, and Notices says a backfill is needed. A changed, new
 	// or removed feature that is not listed makes Open fail with
 	// ErrDefinitionChanged. Default: none.
-	Reset []string
+	ResetFeatures []string
 
 	// MetricsClock times commits for Stats. It is read for metrics only,
 	// never for any decision about data. Default: SystemClock.

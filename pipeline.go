@@ -7,7 +7,7 @@ import (
 
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/sat"
-	"github.com/tallyward/tallyward/state"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 // Pipeline computes the features of a Spec over a sequence of events and
@@ -20,7 +20,7 @@ import (
 type Pipeline[E any] struct {
 	opts  Options
 	spec  Spec[E]
-	store *state.Store
+	store *store.Store
 	ents  []*entityState[E]
 	names []string // "entity.feature", in row order
 	nfeat int
@@ -57,7 +57,7 @@ type Pipeline[E any] struct {
 
 type entityState[E any] struct {
 	ent     Entity[E]
-	table   *state.Table[*record]
+	table   *store.Table[*record]
 	kinds   []Kind
 	first   int         // index of the entity's first feature in a row
 	zero    []aggregate // empty aggregates, to answer for unseen keys
@@ -95,7 +95,7 @@ func (in *inputs) clone() inputs {
 }
 
 // Open validates spec and opts, opens the store and checks that the stored
-// feature definitions match spec. The source must restart at Resume().
+// feature definitions match spec. The source must restart at ResumeSeq().
 func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	opts.EnsureDefaults()
 	// One nanosecond more than the allowed disorder keeps as-of answers
@@ -111,11 +111,11 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	store, err := state.Open(state.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold})
+	st, err := store.Open(store.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold})
 	if err != nil {
 		return nil, err
 	}
-	p := &Pipeline[E]{opts: opts, spec: spec, store: store, wm: math.MinInt64, held: btree.NewG(16, heldLess[E])}
+	p := &Pipeline[E]{opts: opts, spec: spec, store: st, wm: math.MinInt64, held: btree.NewG(16, heldLess[E])}
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
@@ -124,7 +124,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		}
 		es.zero = es.fresh()
 		es.ttl = ttlFor(ent.Features, opts)
-		es.table = state.NewTable(store, ent.Name, es.ttl, func(b []byte) (*record, error) {
+		es.table = store.NewTable(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
 			return decodeRecord(b, es.fresh)
 		})
 		es.table.PeekLast = peekLast
@@ -134,18 +134,18 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
 	p.vals = make([]float64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
-	if err := p.restore(store.Mark()); err != nil {
-		store.Close()
+	if err := p.restore(st.Mark()); err != nil {
+		st.Close()
 		return nil, err
 	}
 	if err := p.checkDefinitions(); err != nil {
-		store.Close()
+		st.Close()
 		return nil, err
 	}
 	if len(p.notices) > 0 {
 		// Make the reset durable before any event is processed.
-		if err := p.store.Commit(store.Mark()); err != nil {
-			store.Close()
+		if err := p.store.Commit(st.Mark()); err != nil {
+			st.Close()
 			return nil, err
 		}
 	}
@@ -168,7 +168,7 @@ func (p *Pipeline[E]) Names() []string { return slices.Clone(p.names) }
 // 0 for a new store, otherwise the position stored by the last commit.
 // Events from Resume up to the last commit's Seen are recognised as
 // re-reads and not counted twice.
-func (p *Pipeline[E]) Resume() uint64 { return p.store.Mark().Resume }
+func (p *Pipeline[E]) ResumeSeq() uint64 { return p.store.Mark().Resume }
 
 // Cursor returns the caller's source cursor stored by the last Commit.
 func (p *Pipeline[E]) Cursor() []byte { return slices.Clone(p.store.Mark().Cursor) }
@@ -490,7 +490,7 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 		return err
 	}
 	began := p.opts.MetricsClock.Now()
-	m := state.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
+	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
 	}
@@ -531,9 +531,6 @@ func (p *Pipeline[E]) Close() error {
 	p.closed = true
 	return errors.Join(err, p.store.Close())
 }
-
-// Store exposes the pipeline's store for maintenance and inspection.
-func (p *Pipeline[E]) Store() *state.Store { return p.store }
 
 // held is an event waiting for the watermark in Settled mode.
 type held[E any] struct {

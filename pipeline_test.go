@@ -278,7 +278,7 @@ func TestStatsReportEverything(t *testing.T) {
 	require.Equal(t, t0+9*int64(time.Second), s.Newest)
 	require.Equal(t, int64(time.Second), s.WatermarkLag)
 	require.Equal(t, int64(2), s.LiveEntities)
-	require.Equal(t, time.Millisecond, s.LastCommit)
+	require.Equal(t, time.Millisecond, s.LastCommitDuration)
 	require.Equal(t, uint64(1), s.Commits)
 	require.InDelta(t, 18.0/20, s.HitRate(), 1e-9) // 2 first sights, 18 hits
 	require.Positive(t, s.DiskBytes)

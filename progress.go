@@ -6,8 +6,8 @@ import (
 	"math"
 	"time"
 
+	"github.com/tallyward/tallyward/internal/store"
 	"github.com/tallyward/tallyward/internal/wire"
-	"github.com/tallyward/tallyward/state"
 )
 
 // counters are the pipeline's running totals; they are committed with the
@@ -81,7 +81,7 @@ func (pr progress) append(dst []byte) []byte {
 func (pr *progress) decode(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != progressVersion1 {
-		return fmt.Errorf("%w: progress version %d", state.ErrCorrupt, v)
+		return fmt.Errorf("%w: progress version %d", store.ErrCorrupt, v)
 	}
 	var out progress
 	flags := d.Byte()
@@ -102,7 +102,7 @@ func (pr *progress) decode(b []byte) error {
 	}
 	k := d.Uvarint()
 	if d.Err == nil && k > uint64(len(d.B)) {
-		return fmt.Errorf("%w: progress: %d future-rejected seqs in %d bytes", state.ErrCorrupt, k, len(d.B))
+		return fmt.Errorf("%w: progress: %d future-rejected seqs in %d bytes", store.ErrCorrupt, k, len(d.B))
 	}
 	prev := uint64(0)
 	for i := uint64(0); i < k && d.Err == nil; i++ {
@@ -110,14 +110,14 @@ func (pr *progress) decode(b []byte) error {
 		out.futureRejected = append(out.futureRejected, prev)
 	}
 	if err := d.Finish(); err != nil {
-		return fmt.Errorf("%w: progress: %w", state.ErrCorrupt, err)
+		return fmt.Errorf("%w: progress: %w", store.ErrCorrupt, err)
 	}
 	*pr = out
 	return nil
 }
 
 // restore resumes from a stored Mark.
-func (p *Pipeline[E]) restore(m state.Mark) error {
+func (p *Pipeline[E]) restore(m store.Mark) error {
 	if len(m.Extra) == 0 {
 		return nil
 	}
@@ -154,17 +154,18 @@ type Stats struct {
 	// (math.MaxInt64 before any event has advanced it).
 	Watermark    int64
 	WatermarkLag int64
-	Seen         uint64 // sequence number of the next event
+	NextSeq      uint64 // sequence number the next event will get
 	CachedKeys   int    // entity records held in memory
 	CachedBytes  int64  // their approximate memory
 	CacheHits    uint64
 	CacheMisses  uint64
 	Commits      uint64 // commits since Open
-	// LastCommit and CommitTime are the latency of the last commit and
-	// the total spent committing since Open (wall clock, metrics only).
-	LastCommit time.Duration
-	CommitTime time.Duration
-	DiskBytes  uint64 // Pebble's estimate of the store's size
+	// LastCommitDuration and TotalCommitDuration are the latency of the
+	// last commit and the total spent committing since Open (by
+	// Options.MetricsClock; for metrics only).
+	LastCommitDuration  time.Duration
+	TotalCommitDuration time.Duration
+	DiskBytes           uint64 // Pebble's estimate of the store's size
 }
 
 // HitRate is the share of record lookups served by the cache (NaN before
@@ -179,9 +180,9 @@ func (p *Pipeline[E]) Stats() Stats {
 	s := Stats{
 		Events: p.c.events, Applied: p.c.applied, Emitted: p.c.emitted, Late: p.c.late, TooOld: p.c.tooOld,
 		LiveEntities: p.c.live, Expired: p.c.expired, Erased: p.c.erased, ErasedSkips: p.c.erasedSkips,
-		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, Seen: p.seen,
+		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, NextSeq: p.seen,
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
-		LastCommit: time.Duration(p.lastCommitNanos), CommitTime: time.Duration(p.commitNanos),
+		LastCommitDuration: time.Duration(p.lastCommitNanos), TotalCommitDuration: time.Duration(p.commitNanos),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n

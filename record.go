@@ -58,7 +58,7 @@ func (r *record) AppendBinary(dst []byte) ([]byte, error) {
 	return dst, nil
 }
 
-// LastTime returns the newest event time applied (state.Value).
+// LastTime returns the newest event time applied (store.Value).
 func (r *record) LastTime() int64 { return r.last }
 
 // SizeBytes estimates r's heap footprint.

@@ -11,7 +11,7 @@ import (
 type Source[E any] = iter.Seq2[E, error]
 
 // Skip returns src without its first n events: for sources that can only
-// be read from the start, so a restarted pipeline can be fed from Resume().
+// be read from the start, so a restarted pipeline can be fed from ResumeSeq().
 func Skip[E any](src Source[E], n uint64) Source[E] {
 	return func(yield func(E, error) bool) {
 		var i uint64
@@ -27,7 +27,7 @@ func Skip[E any](src Source[E], n uint64) Source[E] {
 	}
 }
 
-// Feed processes every event of src (which must start at Resume()) in
+// Feed processes every event of src (which must start at ResumeSeq()) in
 // order. Rejected and late events are counted and skipped; a storage error
 // or a source error stops it. It neither flushes nor commits at the end, so
 // a live source can continue where src ends with no gap and no double
@@ -51,7 +51,7 @@ func (p *Pipeline[E]) Feed(ctx context.Context, src Source[E]) error {
 }
 
 // Replay is the replay driver: it feeds a finite src (starting at
-// Resume()), then flushes (the watermark jumps to +infinity and every held
+// ResumeSeq()), then flushes (the watermark jumps to +infinity and every held
 // row is emitted) and commits.
 func (p *Pipeline[E]) Replay(ctx context.Context, src Source[E]) error {
 	if err := p.Feed(ctx, src); err != nil {

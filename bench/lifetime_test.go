@@ -11,7 +11,7 @@ import (
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/tallyward/tallyward"
-	"github.com/tallyward/tallyward/state"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 // Benchmarks of the lifetime of state: what a commit costs per dirty
@@ -80,17 +80,17 @@ func BenchmarkCommitPerDirty(b *testing.B) {
 	for _, n := range []int{1_000, 10_000, 100_000} {
 		keys := entityKeys(n, 1)
 		b.Run(fmt.Sprintf("store/dirty=%d", n), func(b *testing.B) {
-			s, err := state.Open(state.Options{Dir: b.TempDir(), CacheBytes: 1 << 30})
+			s, err := store.Open(store.Options{Dir: b.TempDir(), CacheBytes: 1 << 30})
 			if err != nil {
 				b.Fatal(err)
 			}
 			defer s.Close()
-			tb := state.NewTable(s, "e", 0, decodeLrec)
-			slots := make([]*state.Slot[*lrec], n)
+			tb := store.NewTable(s, "e", 0, decodeLrec)
+			slots := make([]*store.Slot[*lrec], n)
 			for i, k := range keys {
 				slots[i] = tb.Insert(k, &lrec{last: 1})
 			}
-			if err := s.Commit(state.Mark{}); err != nil {
+			if err := s.Commit(store.Mark{}); err != nil {
 				b.Fatal(err)
 			}
 			b.ReportAllocs()
@@ -103,14 +103,14 @@ func BenchmarkCommitPerDirty(b *testing.B) {
 					tb.Touch(sl)
 				}
 				b.StartTimer()
-				if err := s.Commit(state.Mark{Seen: uint64(i)}); err != nil {
+				if err := s.Commit(store.Mark{Seen: uint64(i)}); err != nil {
 					b.Fatal(err)
 				}
 			}
 			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*n), "ns/dirty-entity")
 		})
 		b.Run(fmt.Sprintf("pebble-batch/dirty=%d", n), func(b *testing.B) {
-			s, err := state.Open(state.Options{Dir: b.TempDir()})
+			s, err := store.Open(store.Options{Dir: b.TempDir()})
 			if err != nil {
 				b.Fatal(err)
 			}
@@ -118,7 +118,7 @@ func BenchmarkCommitPerDirty(b *testing.B) {
 			db := s.DB()
 			rkeys := make([][]byte, n)
 			for i, k := range keys {
-				rkeys[i] = state.RecordKey(nil, "e", k)
+				rkeys[i] = store.RecordKey(nil, "e", k)
 			}
 			val, _ := (&lrec{last: 1}).AppendBinary(nil)
 			b.ReportAllocs()
@@ -243,18 +243,18 @@ func BenchmarkSweep(b *testing.B) {
 		}
 		build := func(b *testing.B) string {
 			dir := b.TempDir()
-			s, err := state.Open(state.Options{Dir: dir, CacheBytes: 1 << 30})
+			s, err := store.Open(store.Options{Dir: dir, CacheBytes: 1 << 30})
 			if err != nil {
 				b.Fatal(err)
 			}
-			tb := state.NewTable(s, "e", ttl, decodeLrec)
+			tb := store.NewTable(s, "e", ttl, decodeLrec)
 			for _, k := range expired {
 				tb.Insert(k, &lrec{last: tOld})
 			}
 			for _, k := range live {
 				tb.Insert(k, &lrec{last: tNew})
 			}
-			if err := s.Commit(state.Mark{}); err != nil {
+			if err := s.Commit(store.Mark{}); err != nil {
 				b.Fatal(err)
 			}
 			if err := s.Close(); err != nil {
@@ -264,11 +264,11 @@ func BenchmarkSweep(b *testing.B) {
 		}
 		// timed builds a fresh store per iteration, prepares it untimed,
 		// and times sweep alone.
-		timed := func(b *testing.B, prepare func(*state.Store), sweep func(*state.Store) (int, error)) {
+		timed := func(b *testing.B, prepare func(*store.Store), sweep func(*store.Store) (int, error)) {
 			var elapsed time.Duration
 			for i := 0; i < b.N; i++ {
 				b.StopTimer()
-				s, err := state.Open(state.Options{Dir: build(b)})
+				s, err := store.Open(store.Options{Dir: build(b)})
 				if err != nil {
 					b.Fatal(err)
 				}
@@ -288,19 +288,19 @@ func BenchmarkSweep(b *testing.B) {
 			b.ReportMetric(float64(elapsed.Nanoseconds())/float64(b.N*n), "ns/expired-entity")
 		}
 		b.Run(fmt.Sprintf("index/expired=%d", n), func(b *testing.B) {
-			timed(b, func(s *state.Store) {
-				tb := state.NewTable(s, "e", ttl, decodeLrec)
+			timed(b, func(s *store.Store) {
+				tb := store.NewTable(s, "e", ttl, decodeLrec)
 				tb.PeekLast = peekLrec
-			}, func(s *state.Store) (int, error) {
+			}, func(s *store.Store) (int, error) {
 				removed, err := s.Sweep(w)
 				if err == nil {
-					err = s.Commit(state.Mark{Watermark: w})
+					err = s.Commit(store.Mark{Watermark: w})
 				}
 				return removed, err
 			})
 		})
 		b.Run(fmt.Sprintf("naive-scan/expired=%d", n), func(b *testing.B) {
-			timed(b, func(*state.Store) {}, func(s *state.Store) (int, error) { return naiveSweep(s.DB(), w, ttl) })
+			timed(b, func(*store.Store) {}, func(s *store.Store) (int, error) { return naiveSweep(s.DB(), w, ttl) })
 		})
 	}
 }
@@ -308,7 +308,7 @@ func BenchmarkSweep(b *testing.B) {
 // naiveSweep deletes every record of table "e" idle for ttl at w by a
 // full scan (it leaves the expiry index alone: a baseline, not a fix).
 func naiveSweep(db *pebble.DB, w, ttl int64) (int, error) {
-	lower := state.RecordKey(nil, "e", "")
+	lower := store.RecordKey(nil, "e", "")
 	upper := append([]byte(nil), lower...)
 	upper[len(upper)-1]++
 	it, err := db.NewIter(&pebble.IterOptions{LowerBound: lower, UpperBound: upper})
@@ -341,7 +341,7 @@ func naiveSweep(db *pebble.DB, w, ttl int64) (int, error) {
 // settle flushes the records replayed from the log at open into sstables,
 // where records of long-idle entities live, so that the timed sweep does
 // not share the machine with that flush.
-func settle(b *testing.B, s *state.Store) {
+func settle(b *testing.B, s *store.Store) {
 	if err := s.DB().Flush(); err != nil {
 		b.Fatal(err)
 	}

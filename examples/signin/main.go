@@ -163,7 +163,7 @@ func run(n int, seed uint64) error {
 	if p.Watermark() != math.MaxInt64 {
 		wm = time.Unix(0, p.Watermark()).UTC().String()
 	}
-	fmt.Printf("\nreopened: resume at event %d, watermark %s, %d events counted before\n", p.Resume(), wm, p.Stats().Events)
+	fmt.Printf("\nreopened: resume at event %d, watermark %s, %d events counted before\n", p.ResumeSeq(), wm, p.Stats().Events)
 	return nil
 }
 

@@ -1,5 +1,5 @@
 // Package wire holds the small varint reader shared by the decoders of the
-// root and state packages: a sticky error checked once at the end, so a
+// root and store packages: a sticky error checked once at the end, so a
 // decoder reads straight through its fields without a check per field.
 package wire
 

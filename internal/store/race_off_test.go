@@ -1,5 +1,5 @@
 //go:build !race
 
-package state
+package store
 
 const raceEnabled = false

@@ -41,4 +41,4 @@
 //
 // A Store and its caches are not safe for concurrent use; the pipeline
 // drives them from one goroutine (or under one lock).
-package state
+package store

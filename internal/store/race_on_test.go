@@ -1,6 +1,6 @@
 //go:build race
 
-package state
+package store
 
 // raceEnabled makes the longest randomized tests run fewer seeds under the
 // race detector, which slows Pebble about fifteenfold.
