@@ -181,7 +181,7 @@ func TestDefinitionReset(t *testing.T) {
 // stop the pipeline.
 func TestCorruptRecordNamesKey(t *testing.T) {
 	dir := t.TempDir()
-	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	p, err := Open(loginSpec(nil), Options{Dir: dir, ItemKey: testItemKey})
 	require.NoError(t, err)
 	key := store.RecordKey(nil, "account", "mallory")
 	require.NoError(t, p.store.DB().Set(key, []byte{1, 0x80}, pebble.Sync))

@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"time"
@@ -79,6 +80,22 @@ type Options struct {
 	// Default: 1 hour.
 	FutureSkew time.Duration
 
+	// PastSkew, in live mode, rejects events more than this far behind the
+	// injected clock (reason PastTime): with a correct clock, an event
+	// from years ago is a broken producer, not history. Replay has no
+	// clock and is not affected. Negative disables the check.
+	// Default: 7 days.
+	PastSkew time.Duration
+
+	// EarliestTime and LatestTime bound plausible event times (Unix
+	// nanoseconds, inclusive). An event outside them is rejected (reason
+	// OutOfRange) before it can move the newest event time: one stray
+	// time of -1, of seconds read as nanoseconds, or of the year 2200
+	// would otherwise make every later event late or too far in the
+	// future. Set math.MinInt64 or math.MaxInt64 to lift a bound.
+	// Default: 2000-01-01T00:00:00Z and 2100-01-01T00:00:00Z.
+	EarliestTime, LatestTime int64
+
 	// Lateness is the policy for late events. Default: DropLate.
 	Lateness Lateness
 
@@ -125,6 +142,23 @@ type Options struct {
 	// ErrDefinitionChanged. Default: none.
 	ResetFeatures []string
 
+	// ItemKey is the 16-byte key Feature.Item values are hashed with
+	// (SipHash-2-4), so that the item hashes kept in other entities'
+	// records cannot be tested against candidate items without it. A new
+	// store made without ItemKey draws a random key and keeps it (its
+	// snapshots carry it; Pipeline.ItemKey returns it); one made with
+	// ItemKey keeps only a check value, and every later Open must pass
+	// the same key. Set it to give two stores the same rows, e.g. a
+	// backfill compared with a live store. A store made before keyed
+	// hashing keeps hashing without a key (Notices says so) and refuses
+	// a key. Default: nil.
+	ItemKey []byte
+
+	// UnkeyedItems makes a new store hash items without a key (XXH64),
+	// like stores made before keyed hashing: only to build a store that
+	// must give the same rows as such an older one. Default: false.
+	UnkeyedItems bool
+
 	// MetricsClock times commits for Stats. It is read for metrics only,
 	// never for any decision about data. Default: SystemClock.
 	MetricsClock Clock
@@ -136,10 +170,25 @@ type Options struct {
 	IdleAdvance time.Duration
 }
 
+// Default plausible event times: 2000-01-01 and 2100-01-01, UTC.
+const (
+	defaultEarliest = int64(946_684_800) * int64(time.Second)
+	defaultLatest   = int64(4_102_444_800) * int64(time.Second)
+)
+
 // EnsureDefaults fills zero fields with their defaults.
 func (o *Options) EnsureDefaults() {
 	if o.FutureSkew == 0 {
 		o.FutureSkew = time.Hour
+	}
+	if o.PastSkew == 0 {
+		o.PastSkew = 7 * 24 * time.Hour
+	}
+	if o.EarliestTime == 0 {
+		o.EarliestTime = defaultEarliest
+	}
+	if o.LatestTime == 0 {
+		o.LatestTime = defaultLatest
 	}
 	if o.CommitEvery == 0 {
 		o.CommitEvery = 100_000
@@ -163,6 +212,15 @@ func (o *Options) Validate() error {
 	}
 	if o.FutureSkew < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: FutureSkew %v < 0", o.FutureSkew))
+	}
+	if lo, hi := cmp.Or(o.EarliestTime, defaultEarliest), cmp.Or(o.LatestTime, defaultLatest); lo > hi {
+		errs = append(errs, fmt.Errorf("tallyward: EarliestTime %d > LatestTime %d", lo, hi))
+	}
+	if o.ItemKey != nil && len(o.ItemKey) != ItemKeySize {
+		errs = append(errs, fmt.Errorf("tallyward: ItemKey has %d bytes, want %d", len(o.ItemKey), ItemKeySize))
+	}
+	if o.ItemKey != nil && o.UnkeyedItems {
+		errs = append(errs, errors.New("tallyward: ItemKey and UnkeyedItems are both set"))
 	}
 	if o.CacheBytes < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: CacheBytes %d < 0", o.CacheBytes))

@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"strings"
 	"time"
+
+	"github.com/tallyward/tallyward/window"
 )
 
 // Spec describes what a pipeline computes over events of type E.
@@ -53,7 +55,8 @@ type Feature[E any] struct {
 	// event. Rows report the feature for every event regardless.
 	Where func(E) bool
 	// Value extracts the number aggregated by value kinds. Nil means 1.
-	// NaN and infinite values reject the whole event.
+	// A value that is NaN, infinite or beyond ±MaxValue rejects the whole
+	// event (reason BadValue).
 	Value func(E) float64
 	// Item extracts the thing counted by item kinds (distinct counts,
 	// frequencies). Nil means the empty item.
@@ -63,6 +66,14 @@ type Feature[E any] struct {
 	// default includes them.
 	BeforeEvent bool
 }
+
+// MaxValue bounds the magnitude of Feature.Value. It is the bound the
+// decayed statistics need to keep variance from overflowing (package
+// window's MaxDecayedValue), applied to every kind alike so that no kind
+// silently refuses a value another takes, and so that a sliding sum of
+// values within it cannot reach ±Inf: 2^1024 / 1e30 ≈ 1.8e278 events
+// would be needed.
+const MaxValue = window.MaxDecayedValue
 
 // Row is the features of one event.
 type Row[E any] struct {
