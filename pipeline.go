@@ -456,7 +456,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 		for j, a := range aggs {
 			t := in.t
 			if es.ent.Features[j].BeforeEvent {
-				t--
+				t = sat.Sub(t, 1)
 			}
 			out[es.first+j] = a.at(t, in.item[es.first+j])
 		}
