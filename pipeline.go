@@ -49,9 +49,9 @@ type Pipeline[E any] struct {
 	// The last ResetNewest, so that re-reading across it applies it at
 	// the same point: before event resetSeq, the newest time became
 	// resetTo.
-	hasReset bool
-	resetSeq uint64
-	resetTo  newestTime
+	hasReset       bool
+	resetSeq       uint64
+	resetTo        newestTime
 	lastCommitSeen uint64
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
@@ -61,18 +61,18 @@ type Pipeline[E any] struct {
 	in    inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
-	recs    []*record
-	vals    []float64
-	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
-	batch   []*held[E]              // Settled: scratch for one timestamp's events
-	closed  bool
+	recs   []*record
+	vals   []float64
+	held   *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
+	batch  []*held[E]              // Settled: scratch for one timestamp's events
+	closed bool
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
 	// the row being emitted. Atomic because Live reads it from goroutines
 	// waiting for the lock.
 	emitting atomic.Bool
 	err      error    // sticky storage error
-	notices []string // what Open did beyond the usual (resets)
+	notices  []string // what Open did beyond the usual (resets)
 }
 
 type entityState[E any] struct {

@@ -48,6 +48,9 @@ type Entity[E any] struct {
 // Feature is one aggregate kept per entity key.
 type Feature[E any] struct {
 	// Name identifies the feature within its entity, e.g. "failed_10m".
+	// Rows and stored definitions call it "<entity>.<feature>", which must
+	// be unique across the spec: entity "a" with feature "b.c" and entity
+	// "a.b" with feature "c" are refused.
 	Name string
 	// Kind is the aggregate and its parameters, e.g. SlidingCount{...}.
 	Kind Kind
@@ -136,6 +139,10 @@ func (s *Spec[E]) validate(horizon int64) error {
 		errs = append(errs, errors.New("tallyward: Spec.Entities is empty"))
 	}
 	seen := map[string]bool{}
+	// Rows, stored definitions and Options.ResetFeatures name a feature
+	// "entity.feature"; names may contain dots, so two different pairs
+	// can join to one name. Such a spec is refused.
+	joined := map[string][2]string{}
 	for i, ent := range s.Entities {
 		switch {
 		case !validName(ent.Name):
@@ -160,6 +167,12 @@ func (s *Spec[E]) validate(horizon int64) error {
 				errs = append(errs, fmt.Errorf("%s defined twice", where))
 			}
 			fseen[f.Name] = true
+			if name := ent.Name + "." + f.Name; validName(ent.Name) && validName(f.Name) {
+				if prev, ok := joined[name]; ok && prev != [2]string{ent.Name, f.Name} {
+					errs = append(errs, fmt.Errorf("tallyward: entity %q feature %q and entity %q feature %q both read %q: rename one", prev[0], prev[1], ent.Name, f.Name, name))
+				}
+				joined[name] = [2]string{ent.Name, f.Name}
+			}
 			if f.Kind == nil {
 				errs = append(errs, fmt.Errorf("%s: Kind is required", where))
 				continue
