@@ -456,7 +456,11 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 		for j, a := range aggs {
 			t := in.t
 			if es.ent.Features[j].BeforeEvent {
-				t = sat.Sub(t, 1)
+				if t == math.MinInt64 {
+					a = es.zero[j] // nothing is before the first instant; t-1 would wrap
+				} else {
+					t--
+				}
 			}
 			out[es.first+j] = a.at(t, in.item[es.first+j])
 		}
