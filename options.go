@@ -144,7 +144,8 @@ type Options struct {
 
 	// ItemKey is the 16-byte key Feature.Item values are hashed with
 	// (SipHash-2-4), so that the item hashes kept in other entities'
-	// records cannot be tested against candidate items without it. A new
+	// records cannot be tested against candidate items without it; only
+	// a key given here stays out of the store. A new
 	// store made without ItemKey draws a random key and keeps it (its
 	// snapshots carry it; Pipeline.ItemKey returns it); one made with
 	// ItemKey keeps only a check value, and every later Open must pass
