@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -27,8 +28,8 @@ type Distinct struct {
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)),
-		Horizon: h, Precision: orDefault(k.Precision, 12)} // 12: the sketch package's default
+	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(cmp.Or(k.Resolution, k.Window/60)),
+		Horizon: h, Precision: cmp.Or(k.Precision, 12)} // 12: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -39,10 +40,10 @@ func (k Distinct) Describe() string {
 
 // Validate implements Kind.
 func (k Distinct) Validate() error { return k.spec(0).Validate() }
-func (Distinct) input() inputKind  { return inputItem }
-func (k Distinct) reach() int64    { return int64(k.Window) }
-func (k Distinct) newAggregate(h int64) aggregate {
-	d, err := sketch.NewDistinct(k.spec(h))
+func (Distinct) Inputs() Inputs  { return TakesItem }
+func (k Distinct) Reach() time.Duration    { return k.Window }
+func (k Distinct) NewAggregate(horizon time.Duration) Aggregate {
+	d, err := sketch.NewDistinct(k.spec(int64(horizon)))
 	if err != nil {
 		// Unreachable: Open validates every kind with its horizon first.
 		panic(err)
@@ -52,12 +53,12 @@ func (k Distinct) newAggregate(h int64) aggregate {
 
 // validateWith checks the spec with the pipeline's horizon, which counts
 // against the pane limit.
-func (k Distinct) validateWith(h int64) error { return k.spec(h).Validate() }
+func (k Distinct) CheckHorizon(horizon time.Duration) error { return k.spec(int64(horizon)).Validate() }
 
 type distinctAgg struct{ *sketch.Distinct }
 
-func (a *distinctAgg) add(t int64, _ float64, h uint64) bool { return a.Add(t, h) }
-func (a *distinctAgg) at(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
+func (a *distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
+func (a *distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
 
 // Frequency estimates how many of an entity's events carried the asking
 // event's item (a card seen at this merchant, say), over the entity's
@@ -73,7 +74,7 @@ type Frequency struct {
 }
 
 func (k Frequency) params() sketch.CountMinParams {
-	return sketch.CountMinParams{Epsilon: orDefault(k.Epsilon, 0.01), Delta: orDefault(k.Delta, 0.01)}
+	return sketch.CountMinParams{Epsilon: cmp.Or(k.Epsilon, 0.01), Delta: cmp.Or(k.Delta, 0.01)}
 }
 
 // orDefault is v, or def when v is the zero value. Kinds spell their
@@ -95,14 +96,14 @@ func (k Frequency) Describe() string {
 
 // Validate implements Kind.
 func (k Frequency) Validate() error { return k.params().Validate() }
-func (Frequency) input() inputKind  { return inputItem }
-func (Frequency) reach() int64      { return 0 }
-func (k Frequency) newAggregate(h int64) aggregate {
+func (Frequency) Inputs() Inputs  { return TakesItem }
+func (Frequency) Reach() time.Duration      { return 0 }
+func (k Frequency) NewAggregate(horizon time.Duration) Aggregate {
 	cm, err := sketch.NewCountMin(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &frequencySummary{cm})
+	return newLifetime(int64(horizon), &frequencySummary{cm})
 }
 
 // TopShare is the share of an entity's events that carried its most
@@ -115,7 +116,7 @@ type TopShare struct {
 }
 
 func (k TopShare) params() sketch.TopKParams {
-	return sketch.TopKParams{Capacity: orDefault(k.Capacity, 32)} // 32: the sketch package's default
+	return sketch.TopKParams{Capacity: cmp.Or(k.Capacity, 32)} // 32: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -125,14 +126,14 @@ func (k TopShare) Describe() string {
 
 // Validate implements Kind.
 func (k TopShare) Validate() error { return k.params().Validate() }
-func (TopShare) input() inputKind  { return inputItem }
-func (TopShare) reach() int64      { return 0 }
-func (k TopShare) newAggregate(h int64) aggregate {
+func (TopShare) Inputs() Inputs  { return TakesItem }
+func (TopShare) Reach() time.Duration      { return 0 }
+func (k TopShare) NewAggregate(horizon time.Duration) Aggregate {
 	tk, err := sketch.NewTopK(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &topShareSummary{tk: tk})
+	return newLifetime(int64(horizon), &topShareSummary{tk: tk})
 }
 
 // Quantile is the Q-quantile of an entity's values over its lifetime (is
@@ -146,7 +147,7 @@ type Quantile struct {
 }
 
 func (k Quantile) params() sketch.QuantileParams {
-	return sketch.QuantileParams{RelativeAccuracy: orDefault(k.RelativeAccuracy, 0.01)}
+	return sketch.QuantileParams{RelativeAccuracy: cmp.Or(k.RelativeAccuracy, 0.01)}
 }
 
 // Describe implements Kind.
@@ -162,19 +163,19 @@ func (k Quantile) Validate() error {
 	}
 	return errors.Join(append(errs, k.params().Validate())...)
 }
-func (Quantile) input() inputKind { return inputValue }
-func (Quantile) reach() int64     { return 0 }
-func (k Quantile) newAggregate(h int64) aggregate {
+func (Quantile) Inputs() Inputs { return TakesValue }
+func (Quantile) Reach() time.Duration     { return 0 }
+func (k Quantile) NewAggregate(horizon time.Duration) Aggregate {
 	q, err := sketch.NewQuantiles(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &quantileSummary{q: q, quantile: k.Q})
+	return newLifetime(int64(horizon), &quantileSummary{q: q, quantile: k.Q})
 }
 
 // summary is a time-free sketch that a lifetime wraps.
 type summary interface {
-	codec
+	encoded
 	fold(v float64, h uint64)
 	// answer reports the summary plus the extra events (all as of the
 	// asked time), for the asking event's item.
@@ -208,7 +209,7 @@ func newLifetime(horizon int64, s summary) *lifetime {
 	return &lifetime{sum: s, horizon: horizon}
 }
 
-func (l *lifetime) add(t int64, v float64, h uint64) bool {
+func (l *lifetime) Add(t int64, v float64, h uint64) bool {
 	if !l.has || t > l.newest {
 		l.newest, l.has = t, true
 		cut := sat.Sub(l.newest, l.horizon)
@@ -233,7 +234,7 @@ func (l *lifetime) add(t int64, v float64, h uint64) bool {
 	return true
 }
 
-func (l *lifetime) at(t int64, item uint64) float64 {
+func (l *lifetime) At(t int64, item uint64) float64 {
 	n, _ := slices.BinarySearchFunc(l.raw, t, func(e tailEvent, t int64) int {
 		if e.t <= t {
 			return -1
@@ -242,6 +243,9 @@ func (l *lifetime) at(t int64, item uint64) float64 {
 	})
 	return l.sum.answer(l.raw[:n], item)
 }
+
+// Newest implements Aggregate.
+func (l *lifetime) Newest() (t int64, ok bool) { return l.newest, l.has }
 
 func (l *lifetime) SizeBytes() int { return 64 + 24*cap(l.raw) + l.sum.SizeBytes() }
 
