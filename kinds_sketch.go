@@ -39,9 +39,9 @@ func (k Distinct) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Distinct) Validate() error { return k.spec(0).Validate() }
-func (Distinct) Inputs() Inputs  { return TakesItem }
-func (k Distinct) Reach() time.Duration    { return k.Window }
+func (k Distinct) Validate() error      { return k.spec(0).Validate() }
+func (Distinct) Inputs() Inputs         { return TakesItem }
+func (k Distinct) Reach() time.Duration { return k.Window }
 func (k Distinct) NewAggregate(horizon time.Duration) Aggregate {
 	d, err := sketch.NewDistinct(k.spec(int64(horizon)))
 	if err != nil {
@@ -95,9 +95,9 @@ func (k Frequency) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Frequency) Validate() error { return k.params().Validate() }
-func (Frequency) Inputs() Inputs  { return TakesItem }
-func (Frequency) Reach() time.Duration      { return 0 }
+func (k Frequency) Validate() error    { return k.params().Validate() }
+func (Frequency) Inputs() Inputs       { return TakesItem }
+func (Frequency) Reach() time.Duration { return 0 }
 func (k Frequency) NewAggregate(horizon time.Duration) Aggregate {
 	cm, err := sketch.NewCountMin(k.params())
 	if err != nil {
@@ -125,9 +125,9 @@ func (k TopShare) Describe() string {
 }
 
 // Validate implements Kind.
-func (k TopShare) Validate() error { return k.params().Validate() }
-func (TopShare) Inputs() Inputs  { return TakesItem }
-func (TopShare) Reach() time.Duration      { return 0 }
+func (k TopShare) Validate() error    { return k.params().Validate() }
+func (TopShare) Inputs() Inputs       { return TakesItem }
+func (TopShare) Reach() time.Duration { return 0 }
 func (k TopShare) NewAggregate(horizon time.Duration) Aggregate {
 	tk, err := sketch.NewTopK(k.params())
 	if err != nil {
@@ -163,8 +163,8 @@ func (k Quantile) Validate() error {
 	}
 	return errors.Join(append(errs, k.params().Validate())...)
 }
-func (Quantile) Inputs() Inputs { return TakesValue }
-func (Quantile) Reach() time.Duration     { return 0 }
+func (Quantile) Inputs() Inputs       { return TakesValue }
+func (Quantile) Reach() time.Duration { return 0 }
 func (k Quantile) NewAggregate(horizon time.Duration) Aggregate {
 	q, err := sketch.NewQuantiles(k.params())
 	if err != nil {

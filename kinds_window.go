@@ -120,8 +120,8 @@ func (k Velocity) Describe() string {
 // Validate implements Kind.
 func (k Velocity) Validate() error { return k.spec(0).Validate() }
 
-func (Velocity) Inputs() Inputs { return 0 }
-func (k Velocity) Reach() time.Duration   { return k.Long }
+func (Velocity) Inputs() Inputs         { return 0 }
+func (k Velocity) Reach() time.Duration { return k.Long }
 
 func (k Velocity) NewAggregate(horizon time.Duration) Aggregate {
 	v := window.NewVelocity(k.spec(int64(horizon)))
