@@ -49,6 +49,16 @@
 // Row.Seq identifies them), so a sink should make rows durable before the
 // commit that covers their events.
 //
+// # Kinds of your own
+//
+// Every built-in kind is an implementation of the public [Kind] and
+// [Aggregate] interfaces; a kind of your own goes through the same seam
+// and is stored, expired, replayed and erased like the built-ins. Its
+// Describe text and its versioned encoding are its identity in stored
+// state: see [Kind] for the contract. Package kindtest checks a kind
+// against a brute-force reference with the invariant tests the built-ins
+// pass; examples/kinds holds one worked kind.
+//
 // # What it is not
 //
 // Features are signals for a model or a human reviewer, not verdicts;
