@@ -56,7 +56,8 @@ var (
 	ErrOutOfRange = errors.New("tallyward: event time outside the plausible range")
 	ErrPastTime   = errors.New("tallyward: event time too far behind the clock")
 	// ErrLate is returned for a late event that the lateness policy drops
-	// or diverts.
+	// or diverts. If every event turns out late, a stray event may have
+	// set the newest time far ahead: see Pipeline.ResetNewest.
 	ErrLate = errors.New("tallyward: event is late")
 	// ErrNotEager is returned by Score on a Settled pipeline.
 	ErrNotEager = errors.New("tallyward: Score needs Eager mode")
@@ -91,10 +92,10 @@ type RejectError struct {
 	Time    int64  // the event's time
 	Feature string // for BadValue: the feature whose value was bad
 	// Limit, for the time reasons (FutureTime, OutOfRange, PastTime), is
-	// the bound the time crossed; Newest says whether that bound came
-	// from the newest event time seen rather than a clock or an option.
-	Limit  int64
-	Newest bool
+	// the bound the time crossed; FromNewest says whether that bound came
+	// from the newest event time seen rather than the clock or an option.
+	Limit      int64
+	FromNewest bool
 }
 
 func (e *RejectError) Error() string {
@@ -105,7 +106,7 @@ func (e *RejectError) Error() string {
 	switch e.Reason {
 	case FutureTime, OutOfRange, PastTime:
 		msg += fmt.Sprintf(" (limit %d", e.Limit)
-		if e.Newest {
+		if e.FromNewest {
 			// The one case an operator may have to act on: a stray
 			// event moved the newest time.
 			msg += ", from the newest event time; if that time is wrong, see Pipeline.ResetNewest"

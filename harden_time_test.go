@@ -68,7 +68,7 @@ func TestLiveClockBothDirections(t *testing.T) {
 	require.ErrorIs(t, err, ErrFutureTime)
 	var re *RejectError
 	require.True(t, errors.As(err, &re))
-	require.False(t, re.Newest, "the clock, not the newest time, was the limit")
+	require.False(t, re.FromNewest, "the clock, not the newest time, was the limit")
 	for i := range 10 {
 		clock.now = t0 + int64(i)*int64(time.Second)
 		require.NoError(t, live.Submit(login{T: clock.now, Account: "a", Addr: "x"}))

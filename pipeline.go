@@ -251,7 +251,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	before := newestTime{p.hasMax, p.maxT}
 	if err := p.extract(e, seq, now, before); err != nil {
 		var re *RejectError
-		if errors.As(err, &re) && (re.Reason == PastTime || re.Reason == FutureTime && !re.Newest) {
+		if errors.As(err, &re) && (re.Reason == PastTime || re.Reason == FutureTime && !re.FromNewest) {
 			p.skip(seq)
 		}
 		return dst, err
@@ -331,7 +331,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 		if seq >= p.reread {
 			p.c.rejected[r]++
 		}
-		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature, Limit: limit, Newest: fromNewest}
+		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature, Limit: limit, FromNewest: fromNewest}
 	}
 	if t == 0 {
 		return reject(ZeroTime, "", 0, false)
