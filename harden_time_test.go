@@ -175,3 +175,38 @@ func TestRestartRejudgesFutureEventsExactly(t *testing.T) {
 	require.Equal(t, rs.Applied, gs.Applied)
 	require.Equal(t, rs.Late, gs.Late)
 }
+
+// An event the live clock rejected (and the newest time alone would have
+// taken) is skipped when a restart re-reads it without that clock,
+// rather than applied the second time round.
+func TestRestartSkipsEventsTheClockRejected(t *testing.T) {
+	min := int64(time.Minute)
+	evs := []login{
+		{T: t0 + 50*min, Account: "a", Addr: "x"},
+		{T: t0 + 65*min, Account: "a", Addr: "x"}, // beyond the clock + FutureSkew, within newest + FutureSkew
+		{T: t0 + 51*min, Account: "a", Addr: "x"},
+	}
+	dir := t.TempDir()
+	rows := newRowLog()
+	opts := Options{Dir: dir, Mode: Settled, MaxDisorder: 10 * time.Minute, CommitEvery: -1}
+	p := openTest(t, loginSpec(rows.add), opts)
+	live := NewLive(p, &fakeClock{now: t0})
+	for i, e := range evs {
+		err := live.Submit(e)
+		if i == 1 {
+			require.ErrorIs(t, err, ErrFutureTime)
+		} else {
+			require.NoError(t, err)
+		}
+	}
+	require.NoError(t, live.Close())
+
+	p = openTest(t, loginSpec(rows.add), opts)
+	require.Zero(t, p.ResumeSeq(), "both accepted events are held and re-read")
+	require.NoError(t, p.Replay(context.Background(), slice(evs)))
+	s := p.Stats()
+	require.Equal(t, uint64(2), s.Applied)
+	require.Equal(t, uint64(1), s.Rejected[FutureTime])
+	require.Len(t, rows.rows, 2)
+	require.NotContains(t, rows.rows, uint64(1))
+}

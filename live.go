@@ -33,7 +33,8 @@ type Live[E any] struct {
 // Spec.Emit and Spec.OnLate run on the goroutine that holds the lock. A
 // call back into this Live (or into the pipeline) from inside them returns
 // ErrReentered instead of deadlocking; reading Stats is the exception and
-// is allowed. Hand rows to another goroutine if they must cause events.
+// is allowed. If rows must cause events, hand them to another goroutine
+// and do not wait for it inside the callback.
 func NewLive[E any](p *Pipeline[E], clock Clock) *Live[E] {
 	l := &Live[E]{p: p, clock: clock, next: p.seen}
 	l.turn = sync.NewCond(&l.mu)
