@@ -143,6 +143,8 @@ func TestSubmitInOrderWokenByClose(t *testing.T) {
 	live := NewLive(p, &fakeClock{now: t0})
 	done := make(chan error, 1)
 	go func() { done <- live.SubmitInOrder(5, login{T: t0, Account: "a", Addr: "x"}) }()
+	require.NoError(t, live.Submit(login{T: t0, Account: "a", Addr: "x"}))
+	require.ErrorContains(t, live.SubmitInOrder(0, login{T: t0, Account: "a", Addr: "x"}), "already submitted")
 	require.NoError(t, live.Close())
 	select {
 	case err := <-done:

@@ -180,11 +180,11 @@ func TestRestartRejudgesFutureEventsExactly(t *testing.T) {
 // taken) is skipped when a restart re-reads it without that clock,
 // rather than applied the second time round.
 func TestRestartSkipsEventsTheClockRejected(t *testing.T) {
-	min := int64(time.Minute)
+	minute := int64(time.Minute)
 	evs := []login{
-		{T: t0 + 50*min, Account: "a", Addr: "x"},
-		{T: t0 + 65*min, Account: "a", Addr: "x"}, // beyond the clock + FutureSkew, within newest + FutureSkew
-		{T: t0 + 51*min, Account: "a", Addr: "x"},
+		{T: t0 + 50*minute, Account: "a", Addr: "x"},
+		{T: t0 + 65*minute, Account: "a", Addr: "x"}, // beyond the clock + FutureSkew, within newest + FutureSkew
+		{T: t0 + 51*minute, Account: "a", Addr: "x"},
 	}
 	dir := t.TempDir()
 	rows := newRowLog()

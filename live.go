@@ -2,6 +2,7 @@ package tallyward
 
 import (
 	"context"
+	"fmt"
 	"runtime"
 	"strings"
 	"sync"
@@ -69,12 +70,17 @@ func (l *Live[E]) Score(e E, dst []float64) ([]float64, error) {
 // until events n0..n-1 have been submitted (n0 = ResumeSeq() when Live was
 // made), so several goroutines that decode or fetch a source in parallel
 // still feed the core one ordered sequence. Each n must be submitted once.
-// A call still waiting when Close runs returns ErrClosed.
+// A call still waiting when Close runs returns ErrClosed; a call for a
+// number already submitted returns an error at once.
 func (l *Live[E]) SubmitInOrder(n uint64, e E) error {
 	if err := l.lock(); err != nil {
 		return err
 	}
 	defer l.mu.Unlock()
+	if n < l.next {
+		// Its turn has passed: waiting would never end.
+		return fmt.Errorf("tallyward: SubmitInOrder(%d): event %d was already submitted", n, n)
+	}
 	for l.next != n {
 		if l.closed {
 			return ErrClosed
