@@ -26,7 +26,7 @@ func TestProgressFormats(t *testing.T) {
 
 	pr := progress{hasMax: true, maxT: t0, flushed: true,
 		c:            counters{events: 90, applied: 70, emitted: 60, late: 5, tooOld: 1, live: 3, expired: 2, erased: 1, erasedSkips: 4, rejected: [numReasons]uint64{1, 2, 3, 4, 5}},
-		resumeNewest: newestTime{true, t0 - 7}, skipReread: []uint64{41, 48}, hasReset: true, resetSeq: 44, resetTo: t0 - 9}
+		resumeNewest: newestTime{true, t0 - 7}, skipReread: []uint64{41, 48}, hasReset: true, resetSeq: 44, resetTo: t0 - 9, resetWm: t0 - 3}
 	path := filepath.Join("testdata", "progress_v2.bin")
 	if *rewriteProgress {
 		require.NoError(t, os.WriteFile(path, pr.append(nil), 0o644))

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"math"
+	"slices"
 	"testing"
 	"time"
 
@@ -209,4 +210,42 @@ func TestRestartSkipsEventsTheClockRejected(t *testing.T) {
 	require.Equal(t, uint64(1), s.Rejected[FutureTime])
 	require.Len(t, rows.rows, 2)
 	require.NotContains(t, rows.rows, uint64(1))
+}
+
+// A restart whose re-read stretch crosses a ResetNewest judges every
+// event as the first run did: events that were late before the reset are
+// not held again although the reset lowered the watermark below them.
+func TestRestartAcrossResetNewestIsExact(t *testing.T) {
+	evs := genLogins(29, 1_600, 200, 60, 2*time.Second)
+	src := append(slices.Clone(evs[:1000]), login{ID: 99_999, T: evs[999].T + int64(6*time.Minute), Account: "stray", Addr: "s"})
+	src = append(src, evs[1000:]...)
+	for i := 1_300; i < 1_400; i += 10 {
+		src[i].T = evs[1000].T + int64(time.Second) // late before the reset, above the watermark after it
+	}
+	const resetAt, commitAt = 1_401, 1_601
+	resetTo := evs[1000].T
+	opts := Options{Mode: Settled, MaxDisorder: 5 * time.Minute, CommitEvery: -1}
+
+	want := newRowLog()
+	ref := openTest(t, richSpec(want.add), opts)
+	require.NoError(t, ref.Feed(context.Background(), slice(src[:resetAt])))
+	require.NoError(t, ref.ResetNewest(resetTo))
+	require.NoError(t, ref.Replay(context.Background(), slice(src[resetAt:])))
+	require.Positive(t, ref.Stats().Late)
+
+	opts.Dir = t.TempDir()
+	got := newRowLog()
+	p := openTest(t, richSpec(got.add), opts)
+	require.NoError(t, p.Feed(context.Background(), slice(src[:resetAt])))
+	require.NoError(t, p.ResetNewest(resetTo))
+	require.NoError(t, p.Feed(context.Background(), slice(src[resetAt:commitAt])))
+	require.NoError(t, p.Close())
+	p = openTest(t, richSpec(got.add), opts)
+	require.Less(t, p.ResumeSeq(), uint64(resetAt), "the re-read stretch crosses the reset")
+	require.NoError(t, p.Replay(context.Background(), Skip(slice(src), p.ResumeSeq())))
+
+	require.Equal(t, want.rows, got.rows)
+	rs, gs := ref.Stats(), p.Stats()
+	require.Equal(t, rs.Applied, gs.Applied)
+	require.Equal(t, rs.Late, gs.Late)
 }

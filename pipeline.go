@@ -49,10 +49,13 @@ type Pipeline[E any] struct {
 	rr newestTime
 	// The last ResetNewest, so that re-reading across it applies it at
 	// the same point: before event resetSeq, the newest time became
-	// resetTo.
+	// resetTo. resetWm is the highest watermark before it: events read
+	// before the reset and below it were emitted or late then, so a
+	// re-read must not hold them again although the watermark went down.
 	hasReset       bool
 	resetSeq       uint64
 	resetTo        newestTime
+	resetWm        int64
 	lastCommitSeen uint64
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
@@ -315,7 +318,11 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 	if !p.rr.has || p.in.t > p.rr.t {
 		p.rr = newestTime{true, p.in.t}
 	}
-	if p.opts.Mode == Settled && p.in.t >= p.wm {
+	w := p.wm
+	if p.hasReset && seq < p.resetSeq {
+		w = max(w, p.resetWm)
+	}
+	if p.opts.Mode == Settled && p.in.t >= w {
 		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone(), before: before})
 	}
 	return nil
@@ -584,8 +591,11 @@ func (p *Pipeline[E]) ResetNewest(newest int64) error {
 	if newest < p.opts.EarliestTime || newest > p.opts.LatestTime || newest == 0 {
 		return fmt.Errorf("tallyward: ResetNewest(%d): %w [%d, %d]", newest, ErrOutOfRange, p.opts.EarliestTime, p.opts.LatestTime)
 	}
+	if !p.hasReset {
+		p.resetWm = p.wm
+	}
 	p.hasMax, p.maxT = true, newest
-	p.hasReset, p.resetSeq, p.resetTo = true, p.seen, newestTime{true, newest}
+	p.hasReset, p.resetSeq, p.resetTo, p.resetWm = true, p.seen, newestTime{true, newest}, max(p.resetWm, p.wm)
 	if w := sat.Sub(newest, int64(p.opts.MaxDisorder)); w < p.wm {
 		p.wm = w
 	} else {

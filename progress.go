@@ -39,6 +39,7 @@ type progress struct {
 	hasReset     bool
 	resetSeq     uint64
 	resetTo      int64
+	resetWm      int64
 }
 
 const (
@@ -48,7 +49,7 @@ const (
 
 func (p *Pipeline[E]) progress() progress {
 	return progress{hasMax: p.hasMax, maxT: p.maxT, flushed: p.flushed, c: p.c, skipReread: p.skipReread,
-		resumeNewest: newestTime{p.hasMax, p.maxT}, hasReset: p.hasReset, resetSeq: p.resetSeq, resetTo: p.resetTo.t}
+		resumeNewest: newestTime{p.hasMax, p.maxT}, hasReset: p.hasReset, resetSeq: p.resetSeq, resetTo: p.resetTo.t, resetWm: p.resetWm}
 }
 
 // append encodes pr:
@@ -63,7 +64,8 @@ func (p *Pipeline[E]) progress() progress {
 //	uvarint  number of reasons r, then r uvarint rejection counts
 //	uvarint  number of seqs to skip on re-read k, then k
 //	         uvarint deltas
-//	if flag 8: uvarint seq of the reset, varint the newest time it set
+//	if flag 8: uvarint seq of the reset, varint the newest time it set,
+//	         varint the highest watermark before it
 //
 // Version 1 had no flags 4 and 8, no second time and no reset; its list
 // held every future-rejected seq at or after the resume point, and it
@@ -104,6 +106,7 @@ func (pr progress) append(dst []byte) []byte {
 	if pr.hasReset {
 		dst = binary.AppendUvarint(dst, pr.resetSeq)
 		dst = binary.AppendVarint(dst, pr.resetTo)
+		dst = binary.AppendVarint(dst, pr.resetWm)
 	}
 	return dst
 }
@@ -152,6 +155,7 @@ func (pr *progress) decode(b []byte) error {
 		out.hasReset = true
 		out.resetSeq = d.Uvarint()
 		out.resetTo = d.Varint()
+		out.resetWm = d.Varint()
 	}
 	if err := d.Finish(); err != nil {
 		return fmt.Errorf("%w: progress: %w", store.ErrCorrupt, err)
@@ -171,7 +175,7 @@ func (p *Pipeline[E]) restore(m store.Mark) error {
 	}
 	p.hasMax, p.maxT, p.flushed, p.c, p.skipReread = pr.hasMax, pr.maxT, pr.flushed, pr.c, pr.skipReread
 	p.rr = pr.resumeNewest
-	p.hasReset, p.resetSeq, p.resetTo = pr.hasReset, pr.resetSeq, newestTime{true, pr.resetTo}
+	p.hasReset, p.resetSeq, p.resetTo, p.resetWm = pr.hasReset, pr.resetSeq, newestTime{true, pr.resetTo}, pr.resetWm
 	p.wm = m.Watermark
 	p.seen = m.Resume
 	p.reread = m.Seen
