@@ -13,9 +13,10 @@ import (
 
 // Live is the live driver: a thin, goroutine-safe shell around a Pipeline.
 // Submissions from many goroutines are serialised onto the one core; the
-// injected clock drives only the future-time check and the idle watermark
-// advance, so with a clock that never triggers those, a live run is
-// identical to a replay of the same sequence.
+// injected clock drives only the time checks against it (FutureSkew ahead,
+// PastSkew behind) and the idle watermark advance, so with a clock that
+// never triggers those, a live run is identical to a replay of the same
+// sequence.
 type Live[E any] struct {
 	mu      sync.Mutex
 	turn    *sync.Cond

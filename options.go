@@ -72,7 +72,10 @@ type Options struct {
 
 	// MaxDisorder is how far behind the newest event time an event may
 	// arrive and still not be late: the watermark is the newest event time
-	// minus MaxDisorder. Default: 0.
+	// minus MaxDisorder. Stored state is shaped by it (aggregates keep
+	// events exact for that long), so the store records it and a later
+	// change is a definition change of every feature (see ResetFeatures).
+	// Default: 0.
 	MaxDisorder time.Duration
 
 	// FutureSkew rejects events more than this far ahead of the newest
@@ -139,7 +142,9 @@ type Options struct {
 	// differ from the given one: on Open their state is discarded and
 	// starts empty, and Notices says a backfill is needed. A changed, new
 	// or removed feature that is not listed makes Open fail with
-	// ErrDefinitionChanged. Default: none.
+	// ErrDefinitionChanged; a changed MaxDisorder changes every feature.
+	// A name that is neither a feature of the spec nor a stored one makes
+	// Open fail with ErrUnknownFeature. Default: none.
 	ResetFeatures []string
 
 	// ItemKey is the 16-byte key Feature.Item values are hashed with
