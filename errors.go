@@ -66,10 +66,12 @@ var (
 	// ErrDefinitionChanged is wrapped by the error Open returns when a
 	// stored feature definition differs from the one given.
 	ErrDefinitionChanged = errors.New("tallyward: feature definition changed")
-	// ErrReentered is returned by a call into a pipeline (or its Live)
-	// made from inside Spec.Emit or Spec.OnLate: the pipeline is in the
-	// middle of an event, and the row being emitted would be overwritten
-	// (or, under Live, the call would wait for itself). Nothing is changed.
+	// ErrReentered is returned by a call into a pipeline made from inside
+	// one of its callbacks (Spec.Emit, Spec.OnLate, or the spec's Time,
+	// Key, Where, Value and Item functions), and by a call into a Live made
+	// from inside Spec.Emit or Spec.OnLate: the pipeline is in the middle
+	// of an event, whose inputs or row would be overwritten (under Live,
+	// the call would wait for itself). Nothing is changed.
 	ErrReentered = errors.New("tallyward: called from inside Spec.Emit or Spec.OnLate")
 	// ErrUnknownFeature is wrapped by the error Open returns when
 	// Options.ResetFeatures names no feature, given or stored.

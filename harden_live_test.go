@@ -83,6 +83,25 @@ func TestEmitReentryIsRefused(t *testing.T) {
 	}
 	require.Equal(t, want.Stats().Applied, p.Stats().Applied)
 
+	// So are the spec's functions: a Key that processes another event.
+	var r *Pipeline[login]
+	var keyErr error
+	keySpec := loginSpec(nil)
+	keySpec.Entities[0].Key = func(e login) string {
+		if e.Addr == "x" {
+			keyErr = r.Process(login{T: e.T, Account: "inner", Addr: "y"})
+		}
+		return e.Addr
+	}
+	r = openTest(t, keySpec, Options{})
+	got, err := r.Score(login{T: t0, Account: "a", Addr: "x"}, nil)
+	require.NoError(t, err)
+	require.ErrorIs(t, keyErr, ErrReentered)
+	clean, err := openTest(t, loginSpec(nil), Options{}).Score(login{T: t0, Account: "a", Addr: "x"}, nil)
+	require.NoError(t, err)
+	require.Equal(t, clean, got)
+	require.Equal(t, uint64(1), r.Stats().Events)
+
 	// OnLate is a callback too.
 	var q *Pipeline[login]
 	lateSpec := loginSpec(nil)

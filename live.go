@@ -36,7 +36,9 @@ type Live[E any] struct {
 // call back into this Live (or into the pipeline) from inside them returns
 // ErrReentered instead of deadlocking; reading Stats is the exception and
 // is allowed. If rows must cause events, hand them to another goroutine
-// and do not wait for it inside the callback.
+// and do not wait for it inside the callback. The spec's other functions
+// (Time, Key, Where, Value, Item) must not call into the Live at all: the
+// call would wait for itself.
 func NewLive[E any](p *Pipeline[E], clock Clock) *Live[E] {
 	l := &Live[E]{p: p, clock: clock, next: p.seen}
 	l.turn = sync.NewCond(&l.mu)

@@ -75,6 +75,7 @@ type Pipeline[E any] struct {
 	// the row being emitted. Atomic because Live reads it from goroutines
 	// waiting for the lock.
 	emitting atomic.Bool
+	inEvent  bool     // process is running (same goroutine only)
 	err      error    // sticky storage error
 	notices  []string // what Open did beyond the usual (resets)
 }
@@ -226,7 +227,7 @@ func (p *Pipeline[E]) Score(e E, dst []float64) ([]float64, error) {
 
 func (p *Pipeline[E]) usable() error {
 	switch {
-	case p.emitting.Load():
+	case p.inEvent || p.emitting.Load():
 		return ErrReentered
 	case p.closed:
 		return ErrClosed
@@ -241,6 +242,11 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if err := p.usable(); err != nil {
 		return dst, err
 	}
+	// The spec's functions (Time, Key, Where, Value, Item) run inside
+	// this call too; one calling back in would overwrite the event being
+	// extracted.
+	p.inEvent = true
+	defer func() { p.inEvent = false }()
 	seq := p.seen
 	p.seen++
 	if seq < p.reread {
@@ -654,7 +660,7 @@ func (p *Pipeline[E]) Close() error {
 	if p.closed {
 		return nil
 	}
-	if p.emitting.Load() {
+	if p.inEvent || p.emitting.Load() {
 		return ErrReentered
 	}
 	var err error
