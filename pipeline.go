@@ -297,7 +297,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
-		if err := p.Commit(nil); err != nil {
+		if err := p.commit(nil); err != nil {
 			return dst, err
 		}
 	}
@@ -617,6 +617,12 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	return p.commit(cursor)
+}
+
+// commit is Commit without the re-entry check, for the automatic commit
+// inside process.
+func (p *Pipeline[E]) commit(cursor []byte) error {
 	began := p.opts.MetricsClock.Now()
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
