@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"math"
+	"math/rand/v2"
 	"slices"
 	"testing"
 	"time"
@@ -142,39 +143,46 @@ func TestProgressRecordStaysBounded(t *testing.T) {
 
 // Re-reading after a restart judges future-time rejections exactly as the
 // first time, from the newest time at the resume point rather than a
-// list: rows and counters equal an uninterrupted run.
+// list: rows and counters equal an uninterrupted run, over seeded streams
+// and restart points.
 func TestRestartRejudgesFutureEventsExactly(t *testing.T) {
-	evs := genLogins(9, 6_000, 300, 100, 2*time.Second)
-	// Every fifth event lies just beyond FutureSkew of the newest time.
-	// The re-read stretch (MaxDisorder) is long enough for the newest time
-	// to overtake them, so judging them by the final newest time would
-	// accept them.
-	for i := 100; i < len(evs); i += 5 {
-		evs[i].T += int64(65 * time.Second)
+	seeds, n := 4, 6_000
+	if testing.Short() {
+		seeds, n = 2, 3_000
 	}
-	opts := Options{Mode: Settled, MaxDisorder: 2 * time.Minute, FutureSkew: time.Minute, CommitEvery: -1}
-	want := newRowLog()
-	ref := openTest(t, richSpec(want.add), opts)
-	require.NoError(t, ref.Replay(context.Background(), slice(evs)))
-	require.Positive(t, ref.Stats().Rejected[FutureTime])
+	for seed := range uint64(seeds) {
+		r := rand.New(rand.NewPCG(seed, 77))
+		evs := genLogins(9+seed, n, 300, 100, 2*time.Second)
+		// Some events lie just beyond FutureSkew of the newest time. The
+		// re-read stretch (MaxDisorder) is long enough for the newest
+		// time to overtake them, so judging them by the final newest time
+		// would accept them.
+		for i := 100; i < len(evs); i += 2 + r.IntN(8) {
+			evs[i].T += int64(60*time.Second) + r.Int64N(int64(10*time.Second))
+		}
+		opts := Options{Mode: Settled, MaxDisorder: 2 * time.Minute, FutureSkew: time.Minute, CommitEvery: -1}
+		want := newRowLog()
+		ref := openTest(t, richSpec(want.add), opts)
+		require.NoError(t, ref.Replay(context.Background(), slice(evs)))
+		require.Positive(t, ref.Stats().Rejected[FutureTime])
 
-	dir := t.TempDir()
-	opts.Dir = dir
-	got := newRowLog()
-	p := openTest(t, richSpec(got.add), opts)
-	for _, cut := range []int{1_500, 3_100, 4_700} {
-		require.NoError(t, p.Feed(context.Background(), Skip(slice(evs[:cut]), p.ResumeSeq())))
-		require.NoError(t, p.Commit(nil))
-		require.Less(t, p.ResumeSeq(), uint64(cut), "held events are re-read")
-		require.NoError(t, p.Close())
-		p = openTest(t, richSpec(got.add), opts)
+		opts.Dir = t.TempDir()
+		got := newRowLog()
+		p := openTest(t, richSpec(got.add), opts)
+		for cut := 500 + r.IntN(1_000); cut < len(evs); cut += 500 + r.IntN(1_500) {
+			require.NoError(t, p.Feed(context.Background(), Skip(slice(evs[:cut]), p.ResumeSeq())))
+			require.NoError(t, p.Commit(nil))
+			require.Less(t, p.ResumeSeq(), uint64(cut), "held events are re-read")
+			require.NoError(t, p.Close())
+			p = openTest(t, richSpec(got.add), opts)
+		}
+		require.NoError(t, p.Replay(context.Background(), Skip(slice(evs), p.ResumeSeq())))
+		require.Equal(t, want.rows, got.rows, "seed %d", seed)
+		rs, gs := ref.Stats(), p.Stats()
+		require.Equal(t, rs.Rejected, gs.Rejected, "seed %d", seed)
+		require.Equal(t, rs.Applied, gs.Applied, "seed %d", seed)
+		require.Equal(t, rs.Late, gs.Late, "seed %d", seed)
 	}
-	require.NoError(t, p.Replay(context.Background(), Skip(slice(evs), p.ResumeSeq())))
-	require.Equal(t, want.rows, got.rows)
-	rs, gs := ref.Stats(), p.Stats()
-	require.Equal(t, rs.Rejected, gs.Rejected)
-	require.Equal(t, rs.Applied, gs.Applied)
-	require.Equal(t, rs.Late, gs.Late)
 }
 
 // An event the live clock rejected (and the newest time alone would have
