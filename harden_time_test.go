@@ -158,7 +158,7 @@ func TestRestartRejudgesFutureEventsExactly(t *testing.T) {
 		// time to overtake them, so judging them by the final newest time
 		// would accept them.
 		for i := 100; i < len(evs); i += 2 + r.IntN(8) {
-			evs[i].T += int64(60*time.Second) + r.Int64N(int64(10*time.Second))
+			evs[i].T += int64(62*time.Second) + r.Int64N(int64(8*time.Second))
 		}
 		opts := Options{Mode: Settled, MaxDisorder: 2 * time.Minute, FutureSkew: time.Minute, CommitEvery: -1}
 		want := newRowLog()
