@@ -109,6 +109,13 @@ func TestSipHashPublishedVectors(t *testing.T) {
 	}
 	require.Equal(t, uint64(0xa129ca6149be45e5), sipHash24(k0, k1, string(msg)))
 	require.Equal(t, uint64(0x726fdb47dd0e0e31), sipHash24(k0, k1, ""))
+
+	// The stored forms of the item hashing are a persisted format.
+	require.Equal(t, "xxh64", (&itemHashing{}).describe())
+	stored := newItemHashing([]byte("0123456789abcdef"), false)
+	require.Equal(t, "siphash-2-4 key=30313233343536373839616263646566", stored.describe())
+	external := newItemHashing([]byte("0123456789abcdef"), true)
+	require.Regexp(t, `^siphash-2-4 check=[0-9a-f]{32}$`, external.describe())
 }
 
 // itemSpec keeps item hashes of e-mail addresses in device records.
