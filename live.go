@@ -3,8 +3,8 @@ package tallyward
 import (
 	"context"
 	"fmt"
+	"reflect"
 	"runtime"
-	"strings"
 	"sync"
 	"time"
 
@@ -229,6 +229,9 @@ func (l *Live[E]) lock() error {
 	return nil
 }
 
+// runCallbackName is runCallback's symbol name, whatever the module path.
+var runCallbackName = runtime.FuncForPC(reflect.ValueOf(runCallback).Pointer()).Name()
+
 // calledFromEmit reports whether the calling goroutine's stack contains
 // runCallback, the frame through which the pipeline calls user callbacks.
 func calledFromEmit() bool {
@@ -244,7 +247,7 @@ func calledFromEmit() bool {
 	frames := runtime.CallersFrames(pcs)
 	for {
 		f, more := frames.Next()
-		if strings.HasSuffix(f.Function, "/tallyward.runCallback") {
+		if f.Function == runCallbackName {
 			return true
 		}
 		if !more {
