@@ -44,7 +44,7 @@ var (
 // hold: Pebble's files and this package's commit staging tables.
 func storeFileName(name string) bool {
 	switch {
-	case name == "LOCK" || name == "CURRENT":
+	case name == "LOCK" || name == "CURRENT" || name == closedFile:
 		return true
 	case strings.HasPrefix(name, "MANIFEST-"), strings.HasPrefix(name, "OPTIONS-"),
 		strings.HasPrefix(name, "marker."), strings.HasPrefix(name, "commit-"):
@@ -70,6 +70,7 @@ type inspection struct {
 	notices  []string // warnings for the caller
 	rollback bool     // the newest log ends in damage: earlier commits only
 	lock     *pebble.Lock
+	options  string // the newest OPTIONS file, if any
 }
 
 // inspect checks dir before Pebble opens it, holding the directory lock
@@ -130,7 +131,8 @@ func inspect(fs vfs.FS, dir string, readOnly bool) (in inspection, err error) {
 		return in, nil
 	}
 	in.exists = true
-	if off, size, err := readLog(fs, desc.ManifestFilename, 0); err != nil {
+	in.options = desc.OptionsFilename
+	if off, size, err := readLog(fs, desc.ManifestFilename, 0, false); err != nil {
 		msg := fmt.Errorf("%w: %s is unreadable from byte %d of %d (%v): the tables listed after it would be lost; open read-only to inspect or salvage",
 			ErrDamaged, desc.ManifestFilename, off, size, err)
 		if !readOnly {
@@ -152,14 +154,28 @@ func inspect(fs vfs.FS, dir string, readOnly bool) (in inspection, err error) {
 			}
 		}
 	}
+	closed, closedOK := readClosed(fs, dir)
 	if len(logs) > 0 {
 		newest := slices.Max(logs)
 		name := fs.PathJoin(dir, fmt.Sprintf("%06d.log", newest))
-		if off, size, err := readLog(fs, name, newest); err != nil {
+		// After a clean Close the log must read to its end exactly; after
+		// a crash a torn last record is the commit the crash interrupted.
+		strict := closedOK && closed.log == fs.PathBase(name)
+		off, size, err := readLog(fs, name, newest, strict)
+		if err == nil && strict && size < closed.size {
+			off, err = size, fmt.Errorf("the log is %d bytes shorter than when the store was closed", closed.size-size)
+		}
+		if err != nil {
 			in.rollback = true
 			in.notices = append(in.notices, fmt.Sprintf(
 				"the write-ahead log %s is damaged from byte %d of %d (%v): the store was rolled back to the last commit before the damage; the source resumes from there",
 				name, off, size, err))
+		}
+	}
+	if closedOK && !readOnly {
+		// From now on a crash can legitimately tear the log's tail.
+		if err := fs.Remove(fs.PathJoin(dir, closedFile)); err != nil {
+			return in, fmt.Errorf("state: open %q: %w", dir, err)
 		}
 	}
 	if !readOnly && logBytes > 0 {
@@ -186,10 +202,11 @@ func lockError(dir string, err error) error {
 
 // readLog reads every record of a Pebble record file (a MANIFEST, or the
 // write-ahead log numbered logNum) and reports where it stopped if it did
-// not end cleanly. A file that ends with a torn last record (a crash in the
-// middle of appending it) ends cleanly: that record was never
-// acknowledged.
-func readLog(fs vfs.FS, name string, logNum uint64) (off, size int64, err error) {
+// not end cleanly. Unless strict, a file that ends with a torn last record
+// (a crash in the middle of appending it) ends cleanly: that record was
+// never acknowledged. Preallocated zeros after the last record always end
+// a file cleanly.
+func readLog(fs vfs.FS, name string, logNum uint64, strict bool) (off, size int64, err error) {
 	f, err := fs.Open(name)
 	if err != nil {
 		return 0, 0, err
@@ -213,29 +230,43 @@ func readLog(fs vfs.FS, name string, logNum uint64) (off, size int64, err error)
 		if err == io.EOF {
 			return off, size, nil
 		}
-		if record.IsInvalidRecord(err) && torn(f, off, size) {
-			return off, size, nil
+		if record.IsInvalidRecord(err) {
+			switch tail(f, off, size) {
+			case tailZeros:
+				return off, size, nil
+			case tailTorn:
+				if !strict {
+					return off, size, nil
+				}
+				err = fmt.Errorf("the last record runs past the end of the file")
+			}
 		}
 		return off, size, err
 	}
 }
 
-// torn reports whether the record at off is the unfinished tail a crash
-// leaves: its first chunk runs past the end of the file, or only zeros
-// (preallocated space) follow. A complete chunk that fails its checksum
-// is damage. Chunk headers: checksum (4), length (2, little-endian),
-// type (1), then a 4-byte log number for types 5-8 and 12 bytes more for
-// types 9-12.
-func torn(f vfs.File, off, size int64) bool {
+const (
+	tailDamaged = iota // a complete chunk that fails its checksum
+	tailTorn           // the first chunk runs past the end of the file
+	tailZeros          // only zeros (preallocated space) from here on
+)
+
+// tail classifies where a record file stopped being readable. Chunk
+// headers: checksum (4), length (2, little-endian), type (1), then a
+// 4-byte log number for types 5-8 and 12 bytes more for types 9-12.
+func tail(f vfs.File, off, size int64) int {
 	var hdr [7]byte
 	if off+int64(len(hdr)) > size {
-		return true
+		return tailTorn
 	}
 	if _, err := f.ReadAt(hdr[:], off); err != nil {
-		return false
+		return tailDamaged
 	}
 	if allZero(hdr[:]) {
-		return zeroFrom(f, off, size)
+		if zeroFrom(f, off, size) {
+			return tailZeros
+		}
+		return tailDamaged
 	}
 	var hs int64
 	switch t := hdr[6]; {
@@ -246,9 +277,12 @@ func torn(f vfs.File, off, size int64) bool {
 	case t >= 9 && t <= 12:
 		hs = 19
 	default:
-		return false
+		return tailDamaged
 	}
-	return off+hs+int64(binary.LittleEndian.Uint16(hdr[4:6])) > size
+	if off+hs+int64(binary.LittleEndian.Uint16(hdr[4:6])) > size {
+		return tailTorn
+	}
+	return tailDamaged
 }
 
 // newRecordReader calls record.NewReader with a log number of the
@@ -300,4 +334,89 @@ func (s *Store) CountRecords() (n int64, err error) {
 		return n, s.fail(fmt.Errorf("state: count records: %w", err))
 	}
 	return n, nil
+}
+
+// closedFile records, after a clean Close, the name and size of the newest
+// write-ahead log: one line "<name> <size>". Open checks the log against
+// it (a torn or short log then is damage, not an interrupted commit) and
+// removes it.
+const closedFile = "CLOSED-CLEANLY"
+
+type closedState struct {
+	log  string
+	size int64
+}
+
+func readClosed(fs vfs.FS, dir string) (closedState, bool) {
+	f, err := fs.Open(fs.PathJoin(dir, closedFile))
+	if err != nil {
+		return closedState{}, false
+	}
+	defer f.Close()
+	b, err := io.ReadAll(io.LimitReader(f, 256))
+	if err != nil {
+		return closedState{}, false
+	}
+	var c closedState
+	if _, err := fmt.Sscanf(string(b), "%s %d\n", &c.log, &c.size); err != nil {
+		return closedState{}, false
+	}
+	return c, true
+}
+
+// writeClosed records the newest log of a store just closed cleanly.
+func writeClosed(fs vfs.FS, dir string) error {
+	ls, err := fs.List(dir)
+	if err != nil {
+		return err
+	}
+	var newest uint64
+	found := false
+	for _, n := range ls {
+		if num, ok := strings.CutSuffix(n, ".log"); ok {
+			if v, err := strconv.ParseUint(num, 10, 64); err == nil && (!found || v > newest) {
+				newest, found = v, true
+			}
+		}
+	}
+	if !found {
+		return nil
+	}
+	name := fmt.Sprintf("%06d.log", newest)
+	st, err := fs.Stat(fs.PathJoin(dir, name))
+	if err != nil {
+		return err
+	}
+	f, err := fs.Create(fs.PathJoin(dir, closedFile), vfs.WriteCategoryUnspecified)
+	if err != nil {
+		return err
+	}
+	_, err = fmt.Fprintf(f, "%s %d\n", name, st.Size())
+	if err == nil {
+		err = f.Sync()
+	}
+	return errors.Join(err, f.Close())
+}
+
+// checkOptions reads the store's OPTIONS file and checks it against the
+// options Pebble is about to open with. The store always uses Pebble's
+// default comparer and merger, so a mismatch means the file is damaged
+// (Pebble's own message would name only the mismatch).
+func checkOptions(fs vfs.FS, dir, name string, popts *pebble.Options) error {
+	if name == "" {
+		return nil
+	}
+	f, err := fs.Open(name)
+	if err != nil {
+		return fmt.Errorf("state: open %q: %w", dir, err)
+	}
+	defer f.Close()
+	b, err := io.ReadAll(f)
+	if err != nil {
+		return fmt.Errorf("state: open %q: %w", dir, err)
+	}
+	if err := popts.CheckCompatibility(dir, string(b)); err != nil {
+		return fmt.Errorf("%w: %s: %v", ErrDamaged, name, err)
+	}
+	return nil
 }

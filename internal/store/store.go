@@ -329,11 +329,18 @@ func Open(opts Options) (_ *Store, err error) {
 		popts.Levels[i].FilterPolicy = bloom.FilterPolicy(10)
 	}
 	popts.EnsureDefaults()
+	if err := checkOptions(fs, dir, in.options, popts); err != nil {
+		if in.lock != nil {
+			in.lock.Close()
+		}
+		cache.Unref()
+		return nil, err
+	}
 	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes},
 		notices: in.notices, rollback: in.rollback}
 	defer func() {
 		if err != nil {
-			s.release()
+			s.release(nil)
 		}
 	}()
 	s.db, err = s.openDB(cache)
@@ -417,8 +424,9 @@ func (s *Store) RolledBack() bool { return s.rollback }
 func (s *Store) ReadOnly() bool { return s.opts.ReadOnly }
 
 // release frees what Open or Close holds: the database unless it was
-// abandoned, then the directory lock.
-func (s *Store) release() error {
+// abandoned, then the directory lock. after, if set, runs between the two
+// when the database closed without error.
+func (s *Store) release(after func() error) error {
 	var err error
 	if s.pending != nil {
 		s.pending.Close()
@@ -426,6 +434,9 @@ func (s *Store) release() error {
 	}
 	if s.db != nil && !s.abandoned {
 		err = s.db.Close()
+		if err == nil && after != nil {
+			err = after()
+		}
 	}
 	s.db = nil
 	if s.lock != nil {
@@ -659,10 +670,15 @@ func (s *Store) Close() (err error) {
 	if !s.abandoned && !s.opts.ReadOnly {
 		keep = s.db.Metrics().WAL.Files
 	}
-	err = s.release()
-	if err == nil && keep > 0 {
-		err = removeSpareLogs(s.fs, s.dir, int(keep))
-	}
+	err = s.release(func() error {
+		if keep < 0 || s.err != nil {
+			return nil
+		}
+		if err := removeSpareLogs(s.fs, s.dir, int(keep)); err != nil {
+			return err
+		}
+		return writeClosed(s.fs, s.dir)
+	})
 	if s.err != nil {
 		err = errors.Join(s.err, err)
 	}
