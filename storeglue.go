@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"errors"
 	"fmt"
 
 	"github.com/tallyward/tallyward/internal/store"
@@ -61,6 +62,26 @@ func (p *Pipeline[E]) checkStored() error {
 	}
 	if n != p.c.live {
 		return p.store.Damaged(fmt.Sprintf("the last commit recorded %d entity records, %d are readable", p.c.live, n))
+	}
+	return nil
+}
+
+// Compact rewrites the whole store into its last level and starts a new
+// write-ahead log, so that erased and expired records and their deletion
+// markers leave its files. After Erase, Compact and Close, no file in
+// Options.Dir holds the erased key's bytes (files are deleted, not
+// overwritten: the filesystem may keep freed blocks). It costs a read and
+// write of the whole store and stalls the caller meanwhile; run it after
+// erasures, not routinely.
+func (p *Pipeline[E]) Compact() error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	if err := p.store.Compact(); err != nil && !errors.Is(err, store.ErrReadOnly) {
+		p.err = err
+		return err
+	} else if err != nil {
+		return err
 	}
 	return nil
 }

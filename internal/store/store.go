@@ -2,6 +2,7 @@ package store
 
 import (
 	"bytes"
+	"context"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -322,6 +323,14 @@ func Open(opts Options) (_ *Store, err error) {
 		MemTableStopWritesThreshold: 4,
 		L0CompactionThreshold:       4,
 		L0StopWritesThreshold:       24,
+		// Table bounds are keys, and every MANIFEST edit keeps the bounds
+		// of the tables it adds until the MANIFEST is rewritten as a
+		// snapshot of the live tables. The smallest size threshold makes
+		// Pebble rewrite it whenever the edits since the last snapshot
+		// name more tables than the snapshot (or the store) holds, so a
+		// deleted key's bounds leave the MANIFEST soon after the tables
+		// holding it are compacted away (see Compact).
+		MaxManifestFileSize: 1,
 	}
 	// A lookup of an entity never seen before is common; bloom filters on
 	// every level make it cheap.
@@ -677,12 +686,37 @@ func (s *Store) Close() (err error) {
 		if err := removeSpareLogs(s.fs, s.dir, int(keep)); err != nil {
 			return err
 		}
+		if err := removeOldManifests(s.fs, s.dir); err != nil {
+			return err
+		}
 		return writeClosed(s.fs, s.dir)
 	})
 	if s.err != nil {
 		err = errors.Join(s.err, err)
 	}
 	return err
+}
+
+// removeOldManifests removes the MANIFEST files of a closed store but
+// the current one; Pebble keeps the previous one for debugging, and it
+// names keys.
+func removeOldManifests(fs vfs.FS, dir string) error {
+	desc, err := pebble.Peek(dir, fs)
+	if err != nil || !desc.Exists {
+		return err
+	}
+	ls, err := fs.List(dir)
+	if err != nil {
+		return err
+	}
+	for _, n := range ls {
+		if strings.HasPrefix(n, "MANIFEST-") && fs.PathJoin(dir, n) != desc.ManifestFilename {
+			if err := fs.Remove(fs.PathJoin(dir, n)); err != nil {
+				return err
+			}
+		}
+	}
+	return nil
 }
 
 // removeSpareLogs removes every write-ahead log of a closed store but the
@@ -705,6 +739,33 @@ func removeSpareLogs(fs vfs.FS, dir string, keep int) error {
 		if err := fs.Remove(fs.PathJoin(dir, fmt.Sprintf("%06d.log", n))); err != nil {
 			return err
 		}
+	}
+	return nil
+}
+
+// Compact flushes the memtable (starting a new write-ahead log) and
+// compacts every table into the last level, so that deleted records and
+// their deletion markers leave the store's files: with Close, which
+// removes the logs Pebble keeps for reuse, it is what makes a deletion
+// leave no trace of the key. It rewrites the whole store.
+func (s *Store) Compact() (err error) {
+	defer s.guard(&err)
+	if err := s.check(); err != nil {
+		return err
+	}
+	if s.opts.ReadOnly {
+		return ErrReadOnly
+	}
+	if err := s.db.Flush(); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
+	}
+	if err := s.db.Compact(context.Background(), []byte{0}, []byte{0xff, 0xff}, true); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
+	}
+	// One more MANIFEST edit after the compaction's: it starts a MANIFEST
+	// whose snapshot lists only the compacted tables.
+	if err := s.db.Flush(); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
 	}
 	return nil
 }
