@@ -181,7 +181,7 @@ func inspect(fs vfs.FS, dir string, readOnly bool) (in inspection, err error) {
 	if !readOnly && logBytes > 0 {
 		// Replaying the log writes its contents as tables, roughly its own
 		// size, plus a new MANIFEST and OPTIONS file.
-		need := uint64(logBytes) + 4<<20
+		need := uint64(logBytes) + 1<<20
 		if du, err := fs.GetDiskUsage(dir); err == nil && du.AvailBytes < need {
 			return in, fmt.Errorf("%w: %q needs about %d bytes free to open (replaying %d bytes of log), %d are free; free some space and reopen",
 				ErrNoSpace, dir, need, logBytes, du.AvailBytes)
