@@ -62,8 +62,11 @@ type Config struct {
 	// events spans several of the kind's windows. Default: 1 s.
 	Spacing time.Duration
 	// MaxDisorder is the pipeline's MaxDisorder, and how far the arrival
-	// order is shuffled. Default: 3·Spacing.
+	// order is shuffled. Default: 3·Spacing (0 under InOrder).
 	MaxDisorder time.Duration
+	// InOrder runs with MaxDisorder 0: events arrive in time order and
+	// the horizon is 1 ns. Default: false.
+	InOrder bool
 	// Keys is the number of entity keys; key k is drawn with weight
 	// 1/(k+1). Default: 4.
 	Keys int
@@ -93,7 +96,7 @@ func (c Config) withDefaults() Config {
 	if c.Spacing == 0 {
 		c.Spacing = time.Second
 	}
-	if c.MaxDisorder == 0 {
+	if c.MaxDisorder == 0 && !c.InOrder {
 		c.MaxDisorder = 3 * c.Spacing
 	}
 	if c.Keys == 0 {
@@ -141,6 +144,9 @@ func (c Config) Validate() error {
 	}
 	if c.MaxDisorder < 0 {
 		errs = append(errs, fmt.Errorf("kindtest: MaxDisorder %v < 0", c.MaxDisorder))
+	}
+	if c.InOrder && c.MaxDisorder != 0 {
+		errs = append(errs, fmt.Errorf("kindtest: InOrder with MaxDisorder %v", c.MaxDisorder))
 	}
 	for name, v := range map[string]int{"Keys": c.Keys, "Events": c.Events, "Streams": c.Streams, "Shuffles": c.Shuffles, "Crashes": c.Crashes} {
 		if v < 0 {

@@ -44,16 +44,17 @@ func failures(r *rand.Rand) float64 {
 
 func TestFailStreakPassesHarness(t *testing.T) {
 	// The default disorder (3 s on 1 s spacing) folds events soon after
-	// they arrive; a wide disorder keeps long raw tails and many ties
-	// within them.
-	for _, d := range []time.Duration{3 * time.Second, 30 * time.Second} {
-		t.Run("disorder-"+d.String(), func(t *testing.T) {
-			kindtest.Run(t, kindtest.Config{
-				Kind:        FailStreak{},
-				Reference:   streakReference,
-				Value:       failures,
-				MaxDisorder: d,
-			})
+	// they arrive; a wide disorder keeps long raw tails with many ties in
+	// them; in order, the horizon is 1 ns and every older event is folded
+	// at once.
+	for name, c := range map[string]kindtest.Config{
+		"disorder-3s":  {},
+		"disorder-30s": {MaxDisorder: 30 * time.Second},
+		"in-order":     {InOrder: true},
+	} {
+		t.Run(name, func(t *testing.T) {
+			c.Kind, c.Reference, c.Value = FailStreak{}, streakReference, failures
+			kindtest.Run(t, c)
 		})
 	}
 }
