@@ -68,6 +68,36 @@ func TestBuiltinKindsPassHarness(t *testing.T) {
 				return s
 			},
 		}},
+		{"SlidingMax", kindtest.Config{
+			Kind: tallyward.SlidingMax{Window: win, Resolution: res},
+			Reference: func(past []kindtest.Event, q int64, _ kindtest.Event) float64 {
+				m := math.NaN() // empty window
+				for _, e := range past {
+					if inPanes(e.Time, q, win, res) && !(e.Value <= m) {
+						m = e.Value
+					}
+				}
+				return m
+			},
+		}},
+		{"Velocity", kindtest.Config{
+			Kind:      tallyward.Velocity{Short: 5 * time.Second, Long: 30 * time.Second, Resolution: res},
+			Tolerance: 1e-12,
+			Reference: func(past []kindtest.Event, q int64, _ kindtest.Event) float64 {
+				// (short + α) / (long·Short/Long + α), α = 1 (the
+				// formula on window.Velocity).
+				var short, long float64
+				for _, e := range past {
+					if inPanes(e.Time, q, 5*time.Second, res) {
+						short++
+					}
+					if inPanes(e.Time, q, 30*time.Second, res) {
+						long++
+					}
+				}
+				return (short + 1) / (long*5/30 + 1)
+			},
+		}},
 		{"DecayedCount", kindtest.Config{
 			Kind:      tallyward.Decayed{HalfLife: hl},
 			Tolerance: 1e-9, // float rounding of a sum of exponentials
@@ -148,6 +178,22 @@ func TestBuiltinKindsPassHarness(t *testing.T) {
 					}
 				}
 				return float64(n)
+			},
+		}},
+		{"TopShare", kindtest.Config{
+			// Eight counters for six items: Space-Saving is then exact.
+			Kind: tallyward.TopShare{Capacity: 8},
+			Reference: func(past []kindtest.Event, _ int64, _ kindtest.Event) float64 {
+				if len(past) == 0 {
+					return math.NaN()
+				}
+				counts := map[string]int{}
+				best := 0
+				for _, e := range past {
+					counts[e.Item]++
+					best = max(best, counts[e.Item])
+				}
+				return float64(best) / float64(len(past))
 			},
 		}},
 	}

@@ -61,7 +61,10 @@
 // Pebble stores. The cache is set to a single byte for half the streams,
 // so that every access to another key decodes the stored record: cost
 // grows with the size of the kind's encoding. Config.Events and
-// Config.Streams scale it up for a longer run.
+// Config.Streams scale it up; so does the test flag -kindtest.scale=N,
+// which multiplies both for every Config without editing tests:
+//
+//	go test ./mykind/ -run TestMyKind -kindtest.scale=10
 //
 // # Reading a failure
 //

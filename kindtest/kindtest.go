@@ -2,6 +2,7 @@ package kindtest
 
 import (
 	"errors"
+	"flag"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -85,6 +86,10 @@ type Config struct {
 	Seed uint64
 }
 
+// scale multiplies every run's size, for a longer run from the command
+// line without editing tests.
+var scale = flag.Int("kindtest.scale", 1, "multiply kindtest's Events and Streams by this")
+
 // withDefaults returns c with zero fields set to their defaults.
 func (c Config) withDefaults() Config {
 	if c.Value == nil {
@@ -119,6 +124,10 @@ func (c Config) withDefaults() Config {
 	}
 	if c.Seed == 0 {
 		c.Seed = 1
+	}
+	if *scale > 1 {
+		c.Events *= *scale
+		c.Streams *= *scale
 	}
 	return c
 }
