@@ -361,7 +361,7 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 			}
 			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
 			p.c.live++
-		} else if es.expired(sl.Value, p.expiryClock()) {
+		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			sl.Value.aggs = es.fresh()
 		}
 		rec := sl.Value
@@ -400,7 +400,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			aggs = recs[i].aggs
 		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		} else if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
+		} else if sl != nil && !es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			aggs = sl.Value.aggs
 		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
 			for j := range es.kinds {
@@ -468,6 +468,15 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	}
 	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
+
+// expiryClockAt is the expiry clock for an event at t. A Settled event
+// is applied and answered once the watermark has passed it, possibly far
+// past it after a quiet spell; judged by the current clock, its entity
+// could read as expired although nothing within reach of t had aged out.
+// Judging it at t at the latest keeps its answer as of its own time, and
+// agrees with every sweep: held events are never below the data watermark
+// a commit sweeps by. For Eager events t is at least the clock.
+func (p *Pipeline[E]) expiryClockAt(t int64) int64 { return min(p.expiryClock(), t) }
 
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below
