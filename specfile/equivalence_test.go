@@ -97,7 +97,9 @@ func randomPayEvents(rng *rand.Rand, n int) []payEvent {
 	return evs
 }
 
-func itoa(i int) string { return string(rune('a'+i%26)) + string(rune('a'+i/26%26)) + string(rune('0'+i/676)) }
+func itoa(i int) string {
+	return string(rune('a'+i%26)) + string(rune('a'+i/26%26)) + string(rune('0'+i/676))
+}
 
 type rowCopy struct {
 	seq  uint64
