@@ -54,6 +54,8 @@ type Pipeline[E any] struct {
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
+	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
+	beforeCommit func(CommitPoint) ([]byte, error)
 }
 
 type entityState[E any] struct {
@@ -521,6 +523,9 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	if err := p.runCommitHook(&m); err != nil {
+		return err
+	}
 	n, err := p.store.Sweep(p.expiryClock())
 	if err != nil {
 		p.err = err
