@@ -48,6 +48,11 @@ import (
 // state; an entity idle that long then reads as new, with no streak).
 type FailStreak struct{}
 
+var (
+	_ tallyward.Kind      = FailStreak{}
+	_ tallyward.Aggregate = (*FailStreakState)(nil)
+)
+
 // Describe implements tallyward.Kind. The kind has no parameters; the
 // name is its identity in stored state.
 func (FailStreak) Describe() string { return "example.fail-streak" }
