@@ -502,6 +502,11 @@ func checkState(t tb, c *Config, where string, a tallyward.Aggregate, asked int6
 	for _, cut := range cuts(len(b), r) {
 		refuse(fmt.Sprintf("a truncation to %d of %d bytes", cut, len(b)), b[:cut:cut])
 	}
+	// A version this build cannot know: 255 (254 for a kind whose
+	// version is 255).
+	unknown := slices.Clone(b)
+	unknown[0] = 255 - b[0]/255
+	refuse("an unknown version byte", unknown)
 	refuse("a trailing zero byte", append(slices.Clip(b), 0))
 	refuse("a trailing 0xff byte", append(slices.Clip(b), 0xff))
 }

@@ -48,8 +48,9 @@
 //     non-empty buffer, SizeBytes is positive, the bytes decode into a
 //     fresh aggregate that re-encodes to the same bytes and answers the
 //     same as-of values and Newest, and the decoder rejects truncations
-//     (all of them for encodings up to 40 bytes, a seeded sample beyond)
-//     and trailing bytes with an error, without panicking and without
+//     (all of them for encodings up to 40 bytes, a seeded sample beyond),
+//     trailing bytes and a first byte of 255 (an unknown version) with an
+//     error, without panicking and without
 //     changing the receiver.
 //
 // The kind's rows are never checked against a hand-written expected value:
