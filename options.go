@@ -85,9 +85,10 @@ type Options struct {
 
 	// PastSkew, in live mode, rejects events more than this far behind the
 	// injected clock (reason PastTime): with a correct clock, an event
-	// from years ago is a broken producer, not history. Replay has no
-	// clock and is not affected. Negative disables the check.
-	// Default: 7 days.
+	// from months ago is a broken producer, not history. Longer than the
+	// usual retention of a message log, so a consumer catching up on its
+	// backlog is not refused. Replay has no clock and is not affected.
+	// Negative disables the check. Default: 30 days.
 	PastSkew time.Duration
 
 	// EarliestTime and LatestTime bound plausible event times (Unix
@@ -208,7 +209,7 @@ func (o *Options) EnsureDefaults() {
 		o.FutureSkew = time.Hour
 	}
 	if o.PastSkew == 0 {
-		o.PastSkew = 7 * 24 * time.Hour
+		o.PastSkew = 30 * 24 * time.Hour
 	}
 	if o.EarliestTime == 0 {
 		o.EarliestTime = defaultEarliest
