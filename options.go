@@ -170,15 +170,14 @@ type Options struct {
 
 	// ItemKey is the 16-byte key Feature.Item values are hashed with
 	// (SipHash-2-4), so that the item hashes kept in other entities'
-	// records cannot be tested against candidate items without it; only
-	// a key given here stays out of the store. A new
+	// records cannot be tested against candidate items without it. A new
 	// store made without ItemKey draws a random key and keeps it (its
-	// snapshots carry it; Pipeline.ItemKey returns it); one made with
-	// ItemKey keeps only a check value, and every later Open must pass
-	// the same key. Set it to give two stores the same rows, e.g. a
-	// backfill compared with a live store. A store made before keyed
-	// hashing keeps hashing without a key (Notices says so) and refuses
-	// a key. Default: nil.
+	// snapshots carry it; Pipeline.ItemKey returns it), so whoever holds
+	// the store holds the key; a store made with ItemKey keeps only a
+	// check value, and every later Open must pass the same key. Set it
+	// also to give two stores the same rows, e.g. a backfill compared
+	// with a live store. A store made before keyed hashing keeps hashing
+	// without a key (Notices says so) and refuses a key. Default: nil.
 	ItemKey []byte
 
 	// UnkeyedItems makes a new store hash items without a key (XXH64),
