@@ -2,6 +2,7 @@ package store
 
 import (
 	"fmt"
+	"slices"
 
 	"github.com/tallyward/tallyward/internal/sat"
 )
@@ -188,6 +189,11 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 	t.knownAbsent = false
 	t.drop(victim)
 	t.evictions++
+	// Dropped slots stay in t.dirty until the next commit; once they are
+	// most of it, filter them out so that memory follows the budget.
+	if len(t.dirty) > 1024 && len(t.dirty) > 2*len(t.slots) {
+		t.dirty = slices.DeleteFunc(t.dirty, func(sl *Slot[V]) bool { return !sl.dirty })
+	}
 	return nil
 }
 
@@ -202,6 +208,10 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 	delete(t.m, sl.Key)
 	t.store.budget.used -= int64(sl.size)
 	sl.size = 0
+	// The slot may stay referenced (t.dirty until the next commit, a
+	// caller's variable); its value must not.
+	var zero V
+	sl.Value = zero
 }
 
 // stage writes sl's record, and moves its expiry index entry if its
