@@ -4,6 +4,7 @@ import (
 	"errors"
 	"math"
 	"slices"
+	"time"
 
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/sat"
@@ -53,6 +54,8 @@ type Pipeline[E any] struct {
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
+	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
+	beforeCommit func(CommitPoint) ([]byte, error)
 }
 
 type entityState[E any] struct {
@@ -60,7 +63,7 @@ type entityState[E any] struct {
 	table   *store.Table[*record]
 	kinds   []Kind
 	first   int         // index of the entity's first feature in a row
-	zero    []aggregate // empty aggregates, to answer for unseen keys
+	zero    []Aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
 	ttl     int64 // records idle this long (by the watermark) expire; 0 never
 }
@@ -72,10 +75,10 @@ func (es *entityState[E]) expired(rec *record, w int64) bool {
 	return es.ttl > 0 && sat.Add(rec.last, es.ttl) <= w
 }
 
-func (es *entityState[E]) fresh() []aggregate {
-	aggs := make([]aggregate, len(es.kinds))
+func (es *entityState[E]) fresh() []Aggregate {
+	aggs := make([]Aggregate, len(es.kinds))
 	for i, k := range es.kinds {
-		aggs[i] = k.newAggregate(es.horizon)
+		aggs[i] = k.NewAggregate(time.Duration(es.horizon))
 	}
 	return aggs
 }
@@ -325,8 +328,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 			if !on {
 				continue
 			}
-			switch f.Kind.input() {
-			case inputValue:
+			if f.Kind.Inputs()&TakesValue != 0 {
 				v := 1.0
 				if f.Value != nil {
 					v = f.Value(e)
@@ -361,13 +363,13 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 			}
 			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
 			p.c.live++
-		} else if es.expired(sl.Value, p.expiryClock()) {
+		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			sl.Value.aggs = es.fresh()
 		}
 		rec := sl.Value
 		for j, a := range rec.aggs {
 			fi := es.first + j
-			if in.on[fi] && !a.add(in.t, in.v[fi], in.item[fi]) {
+			if in.on[fi] && !a.Add(in.t, in.v[fi], in.item[fi]) {
 				p.c.tooOld++
 			}
 		}
@@ -400,7 +402,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			aggs = recs[i].aggs
 		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		} else if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
+		} else if sl != nil && !es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			aggs = sl.Value.aggs
 		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
 			for j := range es.kinds {
@@ -413,7 +415,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			if es.ent.Features[j].BeforeEvent {
 				t--
 			}
-			out[es.first+j] = a.at(t, in.item[es.first+j])
+			out[es.first+j] = a.At(t, in.item[es.first+j])
 		}
 	}
 }
@@ -469,6 +471,15 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
 
+// expiryClockAt is the expiry clock for an event at t. A Settled event
+// is applied and answered once the watermark has passed it, possibly far
+// past it after a quiet spell; judged by the current clock, its entity
+// could read as expired although nothing within reach of t had aged out.
+// Judging it at t at the latest keeps its answer as of its own time, and
+// agrees with every sweep: held events are never below the data watermark
+// a commit sweeps by. For Eager events t is at least the clock.
+func (p *Pipeline[E]) expiryClockAt(t int64) int64 { return min(p.expiryClock(), t) }
+
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below
 // the new watermark become late.
@@ -512,6 +523,9 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	if err := p.runCommitHook(&m); err != nil {
+		return err
+	}
 	n, err := p.store.Sweep(p.expiryClock())
 	if err != nil {
 		p.err = err
