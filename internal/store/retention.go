@@ -221,7 +221,8 @@ func (t *Table[V]) loadLast(entity string) (last int64, found bool, err error) {
 // RebuildExpiry rewrites this table's expiry index entries from its
 // records, for a store whose ttl changed. It stages the writes for the
 // next commit and visits every record of the table.
-func (t *Table[V]) RebuildExpiry() error {
+func (t *Table[V]) RebuildExpiry() (err error) {
+	defer t.store.guard(&err)
 	if err := t.store.check(); err != nil {
 		return err
 	}
@@ -265,7 +266,8 @@ func (t *Table[V]) RebuildExpiry() error {
 // Rewrite passes every stored record of the table to fn and stages what fn
 // returns in its place (nil deletes the record). It is for definition
 // changes at open; cached entries must not be dirty.
-func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) error {
+func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (err error) {
+	defer t.store.guard(&err)
 	lower := RecordKey(nil, t.name, "")
 	upper := prefixEnd(lower)
 	b := t.store.pending

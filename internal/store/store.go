@@ -201,14 +201,17 @@ func (l *logger) corruption(info pebble.DataCorruptionInfo) {
 	l.stop(fmt.Errorf("%w: %s: %v", ErrDamaged, info.Path, info.Details))
 }
 
-// inStoreCall reports whether the current goroutine is inside a call of
-// this package (and so under a guard). Only Fatalf asks, which is rare.
+// inStoreCall reports whether the current goroutine is inside a method of
+// a Store or Table (and so under a guard). Only Fatalf asks, which is
+// rare.
 func inStoreCall() bool {
 	buf := make([]byte, 64<<10)
 	buf = buf[:runtime.Stack(buf, false)]
 	for line := range bytes.Lines(buf) {
-		if bytes.Contains(line, []byte("tallyward/internal/store.")) && !bytes.Contains(line, []byte("store.(*logger)")) &&
-			!bytes.HasPrefix(line, []byte("created by")) {
+		if bytes.HasPrefix(line, []byte("created by")) {
+			continue
+		}
+		if bytes.Contains(line, []byte("tallyward/internal/store.(*Store).")) || bytes.Contains(line, []byte("tallyward/internal/store.(*Table[")) {
 			return true
 		}
 	}
@@ -529,7 +532,8 @@ func (s *Store) empty(prefix []byte) bool {
 }
 
 // Definitions returns the stored definition fingerprints by name.
-func (s *Store) Definitions() (map[string][]byte, error) {
+func (s *Store) Definitions() (_ map[string][]byte, err error) {
+	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return nil, err
 	}
