@@ -220,6 +220,9 @@ func TestLockedByAnotherProcess(t *testing.T) {
 	if !strings.Contains(err.Error(), "another process") {
 		t.Fatalf("message does not name another process: %v", err)
 	}
+	if _, err := Open(Options{Dir: dir, ReadOnly: true}); !errors.Is(err, ErrLocked) {
+		t.Fatalf("read-only open of a store another process holds: %v", err)
+	}
 }
 
 // Erase's promise at the store level: after a key's record is deleted

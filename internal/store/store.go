@@ -403,6 +403,9 @@ func (s *Store) openDB(cache *pebble.Cache) (db *pebble.DB, err error) {
 		if errors.Is(err, syscall.ENOSPC) {
 			return nil, fmt.Errorf("%w: open %q: %w", ErrNoSpace, s.dir, err)
 		}
+		if errors.Is(err, syscall.EAGAIN) {
+			return nil, lockError(s.dir, err)
+		}
 		return nil, fmt.Errorf("state: open %q: %w", s.dir, err)
 	}
 	if e := s.log.bg.Load(); e != nil {
