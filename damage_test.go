@@ -32,8 +32,9 @@ var damageTrials = flag.Int("damage-trials", 0, "byte positions per file type in
 
 // damageStore builds, in dir on disk, the store the damage tests break:
 // one large commit of 20,000 new entities (written as one ingested table),
-// then 50 small commits; after the 25th the memtable is flushed to a
-// table, so the last 25 commits are only in the write-ahead log. Event
+// then 50 small commits; after every fifth of the first 25 the memtable
+// is flushed to a table, so the last 25 commits are only in the
+// write-ahead log. Event
 // times stay within a few minutes: nothing expires. It returns the digest
 // of the stored records after each commit, by the commit's Seen.
 func damageStore(t testing.TB, dir string) map[uint64]string {
@@ -59,7 +60,7 @@ func damageStore(t testing.TB, dir string) map[uint64]string {
 			require.NoError(t, p.Process(login{T: tm, Account: fmt.Sprintf("acct-%05d", i), Addr: "10.2.0.1", OK: true}))
 		}
 		commit()
-		if c == 24 {
+		if c%5 == 4 && c < 25 {
 			require.NoError(t, p.store.DB().Flush())
 		}
 	}
@@ -255,14 +256,18 @@ func TestDamageMatrix(t *testing.T) {
 	require.NoError(t, os.WriteFile(filepath.Join(tmpl, "digests"), []byte(strings.Join(lines, "\n")), 0o644))
 
 	table := map[string]map[string]int{}
+	distinct := map[string]map[string]bool{} // file and byte position per type
 	examples := map[string]string{}
 	var failures []string
 	for _, typ := range damageTypes {
 		table[typ] = map[string]int{}
+		distinct[typ] = map[string]bool{}
 		for from := 0; from < n; {
 			outs, next := runDamageChild(t, tmpl, typ, from, n)
 			for _, o := range outs {
 				table[typ][o.class]++
+				where, _, _ := strings.Cut(o.detail, ":")
+				distinct[typ][where] = true
 				if _, ok := examples[typ+o.class]; !ok {
 					examples[typ+o.class] = o.detail
 				}
@@ -276,6 +281,7 @@ func TestDamageMatrix(t *testing.T) {
 	var b strings.Builder
 	fmt.Fprintf(&b, "outcomes of one flipped byte, %d positions per file type:\n", n)
 	for _, typ := range damageTypes {
+		fmt.Fprintf(&b, "  %-9s (%d distinct file and byte positions)\n", typ, len(distinct[typ]))
 		var classes []string
 		for c := range table[typ] {
 			classes = append(classes, c)
@@ -386,11 +392,20 @@ func TestDamageChild(t *testing.T) {
 	require.NotEmpty(t, files, typ)
 
 	r := rand.New(rand.NewPCG(77, uint64(slices.Index(damageTypes, typ))))
+	// A file smaller than the number of trials has every byte damaged
+	// (in a seeded order, then again with other values).
+	perms := map[string][]int{}
 	for i := range n {
 		name := files[r.IntN(len(files))]
 		st, err := src.Stat(src.PathJoin("db", name))
 		require.NoError(t, err)
 		pos := r.Int64N(st.Size())
+		if st.Size() <= int64(n) {
+			if perms[name] == nil {
+				perms[name] = r.Perm(int(st.Size()))
+			}
+			pos = int64(perms[name][i%len(perms[name])])
+		}
 		flip := byte(1 + r.IntN(255))
 		if i < from {
 			continue

@@ -27,8 +27,10 @@
 // files (ErrNotStore) and a lock held elsewhere (ErrLocked), reads the
 // MANIFEST through (ErrDamaged), checks the OPTIONS file, reads the newest
 // log through (damage there is a rollback, reported by Notices and
-// RolledBack; after a clean Close, which records the log's end, even a torn
-// tail is damage) and checks free space for the log's replay (ErrNoSpace).
+// RolledBack) and checks free space for the log's replay (ErrNoSpace).
+// After a clean Close, which records the sizes of the newest log and the
+// MANIFEST, a torn or short tail in either is damage too; after a crash it
+// is the write the crash interrupted.
 // After Pebble opens, the Mark and the salt, written by the same first
 // commit, must agree; callers compare their own counts with CountRecords.
 // ReadOnly opens a damaged store for inspection: damage becomes notices.
