@@ -406,6 +406,9 @@ func (s *Store) openDB(cache *pebble.Cache) (db *pebble.DB, err error) {
 		if errors.Is(err, syscall.EAGAIN) {
 			return nil, lockError(s.dir, err)
 		}
+		if errors.Is(err, os.ErrNotExist) {
+			return nil, fmt.Errorf("%w: open %q: a file the MANIFEST lists is missing: %w", ErrDamaged, s.dir, err)
+		}
 		return nil, fmt.Errorf("state: open %q: %w", s.dir, err)
 	}
 	if e := s.log.bg.Load(); e != nil {
