@@ -538,3 +538,46 @@ func TestEraseLeavesNoFileBytes(t *testing.T) {
 		})
 	}
 }
+
+// Open on a directory of unrelated files refuses rather than creating a
+// store among them; a second Open of a store in use says it is locked.
+func TestOpenRefusesForeignDirectoryAndSecondOpen(t *testing.T) {
+	dir := t.TempDir()
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "report.csv"), []byte("a,b\n"), 0o644))
+	_, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.ErrorIs(t, err, ErrNotStore)
+	require.ErrorContains(t, err, "report.csv")
+
+	dir = filepath.Join(t.TempDir(), "store")
+	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	_, err = Open(loginSpec(nil), Options{Dir: dir})
+	require.ErrorIs(t, err, ErrStoreLocked)
+	require.NoError(t, p.Close())
+	p, err = Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	require.NoError(t, p.Close())
+}
+
+// Damage in the write-ahead log rolls the store back to the last commit
+// before it. That used to happen without a word; Open now says so in
+// Notices and Stats.RolledBack, and the source resumes from the earlier
+// commit's position.
+func TestLogDamageRollbackIsReported(t *testing.T) {
+	dir := t.TempDir()
+	digests := damageStore(t, dir)
+	log := storeFile(t, dir, "*.log")
+	b, err := os.ReadFile(log)
+	require.NoError(t, err)
+	b[len(b)*2/3] ^= 0x20
+	require.NoError(t, os.WriteFile(log, b, 0o644))
+
+	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	defer p.Close()
+	st := p.Stats()
+	require.True(t, st.RolledBack)
+	require.Contains(t, strings.Join(p.Notices(), "\n"), filepath.Base(log))
+	require.Less(t, p.ResumeSeq(), uint64(20_500))
+	require.Equal(t, digests[p.ResumeSeq()], recordDigest(t, p.store.DB()), "the records of the commit rolled back to")
+}
