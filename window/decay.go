@@ -3,6 +3,9 @@ package window
 import (
 	"math"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // DecaySpec defines exponentially decayed statistics with a half-life.
@@ -152,7 +155,7 @@ func (d *Decayed) SizeBytes() int {
 	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (d *Decayed) cutoff() int64 { return satSub(d.maxT, d.spec.Horizon) }
+func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, d.spec.Horizon) }
 
 // Add records value x at time t. It returns false, changing nothing, when x
 // is NaN or |x| > MaxDecayedValue (or the spec is invalid).
@@ -163,7 +166,7 @@ func (d *Decayed) Add(t int64, x float64) bool {
 	switch {
 	case !d.seen:
 		d.seen, d.maxT = true, t
-		d.setLand(floorDiv(d.cutoff(), d.step))
+		d.setLand(sat.FloorDiv(d.cutoff(), d.step))
 	case t > d.maxT:
 		d.maxT = t
 		d.advance()
@@ -177,7 +180,7 @@ func (d *Decayed) Add(t int64, x float64) bool {
 }
 
 func (d *Decayed) setLand(land int64) {
-	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(satAdd(land, 1), d.step)
+	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(sat.Add(land, 1), d.step)
 }
 
 // advance moves the landmark to the new cutoff and folds raw events that
@@ -185,7 +188,7 @@ func (d *Decayed) setLand(land int64) {
 func (d *Decayed) advance() {
 	c := d.cutoff()
 	if c >= d.nextT {
-		nl := floorDiv(c, d.step)
+		nl := sat.FloorDiv(c, d.step)
 		d.w, d.mean, d.m2 = d.rescaled(nl - d.land)
 		d.setLand(nl)
 	}
@@ -214,7 +217,7 @@ func (d *Decayed) rescaled(j int64) (w, mean, m2 float64) {
 // fold applies West's weighted update for (t, x) with weight
 // 2^((t − L)/h), L = landT. A weight that rounds to zero is skipped.
 func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64, float64, float64) {
-	g := math.Exp2(float64(satSub(t, landT)) / float64(d.spec.HalfLife))
+	g := math.Exp2(float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
 	if g == 0 {
 		return w, mean, m2
 	}
@@ -243,7 +246,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 	}
 	land, landT := d.land, d.landT
 	if t >= d.nextT {
-		land = floorDiv(t, d.step)
+		land = sat.FloorDiv(t, d.step)
 		landT = startOf(land, d.step)
 	}
 	w, mean, m2 = d.rescaled(land - d.land)
@@ -253,7 +256,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 		}
 		w, mean, m2 = d.fold(w, mean, m2, landT, e.t, e.v)
 	}
-	f = math.Exp2(-float64(satSub(t, landT)) / float64(d.spec.HalfLife))
+	f = math.Exp2(-float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
 	return w, mean, m2, f, true
 }
 
@@ -325,23 +328,23 @@ func (d *Decayed) UnmarshalBinary(b []byte) error {
 }
 
 func (d *Decayed) decode(b []byte, store bool) error {
-	r := reader{b: b}
-	_, maxT, ok := r.startState(kindDecayed, flagSeen, store, d.Reset)
+	r := wire.Decoder{B: b}
+	_, maxT, ok := startState(&r, kindDecayed, flagSeen, store, d.Reset)
 	if !ok {
-		return r.err
+		return r.Err
 	}
-	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
-	if r.err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= maxDecodedMean) ||
+	w, mean, m2 := readFloat(&r, "weight"), readFloat(&r, "mean"), readFloat(&r, "M2")
+	if r.Err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= maxDecodedMean) ||
 		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
-		r.fail("weights out of range")
+		r.Fail("weights out of range")
 	}
-	cutoff := satSub(maxT, d.spec.Horizon)
+	cutoff := sat.Sub(maxT, d.spec.Horizon)
 	readEvents(&r, &d.raw, maxT, cutoff, MaxDecayedValue, store)
-	if err := r.end(); err != nil || !store {
+	if err := r.Finish(); err != nil || !store {
 		return err
 	}
 	d.seen, d.maxT = true, maxT
-	d.setLand(floorDiv(cutoff, d.step))
+	d.setLand(sat.FloorDiv(cutoff, d.step))
 	d.w, d.mean, d.m2 = w, mean, m2
 	return nil
 }

@@ -6,6 +6,8 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // Brute-force references for the decayed, recency and velocity aggregates:
@@ -96,8 +98,8 @@ func (d *Decayed) checkInvariants() error {
 		return nil
 	}
 	c := d.cutoff()
-	if d.land != floorDiv(c, d.step) || d.landT != startOf(d.land, d.step) || d.nextT != startOf(d.land+1, d.step) {
-		return fmt.Errorf("land %d (%d, %d), want %d", d.land, d.landT, d.nextT, floorDiv(c, d.step))
+	if d.land != sat.FloorDiv(c, d.step) || d.landT != startOf(d.land, d.step) || d.nextT != startOf(d.land+1, d.step) {
+		return fmt.Errorf("land %d (%d, %d), want %d", d.land, d.landT, d.nextT, sat.FloorDiv(c, d.step))
 	}
 	if d.w < 0 || d.m2 < 0 || (d.w == 0 && (d.mean != 0 || d.m2 != 0)) {
 		return fmt.Errorf("weights (%v, %v, %v)", d.w, d.mean, d.m2)

@@ -4,6 +4,9 @@ import (
 	"encoding/binary"
 	"math"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // RecencySpec defines first/last-seen tracking and gap-based sessions.
@@ -99,10 +102,10 @@ func (r *Recency) SizeBytes() int {
 	return int(unsafe.Sizeof(*r)) + r.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (r *Recency) cutoff() int64 { return satSub(r.maxT, r.spec.Horizon) }
+func (r *Recency) cutoff() int64 { return sat.Sub(r.maxT, r.spec.Horizon) }
 
 // within reports whether b − a <= Gap for a <= b, without overflow.
-func (r *Recency) within(a, b int64) bool { return satSub(b, a) <= r.spec.Gap }
+func (r *Recency) within(a, b int64) bool { return sat.Sub(b, a) <= r.spec.Gap }
 
 // Add records one event at time t. It returns false only when the spec is
 // invalid.
@@ -206,7 +209,7 @@ func (r *Recency) SinceLastAt(t int64) (int64, bool) {
 	if !ok {
 		return 0, false
 	}
-	return satSub(t, last), true
+	return sat.Sub(t, last), true
 }
 
 // SessionCountAt returns the number of events in the current session as of
@@ -269,37 +272,37 @@ func (r *Recency) UnmarshalBinary(b []byte) error {
 }
 
 // back returns x − d for an unsigned d, or fails if that is below lo.
-func back(rd *reader, x int64, d uint64, lo int64, what string) int64 {
-	if rd.err == nil && d > uint64(x)-uint64(lo) {
-		rd.fail(what + " out of range")
+func back(rd *wire.Decoder, x int64, d uint64, lo int64, what string) int64 {
+	if rd.Err == nil && d > uint64(x)-uint64(lo) {
+		rd.Fail("%s out of range", what)
 		return x
 	}
 	return int64(uint64(x) - d)
 }
 
 func (r *Recency) decode(b []byte, store bool) error {
-	rd := reader{b: b}
-	flags, maxT, ok := rd.startState(kindRecency, flagSeen|flagFolded, store, r.Reset)
+	rd := wire.Decoder{B: b}
+	flags, maxT, ok := startState(&rd, kindRecency, flagSeen|flagFolded, store, r.Reset)
 	if !ok {
-		return rd.err
+		return rd.Err
 	}
-	cutoff := satSub(maxT, r.spec.Horizon)
-	first := back(&rd, maxT, rd.uvarint("first"), math.MinInt64, "first")
+	cutoff := sat.Sub(maxT, r.spec.Horizon)
+	first := back(&rd, maxT, rd.Uvarint(), math.MinInt64, "first")
 	var s session
 	folded := flags&flagFolded != 0
 	if folded {
-		s.last = back(&rd, maxT, rd.uvarint("session last"), first, "session last")
-		s.start = back(&rd, s.last, rd.uvarint("session start"), first, "session start")
-		s.count = rd.uvarint("session count") + 1
-		if rd.err == nil && (s.count == 0 || s.last > cutoff) {
-			rd.fail("folded session out of range")
+		s.last = back(&rd, maxT, rd.Uvarint(), first, "session last")
+		s.start = back(&rd, s.last, rd.Uvarint(), first, "session start")
+		s.count = rd.Uvarint() + 1
+		if rd.Err == nil && (s.count == 0 || s.last > cutoff) {
+			rd.Fail("folded session out of range")
 		}
 	}
 	n, oldest := readEvents(&rd, &r.raw, maxT, cutoff, 0, store)
-	if rd.err == nil && (oldest < first || (!folded && (n == 0 || oldest != first))) {
-		rd.fail("first time inconsistent with the events")
+	if rd.Err == nil && (oldest < first || (!folded && (n == 0 || oldest != first))) {
+		rd.Fail("first time inconsistent with the events")
 	}
-	if err := rd.end(); err != nil || !store {
+	if err := rd.Finish(); err != nil || !store {
 		return err
 	}
 	r.seen, r.maxT, r.first = true, maxT, first

@@ -4,6 +4,9 @@ import (
 	"encoding/binary"
 	"math"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // SlidingSpec defines a sliding window over event time, cut into panes.
@@ -143,17 +146,17 @@ func (g *ring) SizeBytes() int {
 		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (g *ring) paneOf(t int64) int64 { return floorDiv(t, g.spec.Resolution) }
+func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.spec.Resolution) }
 
 // paneStart is the first time of pane idx, saturated to the int64 range.
 func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.spec.Resolution) }
 
-func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
+func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.spec.Horizon) }
 
 func (g *ring) setCut() {
 	g.cutPane = g.paneOf(g.cutoff())
 	g.cutStart = g.paneStart(g.cutPane)
-	g.cutNext = g.paneStart(satAdd(g.cutPane, 1))
+	g.cutNext = g.paneStart(sat.Add(g.cutPane, 1))
 }
 
 // foldedPane is pane(t) for t <= cutoff, without a division when t lies in
@@ -187,7 +190,7 @@ func (g *ring) add(t int64, v float64) bool {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
 		p := g.foldedPane(t)
-		if p < satSub(g.cutPane, g.n-1) {
+		if p < sat.Sub(g.cutPane, g.n-1) {
 			return false
 		}
 		g.foldLate(p, v)
@@ -220,7 +223,7 @@ func (g *ring) advance() {
 	if !moved {
 		return // the floor did not move
 	}
-	f := satSub(g.cutPane, g.n-1)
+	f := sat.Sub(g.cutPane, g.n-1)
 	k = 0
 	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
 		g.total -= ps[k].n
@@ -250,7 +253,7 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 		return 0, 0
 	}
 	hi := g.paneOf(t)
-	lo := satSub(hi, w-1)
+	lo := sat.Sub(hi, w-1)
 	exact := t >= g.cutoff()
 	if !exact {
 		hi--
@@ -380,38 +383,38 @@ func (g *ring) UnmarshalBinary(b []byte) error {
 }
 
 func (g *ring) decode(b []byte, store bool) error {
-	r := reader{b: b}
-	_, maxT, ok := r.startState(g.kind, flagSeen, store, g.Reset)
+	r := wire.Decoder{B: b}
+	_, maxT, ok := startState(&r, g.kind, flagSeen, store, g.Reset)
 	if !ok {
-		return r.err
+		return r.Err
 	}
-	cutoff := satSub(maxT, g.spec.Horizon)
+	cutoff := sat.Sub(maxT, g.spec.Horizon)
 	pc := g.paneOf(cutoff)
-	floor := satSub(pc, g.n-1)
+	floor := sat.Sub(pc, g.n-1)
 	vbytes := 0
 	if g.op.hasValue() {
 		vbytes = 8
 	}
-	np := r.count("pane count", 2+vbytes)
+	np := r.Count(2+vbytes, math.MaxUint64)
 	if store {
 		g.panes.setLen(np)
 	}
 	var total uint64
 	prev := pc
-	for i := np - 1; i >= 0 && r.err == nil; i-- {
-		gap := r.uvarint("pane gap")
+	for i := np - 1; i >= 0 && r.Err == nil; i-- {
+		gap := r.Uvarint()
 		if prev < floor || gap > uint64(prev-floor) {
-			r.fail("pane before the floor")
+			r.Fail("pane before the floor")
 			break
 		}
 		p := prev - int64(gap)
-		cnt := r.uvarint("pane count") + 1
+		cnt := r.Uvarint() + 1
 		var v float64
 		if vbytes > 0 {
-			v = r.float("pane value")
+			v = readFloat(&r, "pane value")
 		}
 		if cnt == 0 || total+cnt < total {
-			r.fail("pane count overflow")
+			r.Fail("pane count overflow")
 		}
 		total += cnt
 		if store {
@@ -425,9 +428,9 @@ func (g *ring) decode(b []byte, store bool) error {
 	}
 	nr, _ := readEvents(&r, &g.raw, maxT, cutoff, limit, store)
 	if total+uint64(nr) < total {
-		r.fail("count overflow")
+		r.Fail("count overflow")
 	}
-	if err := r.end(); err != nil || !store {
+	if err := r.Finish(); err != nil || !store {
 		return err
 	}
 	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)

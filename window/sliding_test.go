@@ -7,10 +7,12 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // floorOf is the oldest pane retained for a given cutoff.
-func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
+func (g *ring) floorOf(cutoff int64) int64 { return sat.Sub(g.paneOf(cutoff), g.n-1) }
 
 // checkInvariants asserts the invariants written on ring.
 func (g *ring) checkInvariants() error {
@@ -22,7 +24,7 @@ func (g *ring) checkInvariants() error {
 	}
 	c := g.cutoff()
 	pc, floor := g.paneOf(c), g.floorOf(c)
-	if g.cutPane != pc || g.cutStart != g.paneStart(pc) || g.cutNext != g.paneStart(satAdd(pc, 1)) {
+	if g.cutPane != pc || g.cutStart != g.paneStart(pc) || g.cutNext != g.paneStart(sat.Add(pc, 1)) {
 		return fmt.Errorf("cut cache (%d, %d, %d) stale for cutoff %d", g.cutPane, g.cutStart, g.cutNext, c)
 	}
 	var sum uint64
@@ -59,7 +61,7 @@ type naiveSliding struct {
 	events []event // accepted, in arrival order
 }
 
-func (m *naiveSliding) pane(t int64) int64 { return floorDiv(t, m.spec.Resolution) }
+func (m *naiveSliding) pane(t int64) int64 { return sat.FloorDiv(t, m.spec.Resolution) }
 func (m *naiveSliding) n() int64           { return m.spec.Window / m.spec.Resolution }
 func (m *naiveSliding) cutoff() int64      { return m.maxT - m.spec.Horizon }
 func (m *naiveSliding) floor() int64       { return m.pane(m.cutoff()) - m.n() + 1 }
