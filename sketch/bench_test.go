@@ -13,6 +13,8 @@ import (
 	"testing"
 
 	"github.com/axiomhq/hyperloglog"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 var benchCards = []int{10, 1_000, 100_000, 10_000_000}
@@ -145,7 +147,7 @@ type paneSketches struct {
 }
 
 func (s *paneSketches) add(t int64, h uint64) bool {
-	p := floorDiv(t, s.res)
+	p := sat.FloorDiv(t, s.res)
 	sk := s.panes[p]
 	if sk == nil {
 		sk, _ = hyperloglog.NewSketch(defaultDistinctPrecision, true)
@@ -157,7 +159,7 @@ func (s *paneSketches) add(t int64, h uint64) bool {
 }
 
 func (s *paneSketches) at(t int64) uint64 {
-	p := floorDiv(t, s.res)
+	p := sat.FloorDiv(t, s.res)
 	var m hyperloglog.Sketch
 	for q := p - s.k + 1; q <= p; q++ {
 		if sk := s.panes[q]; sk != nil {

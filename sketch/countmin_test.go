@@ -110,3 +110,11 @@ func mustCM(t testing.TB, p CountMinParams) *CountMin {
 	}
 	return c
 }
+
+// The zero parameters mean epsilon 0.01 and delta 0.01: width ceil(e/0.01)
+// = 272 and depth ceil(ln 100) = 5 (Cormode, Muthukrishnan 2005 sizing).
+func TestCountMinDefaultDims(t *testing.T) {
+	if w, d := (CountMinParams{}).Dims(); w != 272 || d != 5 {
+		t.Fatalf("default dims %d x %d, want 272 x 5", w, d)
+	}
+}

@@ -5,6 +5,8 @@ import (
 	"errors"
 	"math"
 	"slices"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // DistinctSpec shapes a windowed distinct count. The zero value of each
@@ -47,8 +49,8 @@ const (
 
 // withDefaults returns s with zero optional fields set to their defaults.
 func (s DistinctSpec) withDefaults() DistinctSpec {
-	orDefault(&s.Precision, defaultDistinctPrecision)
-	orDefault(&s.ExactLimit, defaultExactLimit)
+	s.Precision = cmp.Or(s.Precision, defaultDistinctPrecision)
+	s.ExactLimit = cmp.Or(s.ExactLimit, defaultExactLimit)
 	return s
 }
 
@@ -84,15 +86,6 @@ func (s DistinctSpec) Validate() error {
 }
 
 func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }
-
-// floorDiv is floor(a/b) for b > 0.
-func floorDiv(a, b int64) int64 {
-	q := a / b
-	if a%b != 0 && a < 0 {
-		q--
-	}
-	return q
-}
 
 // Distinct is a windowed distinct count of 64-bit item hashes over event
 // time.
@@ -189,7 +182,7 @@ func (d *Distinct) RelativeError() float64 {
 	return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision))
 }
 
-func (d *Distinct) pane(t int64) int64 { return floorDiv(t, d.spec.Resolution) }
+func (d *Distinct) pane(t int64) int64 { return sat.FloorDiv(t, d.spec.Resolution) }
 
 // floorPane is the oldest pane any query at t >= newest-Horizon reads.
 func (d *Distinct) floorPane() int64 {

@@ -7,6 +7,8 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 const sec = int64(1e9)
@@ -25,7 +27,7 @@ type refDistinct struct {
 
 func (r *refDistinct) at(t int64) int {
 	k := r.spec.Window / r.spec.Resolution
-	startT := (floorDiv(t, r.spec.Resolution) - k + 1) * r.spec.Resolution
+	startT := (sat.FloorDiv(t, r.spec.Resolution) - k + 1) * r.spec.Resolution
 	seen := map[uint32]bool{}
 	for _, e := range r.events {
 		if e.t <= t && e.t >= startT {

@@ -5,6 +5,10 @@ import (
 	"errors"
 	"fmt"
 	"math"
+
+	"cmp"
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // QuantileParams shapes a relative-error quantile summary (Masson, Rim,
@@ -24,8 +28,8 @@ type QuantileParams struct {
 }
 
 func (p QuantileParams) withDefaults() QuantileParams {
-	orDefault(&p.RelativeAccuracy, 0.01)
-	orDefault(&p.MaxBuckets, 2048)
+	p.RelativeAccuracy = cmp.Or(p.RelativeAccuracy, 0.01)
+	p.MaxBuckets = cmp.Or(p.MaxBuckets, 2048)
 	return p
 }
 
@@ -115,7 +119,7 @@ func (q *qstore) add(i int32, c uint64, maxB int) {
 		grown[0] = c
 		q.counts, q.off = grown, i
 	default:
-		q.counts[i-q.off] = satAdd(q.counts[i-q.off], c)
+		q.counts[i-q.off] = sat.AddU64(q.counts[i-q.off], c)
 	}
 	q.collapse(maxB)
 }
@@ -130,7 +134,7 @@ func (q *qstore) collapse(maxB int) {
 	cut := len(q.counts) - maxB
 	var sum uint64
 	for _, c := range q.counts[:cut+1] {
-		sum = satAdd(sum, c)
+		sum = sat.AddU64(sum, c)
 	}
 	q.counts = append(q.counts[:0], q.counts[cut:]...)
 	q.counts[0] = sum
@@ -140,7 +144,7 @@ func (q *qstore) collapse(maxB int) {
 func (q *qstore) total() uint64 {
 	var s uint64
 	for _, c := range q.counts {
-		s = satAdd(s, c)
+		s = sat.AddU64(s, c)
 	}
 	return s
 }
@@ -231,8 +235,8 @@ func (s *Quantiles) Merge(o *Quantiles) error {
 	if s.n == 0 || o.maxV > s.maxV {
 		s.maxV = o.maxV
 	}
-	s.zero = satAdd(s.zero, o.zero)
-	s.n = satAdd(s.n, o.n)
+	s.zero = sat.AddU64(s.zero, o.zero)
+	s.n = sat.AddU64(s.n, o.n)
 	return nil
 }
 
@@ -271,7 +275,7 @@ func appendQStore(dst []byte, q *qstore) []byte {
 
 // AppendBinary appends the encoding of s (see UnmarshalBinary).
 func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
-	dst = append(dst, formatVersion1, kindQuantiles)
+	dst = append(dst, formatVersion1, kindQuantile)
 	dst = appendU64(dst, math.Float64bits(s.params.RelativeAccuracy))
 	dst = binary.AppendUvarint(dst, uint64(s.params.MaxBuckets))
 	dst = binary.AppendUvarint(dst, s.n)
@@ -306,65 +310,66 @@ func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
 // The zero count and all bucket counts sum to n. gamma is
 // (1+RelativeAccuracy)/(1-RelativeAccuracy). Trailing bytes return
 // ErrTrailingBytes; anything else malformed ErrCorrupt.
-func (s *Quantiles) UnmarshalBinary(b []byte) error {
-	const name = "quantiles"
-	if err := checkHeader(b, kindQuantiles, name); err != nil {
-		return err
+func (s *Quantiles) UnmarshalBinary(b []byte) error { return named("quantiles", s.unmarshal(b)) }
+
+func (s *Quantiles) unmarshal(b []byte) error {
+	r := header(b, kindQuantile)
+	if r.Err != nil {
+		return r.Err
 	}
-	r := &reader{b: b, off: 2, name: name}
-	p := QuantileParams{RelativeAccuracy: r.f64(), MaxBuckets: int(min(r.uvarint(), 1<<20))}
-	n := r.uvarint()
-	if r.err != nil {
-		return r.err
+	p := QuantileParams{RelativeAccuracy: r.Float64BE(), MaxBuckets: int(min(r.Uvarint(), 1<<20))}
+	n := r.Uvarint()
+	if r.Err != nil {
+		return r.Err
 	}
 	if p.RelativeAccuracy == 0 || p.MaxBuckets == 0 || p.Validate() != nil {
-		return corruptf("%s: parameters %+v", name, p)
+		return corruptf("parameters %+v", p)
 	}
 	ns, _ := NewQuantiles(p)
 	ns.n = n
 	if n > 0 {
-		ns.minV, ns.maxV = r.f64(), r.f64()
-		ns.zero = r.uvarint()
-		if r.err == nil && (math.IsNaN(ns.minV) || math.IsInf(ns.minV, 0) || math.IsNaN(ns.maxV) ||
+		ns.minV, ns.maxV = r.Float64BE(), r.Float64BE()
+		ns.zero = r.Uvarint()
+		if r.Err == nil && (math.IsNaN(ns.minV) || math.IsInf(ns.minV, 0) || math.IsNaN(ns.maxV) ||
 			math.IsInf(ns.maxV, 0) || ns.minV > ns.maxV) {
-			r.fail("min %v max %v", ns.minV, ns.maxV)
+			r.Fail("min %v max %v", ns.minV, ns.maxV)
 		}
 		readQStore(r, &ns.pos, p.MaxBuckets)
 		readQStore(r, &ns.neg, p.MaxBuckets)
 	}
-	if err := r.done(); err != nil {
+	if err := r.Finish(); err != nil {
 		return err
 	}
-	if sum := satAdd(satAdd(ns.pos.total(), ns.neg.total()), ns.zero); sum != n {
-		return corruptf("%s: counts sum to %d, n = %d", name, sum, n)
+	if sum := sat.AddU64(sat.AddU64(ns.pos.total(), ns.neg.total()), ns.zero); sum != n {
+		return corruptf("counts sum to %d, n = %d", sum, n)
 	}
 	*s = *ns
 	return nil
 }
 
-func readQStore(r *reader, q *qstore, maxB int) {
-	k := r.count(2, uint64(maxB))
-	if k == 0 || r.err != nil {
+func readQStore(r *wire.Decoder, q *qstore, maxB int) {
+	k := r.Count(2, uint64(maxB))
+	if k == 0 || r.Err != nil {
 		return
 	}
-	first := r.varint()
-	if r.err == nil && (first < math.MinInt32 || first > math.MaxInt32-int64(maxB)) {
-		r.fail("first index %d", first)
+	first := r.Varint()
+	if r.Err == nil && (first < math.MinInt32 || first > math.MaxInt32-int64(maxB)) {
+		r.Fail("first index %d", first)
 	}
 	idx := first
 	for i := range k {
-		gap := r.uvarint()
-		c := r.uvarint()
-		if r.err != nil {
+		gap := r.Uvarint()
+		c := r.Uvarint()
+		if r.Err != nil {
 			return
 		}
 		if (i == 0) != (gap == 0) || c == 0 || gap > uint64(maxB) {
-			r.fail("bucket %d: gap %d count %d", i, gap, c)
+			r.Fail("bucket %d: gap %d count %d", i, gap, c)
 			return
 		}
 		idx += int64(gap)
 		if idx-first >= int64(maxB) {
-			r.fail("bucket span exceeds %d", maxB)
+			r.Fail("bucket span exceeds %d", maxB)
 			return
 		}
 		if i == 0 {
