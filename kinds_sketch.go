@@ -165,7 +165,7 @@ func (k Quantile) Validate() error {
 func (Quantile) input() inputKind { return inputValue }
 func (Quantile) reach() int64     { return 0 }
 func (k Quantile) newAggregate(h int64) aggregate {
-	q, err := sketch.NewQuantiles(k.params())
+	q, err := sketch.NewQuantile(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
@@ -354,7 +354,7 @@ func (s *topShareSummary) fold(_ float64, h uint64)                { s.tk.Add(h,
 // item and the raw items, over the total. Raw events are few (within the
 // horizon), so this is cheap.
 func (s *topShareSummary) answer(extra []tailEvent, _ uint64) float64 {
-	total := s.tk.Total() + uint64(len(extra))
+	total := s.tk.Count() + uint64(len(extra))
 	if total == 0 {
 		return math.NaN()
 	}
@@ -382,9 +382,9 @@ func (s *topShareSummary) answer(extra []tailEvent, _ uint64) float64 {
 }
 
 type quantileSummary struct {
-	q        *sketch.Quantiles
+	q        *sketch.Quantile
 	quantile float64
-	scratch  *sketch.Quantiles // summary + raw events, built per answer when raw is not empty
+	scratch  *sketch.Quantile // summary + raw events, built per answer when raw is not empty
 }
 
 func (s *quantileSummary) AppendBinary(dst []byte) ([]byte, error) { return s.q.AppendBinary(dst) }
@@ -395,7 +395,7 @@ func (s *quantileSummary) answer(extra []tailEvent, _ uint64) float64 {
 	src := s.q
 	if len(extra) > 0 {
 		if s.scratch == nil {
-			s.scratch, _ = sketch.NewQuantiles(s.q.Params())
+			s.scratch, _ = sketch.NewQuantile(s.q.Params())
 		}
 		s.scratch.Reset()
 		if err := s.scratch.Merge(s.q); err != nil {
@@ -406,7 +406,7 @@ func (s *quantileSummary) answer(extra []tailEvent, _ uint64) float64 {
 		}
 		src = s.scratch
 	}
-	v, ok := src.Quantile(s.quantile)
+	v, ok := src.Value(s.quantile)
 	if !ok {
 		return math.NaN()
 	}

@@ -275,7 +275,7 @@ func BenchmarkTopK(b *testing.B) {
 	}
 }
 
-func BenchmarkQuantiles(b *testing.B) {
+func BenchmarkQuantile(b *testing.B) {
 	rng := rand.New(rand.NewPCG(7, 7))
 	xs := make([]float64, 1<<16)
 	for i := range xs {
@@ -296,7 +296,7 @@ func BenchmarkQuantiles(b *testing.B) {
 		b.ReportAllocs()
 		var sink float64
 		for b.Loop() {
-			v, _ := s.Quantile(0.95)
+			v, _ := s.Value(0.95)
 			sink += v
 		}
 		_ = sink

@@ -114,8 +114,8 @@ func (c *CountMin) Estimate(h uint64) uint64 {
 	return est
 }
 
-// Total returns N, the sum of all counts added.
-func (c *CountMin) Total() uint64 { return c.n }
+// Count returns N, the sum of all counts added.
+func (c *CountMin) Count() uint64 { return c.n }
 
 // ErrorBound returns Epsilon*N: the overestimate bound that holds per query
 // with probability at least 1-Delta.

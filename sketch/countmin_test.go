@@ -54,8 +54,8 @@ func TestCountMinBounds(t *testing.T) {
 		if limit := p.Delta*n + 4*math.Sqrt(p.Delta*(1-p.Delta)*n); float64(fails) > limit {
 			t.Fatalf("seed %d: %d of %.0f items beyond eps*N, limit %.0f", seed, fails, n, limit)
 		}
-		if cm.Total() != N || cm.ErrorBound() != bound {
-			t.Fatalf("total %d bound %v", cm.Total(), cm.ErrorBound())
+		if cm.Count() != N || cm.ErrorBound() != bound {
+			t.Fatalf("total %d bound %v", cm.Count(), cm.ErrorBound())
 		}
 		t.Logf("seed %d: %.0f items, %d beyond eps*N=%.0f (delta allows %.0f)", seed, n, fails, bound, p.Delta*n)
 	}

@@ -1,7 +1,7 @@
 // Package sketch holds mergeable summaries with versioned binary encodings
 // and stated error bounds, for per-entity features: a windowed distinct
 // count (Distinct), item frequencies (CountMin), heavy hitters (TopK) and
-// relative-error quantiles (Quantiles). It does no I/O and depends on no
+// relative-error quantiles (Quantile). It does no I/O and depends on no
 // other tallyward package.
 //
 // # Items, time and hashing
@@ -25,16 +25,16 @@
 //     with probability at least 1-Delta (Cormode, Muthukrishnan, 2005).
 //   - TopK: Count-Err <= f <= Count per monitored item; every item with
 //     f > N/Capacity is monitored (Metwally, Agrawal, El Abbadi, 2005).
-//   - Quantiles: every estimate within RelativeAccuracy of the exact value
+//   - Quantile: every estimate within RelativeAccuracy of the exact value
 //     of its rank, for positive, negative and zero values, as long as that
 //     rank is not in a collapsed bucket (Masson, Rim, Lee, 2019).
 //
 // Each type reports its bound: Distinct.RelativeError, CountMin.ErrorBound,
-// TopK.ErrorBound, Quantiles.RelativeError.
+// TopK.ErrorBound, Quantile.RelativeError.
 //
 // # Order
 //
-// CountMin and Quantiles are functions of the multiset of adds: any
+// CountMin and Quantile are functions of the multiset of adds: any
 // arrival order, and any order of Merge, gives identical answers. Distinct
 // is too within a mode: its register frontiers and exact entries are
 // unions, and promoted items land in the same registers as items added
@@ -72,7 +72,7 @@
 // (frontiers spill beyond four entries). A window start not seen before
 // costs one O(2^p) view rebuild (once per pane boundary). CountMin:
 // 8*width*depth bytes, Add/Estimate O(depth). TopK: O(log Capacity) per Add.
-// Quantiles: one logarithm per Add, 8 bytes per bucket.
+// Quantile: one logarithm per Add, 8 bytes per bucket.
 //
 // # What it is not for
 //

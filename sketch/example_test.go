@@ -28,12 +28,12 @@ func ExampleDistinct() {
 }
 
 // Is this amount above the card's 95th percentile?
-func ExampleQuantiles() {
-	q, _ := sketch.NewQuantiles(sketch.QuantileParams{RelativeAccuracy: 0.01})
+func ExampleQuantile() {
+	q, _ := sketch.NewQuantile(sketch.QuantileParams{RelativeAccuracy: 0.01})
 	for i := 1; i <= 100; i++ {
 		q.Add(float64(i))
 	}
-	p95, _ := q.Quantile(0.95)
+	p95, _ := q.Value(0.95)
 	fmt.Printf("p95 %.1f, 250 above: %v\n", p95, 250 > p95)
 	// Output: p95 94.6, 250 above: true
 }

@@ -123,19 +123,19 @@ func FuzzTopKUnmarshal(f *testing.F) {
 	})
 }
 
-func FuzzQuantilesUnmarshal(f *testing.F) {
+func FuzzQuantileUnmarshal(f *testing.F) {
 	fuzzDecoder(f, goldenSeeds(f, "quantiles"), func() encoder {
-		s, _ := NewQuantiles(QuantileParams{MaxBuckets: 16})
+		s, _ := NewQuantile(QuantileParams{MaxBuckets: 16})
 		s.Add(3)
 		return s
 	}, func(e encoder) {
-		s := e.(*Quantiles)
+		s := e.(*Quantile)
 		for _, x := range []float64{-1e300, -1, 0, 5e-324, 1, 1e300} {
 			s.Add(x)
-			_, _ = s.Quantile(0.5)
+			_, _ = s.Value(0.5)
 		}
-		_, _ = s.Quantile(1)
-		o, _ := NewQuantiles(s.Params())
+		_, _ = s.Value(1)
+		o, _ := NewQuantile(s.Params())
 		_ = o.Merge(s)
 	})
 }

@@ -63,7 +63,7 @@ func goldenCases(t testing.TB) []goldenCase {
 			return c
 		}, func(e encoder) string {
 			c := e.(*CountMin)
-			return fmt.Sprintf("N=%d m0=%d m5=%d absent=%d", c.Total(), c.Estimate(HashString("merchant-0")),
+			return fmt.Sprintf("N=%d m0=%d m5=%d absent=%d", c.Count(), c.Estimate(HashString("merchant-0")),
 				c.Estimate(HashString("merchant-5")), c.Estimate(HashString("merchant-99")))
 		}},
 		{"topk_v1.bin", func() encoder {
@@ -75,7 +75,7 @@ func goldenCases(t testing.TB) []goldenCase {
 			return s
 		}, func(e encoder) string {
 			s := e.(*TopK)
-			return fmt.Sprintf("N=%d bound=%d top=%v share=%.4f", s.Total(), s.ErrorBound(), s.Top(nil, 4), s.TopShare())
+			return fmt.Sprintf("N=%d bound=%d top=%v share=%.4f", s.Count(), s.ErrorBound(), s.Top(nil, 4), s.TopShare())
 		}},
 		{"quantiles_v1.bin", func() encoder {
 			s := mustQ(t, QuantileParams{RelativeAccuracy: 0.02, MaxBuckets: 32})
@@ -86,11 +86,11 @@ func goldenCases(t testing.TB) []goldenCase {
 			s.Add(0)
 			return s
 		}, func(e encoder) string {
-			s := e.(*Quantiles)
+			s := e.(*Quantile)
 			var b strings.Builder
 			fmt.Fprintf(&b, "n=%d", s.Count())
 			for _, q := range []float64{0, 0.05, 0.5, 0.95, 1} {
-				v, _ := s.Quantile(q)
+				v, _ := s.Value(q)
 				fmt.Fprintf(&b, " q%.2f=%.6g", q, v)
 			}
 			return b.String()

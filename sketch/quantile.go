@@ -39,28 +39,28 @@ func (p QuantileParams) Validate() error {
 	p = p.withDefaults()
 	var errs []error
 	if !(p.RelativeAccuracy >= 1e-4 && p.RelativeAccuracy <= 0.5) {
-		errs = appendSpecErr(errs, "quantiles", "RelativeAccuracy %v must be in [1e-4, 0.5]", p.RelativeAccuracy)
+		errs = appendSpecErr(errs, "quantile", "RelativeAccuracy %v must be in [1e-4, 0.5]", p.RelativeAccuracy)
 	}
 	if p.MaxBuckets < 16 || p.MaxBuckets > 1<<16 {
-		errs = appendSpecErr(errs, "quantiles", "MaxBuckets %d must be in [16, 65536]", p.MaxBuckets)
+		errs = appendSpecErr(errs, "quantile", "MaxBuckets %d must be in [16, 65536]", p.MaxBuckets)
 	}
 	return errors.Join(errs...)
 }
 
-// Quantiles is a relative-error quantile summary of float64 values,
+// Quantile is a relative-error quantile summary of float64 values,
 // positive, negative and zero. A value x > 0 goes to bucket
 // i = ceil(log_gamma x), gamma = (1+alpha)/(1-alpha), covering
 // (gamma^(i-1), gamma^i] and represented by 2*gamma^i/(gamma+1); negative
 // values use a mirrored store of |x|; zero has its own count.
 //
-// Quantile(q) returns the estimate of the value of 0-based rank
+// Value(q) returns the estimate of the value of 0-based rank
 // floor(q*(n-1)) in sorted order (1-based floor(1+q(n-1)), the paper's
 // convention), within alpha relative error, clamped to the exact [min, max]
 // seen. Add and Merge commute (bucket counts add), so the state is
-// independent of arrival order. Cost: Add O(1) (one logarithm), Quantile
+// independent of arrival order. Cost: Add O(1) (one logarithm), Value
 // O(buckets), memory 8 bytes per bucket between the smallest and largest
 // index. Not safe for concurrent use.
-type Quantiles struct {
+type Quantile struct {
 	params     QuantileParams
 	gamma, lnG float64
 	pos, neg   qstore
@@ -76,29 +76,29 @@ type qstore struct {
 	counts []uint64
 }
 
-// NewQuantiles returns an empty summary, or an error wrapping
+// NewQuantile returns an empty summary, or an error wrapping
 // ErrInvalidSpec.
-func NewQuantiles(p QuantileParams) (*Quantiles, error) {
+func NewQuantile(p QuantileParams) (*Quantile, error) {
 	if err := p.Validate(); err != nil {
 		return nil, err
 	}
 	p = p.withDefaults()
 	g := (1 + p.RelativeAccuracy) / (1 - p.RelativeAccuracy)
-	return &Quantiles{params: p, gamma: g, lnG: math.Log(g)}, nil
+	return &Quantile{params: p, gamma: g, lnG: math.Log(g)}, nil
 }
 
 // Params returns the parameters with defaults applied.
-func (s *Quantiles) Params() QuantileParams { return s.params }
+func (s *Quantile) Params() QuantileParams { return s.params }
 
 // RelativeError returns alpha.
-func (s *Quantiles) RelativeError() float64 { return s.params.RelativeAccuracy }
+func (s *Quantile) RelativeError() float64 { return s.params.RelativeAccuracy }
 
 // Count returns the number of values added.
-func (s *Quantiles) Count() uint64 { return s.n }
+func (s *Quantile) Count() uint64 { return s.n }
 
-func (s *Quantiles) index(x float64) int32 { return int32(math.Ceil(math.Log(x) / s.lnG)) }
+func (s *Quantile) index(x float64) int32 { return int32(math.Ceil(math.Log(x) / s.lnG)) }
 
-func (s *Quantiles) value(i int32) float64 {
+func (s *Quantile) value(i int32) float64 {
 	return 2 * math.Exp(float64(i)*s.lnG) / (s.gamma + 1)
 }
 
@@ -150,7 +150,7 @@ func (q *qstore) total() uint64 {
 }
 
 // Add records x. NaN and ±Inf are rejected (false, nothing changes).
-func (s *Quantiles) Add(x float64) bool {
+func (s *Quantile) Add(x float64) bool {
 	if math.IsNaN(x) || math.IsInf(x, 0) {
 		return false
 	}
@@ -172,10 +172,10 @@ func (s *Quantiles) Add(x float64) bool {
 	return true
 }
 
-// Quantile returns the estimate of the q-quantile (see Quantiles for the
+// Value returns the estimate of the q-quantile (see Quantile for the
 // rank convention), or false if the summary is empty or q is outside
 // [0, 1].
-func (s *Quantiles) Quantile(q float64) (float64, bool) {
+func (s *Quantile) Value(q float64) (float64, bool) {
 	if s.n == 0 || !(q >= 0 && q <= 1) {
 		return 0, false
 	}
@@ -205,16 +205,16 @@ func (s *Quantiles) Quantile(q float64) (float64, bool) {
 }
 
 // Min and Max return the exact extremes (0 when empty).
-func (s *Quantiles) Min() float64 { return s.minV }
+func (s *Quantile) Min() float64 { return s.minV }
 
 // Max returns the largest value added (0 when empty).
-func (s *Quantiles) Max() float64 { return s.maxV }
+func (s *Quantile) Max() float64 { return s.maxV }
 
 // Merge adds o's bucket counts to s. Parameters must be equal
 // (ErrIncompatible otherwise, s unchanged).
-func (s *Quantiles) Merge(o *Quantiles) error {
+func (s *Quantile) Merge(o *Quantile) error {
 	if s.params != o.params {
-		return fmt.Errorf("quantiles merge: %+v vs %+v: %w", s.params, o.params, ErrIncompatible)
+		return fmt.Errorf("quantile merge: %+v vs %+v: %w", s.params, o.params, ErrIncompatible)
 	}
 	if o.n == 0 {
 		return nil
@@ -241,13 +241,13 @@ func (s *Quantiles) Merge(o *Quantiles) error {
 }
 
 // Reset empties the summary.
-func (s *Quantiles) Reset() {
+func (s *Quantile) Reset() {
 	s.pos.counts, s.neg.counts = s.pos.counts[:0], s.neg.counts[:0]
 	s.zero, s.n, s.minV, s.maxV = 0, 0, 0, 0
 }
 
 // SizeBytes approximates the heap footprint in bytes.
-func (s *Quantiles) SizeBytes() int { return 128 + 8*(cap(s.pos.counts)+cap(s.neg.counts)) }
+func (s *Quantile) SizeBytes() int { return 128 + 8*(cap(s.pos.counts)+cap(s.neg.counts)) }
 
 func appendQStore(dst []byte, q *qstore) []byte {
 	nz := 0
@@ -274,7 +274,7 @@ func appendQStore(dst []byte, q *qstore) []byte {
 }
 
 // AppendBinary appends the encoding of s (see UnmarshalBinary).
-func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
+func (s *Quantile) AppendBinary(dst []byte) ([]byte, error) {
 	dst = append(dst, formatVersion1, kindQuantile)
 	dst = appendU64(dst, math.Float64bits(s.params.RelativeAccuracy))
 	dst = binary.AppendUvarint(dst, uint64(s.params.MaxBuckets))
@@ -310,9 +310,9 @@ func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
 // The zero count and all bucket counts sum to n. gamma is
 // (1+RelativeAccuracy)/(1-RelativeAccuracy). Trailing bytes return
 // ErrTrailingBytes; anything else malformed ErrCorrupt.
-func (s *Quantiles) UnmarshalBinary(b []byte) error { return named("quantiles", s.unmarshal(b)) }
+func (s *Quantile) UnmarshalBinary(b []byte) error { return named("quantile", s.unmarshal(b)) }
 
-func (s *Quantiles) unmarshal(b []byte) error {
+func (s *Quantile) unmarshal(b []byte) error {
 	r := header(b, kindQuantile)
 	if r.Err != nil {
 		return r.Err
@@ -325,7 +325,7 @@ func (s *Quantiles) unmarshal(b []byte) error {
 	if p.RelativeAccuracy == 0 || p.MaxBuckets == 0 || p.Validate() != nil {
 		return corruptf("parameters %+v", p)
 	}
-	ns, _ := NewQuantiles(p)
+	ns, _ := NewQuantile(p)
 	ns.n = n
 	if n > 0 {
 		ns.minV, ns.maxV = r.Float64BE(), r.Float64BE()

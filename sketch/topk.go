@@ -138,8 +138,8 @@ func (s *TopK) Add(h uint64, w uint64) {
 	s.down(0)
 }
 
-// Total returns N, the sum of weights added (and merged).
-func (s *TopK) Total() uint64 { return s.n }
+// Count returns N, the sum of weights added (and merged).
+func (s *TopK) Count() uint64 { return s.n }
 
 // Len returns the number of monitored items.
 func (s *TopK) Len() int { return len(s.heap) }
