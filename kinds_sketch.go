@@ -27,8 +27,8 @@ type Distinct struct {
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)),
-		Horizon: h, Precision: orDefault(k.Precision, 12)} // 12: the sketch package's default
+	return sketch.DistinctSpec{Window: k.Window, Resolution: orDefault(k.Resolution, k.Window/60),
+		Horizon: time.Duration(h), Precision: orDefault(k.Precision, 12)} // 12: the sketch package's default
 }
 
 // Describe implements Kind.

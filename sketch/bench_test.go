@@ -95,7 +95,7 @@ func BenchmarkDistinct(b *testing.B) {
 				case "addquery":
 					benchStream(b, t, hs, d.Add, d.DistinctAt, 0)
 				default:
-					benchStream(b, t, hs, d.Add, d.DistinctAt, benchSpec.Horizon-1)
+					benchStream(b, t, hs, d.Add, d.DistinctAt, int64(benchSpec.Horizon)-1)
 				}
 			})
 		}
@@ -184,7 +184,7 @@ func BenchmarkDesignPaneSketches(b *testing.B) {
 	for _, n := range benchCards[:3] {
 		hs := benchHashes(n, 1)
 		fill := func() (*paneSketches, int64) {
-			s := &paneSketches{res: benchSpec.Resolution, k: benchSpec.Window / benchSpec.Resolution, panes: map[int64]*hyperloglog.Sketch{}}
+			s := &paneSketches{res: int64(benchSpec.Resolution), k: int64(benchSpec.Window) / int64(benchSpec.Resolution), panes: map[int64]*hyperloglog.Sketch{}}
 			step := max(1800*sec/int64(n), 1)
 			t := benchT0
 			for _, h := range hs {

@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math/bits"
+	"time"
 
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -84,7 +85,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 	dst = append(dst, flags)
 	dst = binary.AppendVarint(dst, d.newest)
 	newestPane := d.pane(d.newest)
-	settled := d.newest - s.Horizon
+	settled := d.newest - int64(s.Horizon)
 	floor := d.floorPane()
 	if d.regs == nil {
 		d.normalizeExact()
@@ -206,9 +207,9 @@ func (d *Distinct) unmarshal(b []byte) error {
 		return r.Err
 	}
 	var s DistinctSpec
-	s.Window = int64(min(r.Uvarint(), 1<<62))
-	s.Resolution = int64(min(r.Uvarint(), 1<<62))
-	s.Horizon = int64(min(r.Uvarint(), 1<<62))
+	s.Window = time.Duration(min(r.Uvarint(), 1<<62))
+	s.Resolution = time.Duration(min(r.Uvarint(), 1<<62))
+	s.Horizon = time.Duration(min(r.Uvarint(), 1<<62))
 	s.Precision = r.Byte()
 	s.ExactLimit = int(min(r.Uvarint(), 1<<20))
 	flags := r.Byte()
@@ -221,7 +222,7 @@ func (d *Distinct) unmarshal(b []byte) error {
 	if err := s.Validate(); err != nil {
 		return corruptf("%v", err)
 	}
-	nd := &Distinct{spec: s, k: s.Window / s.Resolution}
+	nd := &Distinct{spec: s, k: int64(s.Window / s.Resolution)}
 	if flags&^(flagHasNewest|flagSketch) != 0 || flags == flagSketch {
 		return corruptf("flags %#x", flags)
 	}
@@ -259,7 +260,7 @@ func (d *Distinct) unmarshal(b []byte) error {
 func (d *Distinct) decodeExact(r *wire.Decoder) error {
 	P := d.pane(d.newest)
 	F := d.floorPane()
-	S := d.newest - d.spec.Horizon
+	S := d.newest - d.hor()
 	limit := d.spec.ExactLimit
 	n := r.Count(0, uint64(limit))
 	if n > 0 {
@@ -282,7 +283,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 			if br.bad || fp >= 1<<32 || (i > 0 && delta == 0) || age > P-F {
 				return corruptf("settled entry %d", i)
 			}
-			t := (P - age) * d.spec.Resolution
+			t := (P - age) * d.res()
 			if t > S {
 				return corruptf("settled entry %d at %d after settled time %d", i, t, S)
 			}
@@ -299,7 +300,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 		if r.Err != nil {
 			return r.Err
 		}
-		if age >= uint64(d.spec.Horizon) {
+		if age >= uint64(d.hor()) {
 			return corruptf("unsettled entry %d age %d >= Horizon", i, age)
 		}
 		e.t = d.newest - int64(age)
@@ -378,7 +379,7 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 			return r.Err
 		}
 		rho := key & 63
-		if key>>6 >= uint64(m) || rho == 0 || rho > uint64(maxRho) || age >= uint64(d.spec.Horizon) {
+		if key>>6 >= uint64(m) || rho == 0 || rho > uint64(maxRho) || age >= uint64(d.hor()) {
 			return corruptf("unsettled entry %d (key %d, age %d)", i, key, age)
 		}
 		e := tailEntry{t: d.newest - int64(age), key: uint32(key)}

@@ -2,6 +2,7 @@ package sketch_test
 
 import (
 	"fmt"
+	"time"
 
 	"github.com/tallyward/tallyward/sketch"
 )
@@ -9,12 +10,12 @@ import (
 // Distinct accounts seen on one device in the last 24 hours, with one-hour
 // panes and a 5-second allowed disorder.
 func ExampleDistinct() {
-	const hour = int64(3600e9)
-	d, err := sketch.NewDistinct(sketch.DistinctSpec{Window: 24 * hour, Resolution: hour, Horizon: 5e9})
+	d, err := sketch.NewDistinct(sketch.DistinctSpec{Window: 24 * time.Hour, Resolution: time.Hour, Horizon: 5 * time.Second})
 	if err != nil {
 		panic(err)
 	}
-	t0 := int64(1_767_225_600e9) // 2026-01-01T00:00:00Z
+	const hour = int64(time.Hour)
+	t0 := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC).UnixNano()
 	d.Add(t0, sketch.HashString("acct-a"))
 	d.Add(t0+2*hour, sketch.HashString("acct-b"))
 	fmt.Println(d.DistinctAt(t0 + 2*hour))
