@@ -23,7 +23,7 @@ type Sliding struct {
 }
 
 func (k Sliding) spec(horizon int64) window.SlidingSpec {
-	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)), Horizon: horizon}
+	return window.SlidingSpec{Window: k.Window, Resolution: orDefault(k.Resolution, k.Window/60), Horizon: time.Duration(horizon)}
 }
 
 func (k Sliding) describe(name string) string {
@@ -77,23 +77,23 @@ func (SlidingMean) input() inputKind  { return inputValue }
 // entity costs fewer allocations and an event fewer indirect calls.
 
 func (k SlidingCount) newAggregate(h int64) aggregate {
-	return countAgg{window.NewSlidingCount(Sliding(k).spec(h))}
+	return countAgg{built(window.NewSlidingCount(Sliding(k).spec(h)))}
 }
 
 func (k SlidingSum) newAggregate(h int64) aggregate {
-	return sumAgg{window.NewSlidingSum(Sliding(k).spec(h))}
+	return sumAgg{built(window.NewSlidingSum(Sliding(k).spec(h)))}
 }
 
 func (k SlidingMin) newAggregate(h int64) aggregate {
-	return minAgg{window.NewSlidingMin(Sliding(k).spec(h))}
+	return minAgg{built(window.NewSlidingMin(Sliding(k).spec(h)))}
 }
 
 func (k SlidingMax) newAggregate(h int64) aggregate {
-	return maxAgg{window.NewSlidingMax(Sliding(k).spec(h))}
+	return maxAgg{built(window.NewSlidingMax(Sliding(k).spec(h)))}
 }
 
 func (k SlidingMean) newAggregate(h int64) aggregate {
-	return meanAgg{window.NewSlidingMean(Sliding(k).spec(h))}
+	return meanAgg{built(window.NewSlidingMean(Sliding(k).spec(h)))}
 }
 
 type countAgg struct{ *window.SlidingCount }
@@ -120,6 +120,15 @@ type meanAgg struct{ *window.SlidingMean }
 
 func (a meanAgg) add(t int64, v float64, _ uint64) bool { return a.Add(t, v) }
 func (a meanAgg) at(t int64, _ uint64) float64          { return a.MeanAt(t) }
+
+// built returns an aggregate made from a kind's spec. Open validates every
+// kind with its horizon before making aggregates, so err is unreachable.
+func built[T any](x T, err error) T {
+	if err != nil {
+		panic(err)
+	}
+	return x
+}
 
 // codec is what every stored aggregate of packages window and sketch has.
 type codec interface {

@@ -49,7 +49,7 @@ type Decayed struct {
 }
 
 func (k Decayed) spec(h int64) window.DecaySpec {
-	return window.DecaySpec{HalfLife: int64(k.HalfLife), Horizon: h}
+	return window.DecaySpec{HalfLife: k.HalfLife, Horizon: time.Duration(h)}
 }
 
 // Describe implements Kind.
@@ -77,7 +77,7 @@ func (k Decayed) input() inputKind {
 func (k Decayed) reach() int64 { return sat.Add(0, 64*int64(k.HalfLife)) }
 
 func (k Decayed) newAggregate(h int64) aggregate {
-	d := window.NewDecayed(k.spec(h))
+	d := built(window.NewDecayed(k.spec(h)))
 	at := [...]func(int64) float64{d.CountAt, d.SumAt, d.MeanAt, d.VarianceAt}[k.Stat]
 	if k.Stat == DecayedCount {
 		return adapt(d, func(t int64, _ float64) bool { return d.Add(t, 1) }, at)
@@ -103,8 +103,8 @@ type Velocity struct {
 }
 
 func (k Velocity) spec(h int64) window.VelocitySpec {
-	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(orDefault(k.Resolution, k.Short/10)),
-		Horizon: h, Smoothing: orDefault(k.Smoothing, 1)} // 1: the window package's default
+	return window.VelocitySpec{Short: k.Short, Long: k.Long, Resolution: orDefault(k.Resolution, k.Short/10),
+		Horizon: time.Duration(h), Smoothing: orDefault(k.Smoothing, 1)} // 1: the window package's default
 }
 
 // Describe implements Kind.
@@ -120,7 +120,7 @@ func (Velocity) input() inputKind { return inputNone }
 func (k Velocity) reach() int64   { return int64(k.Long) }
 
 func (k Velocity) newAggregate(h int64) aggregate {
-	v := window.NewVelocity(k.spec(h))
+	v := built(window.NewVelocity(k.spec(h)))
 	return adapt(v, func(t int64, _ float64) bool { return v.Add(t) }, v.RatioAt)
 }
 
@@ -164,7 +164,7 @@ type Recency struct {
 }
 
 func (k Recency) spec(h int64) window.RecencySpec {
-	return window.RecencySpec{Gap: int64(orDefault(k.Gap, 30*time.Minute)), Horizon: h}
+	return window.RecencySpec{Gap: orDefault(k.Gap, window.DefaultGap), Horizon: time.Duration(h)}
 }
 
 // Describe implements Kind.
@@ -185,13 +185,13 @@ func (Recency) input() inputKind { return inputNone }
 
 func (k Recency) reach() int64 {
 	if k.Stat == SessionEvents {
-		return k.spec(0).Gap
+		return int64(k.spec(0).Gap)
 	}
 	return 0
 }
 
 func (k Recency) newAggregate(h int64) aggregate {
-	r := window.NewRecency(k.spec(h))
+	r := built(window.NewRecency(k.spec(h)))
 	seconds := func(d int64, ok bool) float64 {
 		if !ok {
 			return math.NaN()

@@ -1,21 +1,24 @@
 package window
 
 import (
+	"cmp"
 	"math"
+	"time"
 	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// DecaySpec defines exponentially decayed statistics with a half-life.
+// DecaySpec defines exponentially decayed statistics with a half-life. A
+// zero field means its default; HalfLife is required.
 type DecaySpec struct {
-	// HalfLife in nanoseconds, > 0: an event's weight halves every HalfLife
-	// of event time. No default.
-	HalfLife int64
-	// Horizon is how far behind the newest added time, in nanoseconds,
-	// as-of queries stay exact; >= 0. Default 0.
-	Horizon int64
+	// HalfLife, > 0: an event's weight halves every HalfLife of event time.
+	// Required; no default.
+	HalfLife time.Duration
+	// Horizon is how far behind the newest added time as-of queries stay
+	// exact; >= 0. Default 0.
+	Horizon time.Duration
 	// RebaseEvery is the number of half-lives between landmarks; the
 	// landmarks are the multiples of RebaseEvery·HalfLife since the Unix
 	// epoch, fixed in advance. 1..64; 0 means the default, 32.
@@ -41,12 +44,7 @@ const (
 	maxDecodedMean   = 2 * MaxDecayedValue
 )
 
-func (s DecaySpec) rebase() int64 {
-	if s.RebaseEvery == 0 {
-		return defaultRebaseEvery
-	}
-	return s.RebaseEvery
-}
+func (s DecaySpec) rebase() int64 { return cmp.Or(s.RebaseEvery, defaultRebaseEvery) }
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
 // each matching ErrInvalidSpec), or nil.
@@ -56,7 +54,7 @@ func (s DecaySpec) Validate() error {
 	e.nonNegative("Horizon", s.Horizon)
 	k := s.rebase()
 	e.check(k >= 1 && k <= maxRebaseEvery, "RebaseEvery", "must be in 1..64 (0 for 32)")
-	e.check(s.HalfLife <= 0 || k < 1 || s.HalfLife <= math.MaxInt64/k,
+	e.check(s.HalfLife <= 0 || k < 1 || int64(s.HalfLife) <= math.MaxInt64/k,
 		"RebaseEvery", "times HalfLife overflows int64")
 	return e.err()
 }
@@ -105,9 +103,8 @@ func (s DecaySpec) Validate() error {
 // pipeline supplies. Add rejects NaN, ±Inf and |x| > MaxDecayedValue
 // (returns false), so that no reachable state overflows.
 //
-// The zero value is unusable: build with NewDecayed; an aggregate built
-// from an invalid spec ignores Add and answers NaN. Not safe for concurrent
-// use.
+// Build with NewDecayed; the zero value ignores Add and answers NaN. Not
+// safe for concurrent use.
 //
 // Invariants: raw is sorted by time with cutoff < t <= maxT;
 // land == floor(cutoff / (RebaseEvery·h)), landT and nextT are the
@@ -127,17 +124,20 @@ type Decayed struct {
 	raw         seq[event]
 }
 
-// NewDecayed returns empty decayed statistics over spec.
-func NewDecayed(spec DecaySpec) *Decayed {
-	d := &Decayed{spec: spec, valid: spec.Validate() == nil}
-	if d.valid {
-		d.step = spec.rebase() * spec.HalfLife
-		d.raw.buf = make([]event, 0, 8)
+// NewDecayed returns empty decayed statistics over spec, or the errors of
+// spec.Validate.
+func NewDecayed(spec DecaySpec) (*Decayed, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
 	}
-	return d
+	spec.RebaseEvery = spec.rebase()
+	d := &Decayed{spec: spec, valid: true}
+	d.step = spec.rebase() * int64(spec.HalfLife)
+	d.raw.buf = make([]event, 0, 8)
+	return d, nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (d *Decayed) Spec() DecaySpec { return d.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -147,15 +147,15 @@ func (d *Decayed) Reset() {
 	d.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (d *Decayed) Newest() int64 { return d.maxT }
+// Newest returns the largest time added, and false if none was.
+func (d *Decayed) Newest() (int64, bool) { return d.maxT, d.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (d *Decayed) SizeBytes() int {
 	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, d.spec.Horizon) }
+func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, int64(d.spec.Horizon)) }
 
 // Add records value x at time t. It returns false, changing nothing, when x
 // is NaN or |x| > MaxDecayedValue (or the spec is invalid).
@@ -338,7 +338,7 @@ func (d *Decayed) decode(b []byte, store bool) error {
 		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
 		r.Fail("weights out of range")
 	}
-	cutoff := sat.Sub(maxT, d.spec.Horizon)
+	cutoff := sat.Sub(maxT, int64(d.spec.Horizon))
 	readEvents(&r, &d.raw, maxT, cutoff, MaxDecayedValue, store)
 	if err := r.Finish(); err != nil || !store {
 		return err

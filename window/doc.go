@@ -9,7 +9,14 @@
 //
 // Time is a parameter. Every call takes event time as int64 Unix
 // nanoseconds: Add(t[, v]) records an event, XxxAt(t) answers as of t.
-// As-of answers never include an event newer than t.
+// As-of answers never include an event newer than t. Lengths of time in
+// specs (windows, resolutions, half-lives, gaps, horizons) are
+// time.Duration. Newest reports the newest time added and whether there is
+// one; Count the number of events an aggregate holds.
+//
+// Constructors NewX(spec) return the aggregate or the errors of
+// spec.Validate; a zero spec field means its documented default, and a
+// missing required field is an error.
 //
 // Exactness is bounded by a Horizon: with maxT the newest time added,
 // events newer than cutoff = maxT − Horizon are kept with exact times and
@@ -29,8 +36,9 @@
 // (the byte table is on each UnmarshalBinary), unknown versions and
 // trailing bytes rejected with ErrUnknownVersion and ErrTrailingBytes,
 // malformed input with ErrCorrupt, all wrapped with context; the receiver is
-// unchanged on error and no input makes a decoder panic. Specs report every
-// problem at once from Validate.
+// unchanged on error and no input makes a decoder panic. The sentinel
+// errors are the same values as package sketch's, so errors.Is matches
+// across both. Specs report every problem at once from Validate.
 //
 // # Costs
 //

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"time"
 
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
@@ -57,9 +58,9 @@ func (s *specErrs) check(ok bool, field, problem string) {
 	}
 }
 
-func (s *specErrs) positive(field string, x int64) { s.check(x > 0, field, "must be > 0") }
+func (s *specErrs) positive(field string, x time.Duration) { s.check(x > 0, field, "must be > 0") }
 
-func (s *specErrs) nonNegative(field string, x int64) { s.check(x >= 0, field, "must be >= 0") }
+func (s *specErrs) nonNegative(field string, x time.Duration) { s.check(x >= 0, field, "must be >= 0") }
 
 func (s *specErrs) err() error { return errors.Join(s.errs...) }
 

@@ -1,11 +1,13 @@
 package window
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"math/rand/v2"
 	"slices"
 	"testing"
+	"time"
 
 	"github.com/tallyward/tallyward/internal/sat"
 )
@@ -26,8 +28,8 @@ func closeTo(got, want, scale float64) bool {
 func TestDecayedFastVsNaive(t *testing.T) {
 	for seed := range uint64(10000) {
 		rng := rand.New(rand.NewPCG(seed, 7))
-		spec := DecaySpec{HalfLife: int64(1 + rng.IntN(30)), Horizon: int64(rng.IntN(40)), RebaseEvery: int64(1 + rng.IntN(4))}
-		d := NewDecayed(spec)
+		spec := DecaySpec{HalfLife: time.Duration(int64(1 + rng.IntN(30))), Horizon: time.Duration(int64(rng.IntN(40))), RebaseEvery: int64(1 + rng.IntN(4))}
+		d := must(NewDecayed(spec))
 		var evs []event
 		maxT := int64(math.MinInt64)
 		for i, ts := range randomStream(rng, 1+rng.IntN(40)) {
@@ -74,7 +76,7 @@ func checkDecayedQuery(t *testing.T, d *Decayed, evs []event, maxT, q int64, ctx
 		}
 		vr = m2 / w
 	}
-	if q < maxT-d.spec.Horizon {
+	if q < maxT-int64(d.spec.Horizon) {
 		w, s, mean, vr = math.NaN(), math.NaN(), math.NaN(), math.NaN()
 	}
 	got := [4]float64{d.CountAt(q), d.SumAt(q), d.MeanAt(q), d.VarianceAt(q)}
@@ -114,7 +116,7 @@ func (d *Decayed) checkInvariants() error {
 
 func decayedRoundTrip(t *testing.T, d *Decayed) {
 	t.Helper()
-	e := NewDecayed(d.spec)
+	e := must(NewDecayed(d.spec))
 	e.Add(99, 1) // dirty state must be replaced
 	roundTripCodec(t, d, e, func() bool {
 		return e.seen == d.seen && e.maxT == d.maxT && e.land == d.land && e.w == d.w &&
@@ -171,17 +173,17 @@ func naiveRecency(ts []int64, q, gap int64) (last int64, ok bool, session uint64
 func TestRecencyFastVsNaive(t *testing.T) {
 	for seed := range uint64(10000) {
 		rng := rand.New(rand.NewPCG(seed, 8))
-		spec := RecencySpec{Gap: int64(1 + rng.IntN(15)), Horizon: int64(rng.IntN(30))}
+		spec := RecencySpec{Gap: time.Duration(int64(1 + rng.IntN(15))), Horizon: time.Duration(int64(rng.IntN(30)))}
 		bounded := true // exact until a bridging event arrives
 		clamp := seed%2 == 0
-		r := NewRecency(spec)
+		r := must(NewRecency(spec))
 		var ts []int64
 		maxT := int64(math.MinInt64)
 		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
-			if clamp && len(ts) > 0 && x < maxT-spec.Horizon {
-				x = maxT - spec.Horizon
+			if clamp && len(ts) > 0 && x < maxT-int64(spec.Horizon) {
+				x = maxT - int64(spec.Horizon)
 			}
-			if bridges(ts, x, max(maxT, x)-spec.Horizon, spec.Gap) {
+			if bridges(ts, x, max(maxT, x)-int64(spec.Horizon), int64(spec.Gap)) {
 				bounded = false // the documented undercount may happen from here on
 			}
 			r.Add(x)
@@ -190,7 +192,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 			if rng.IntN(8) == 0 {
 				recencyRoundTrip(t, r)
 			}
-			cutoff := maxT - spec.Horizon
+			cutoff := maxT - int64(spec.Horizon)
 			var maxFolded int64 = math.MinInt64
 			for _, u := range ts {
 				if u <= cutoff {
@@ -200,7 +202,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 			for range 3 {
 				q := maxT - int64(rng.IntN(int(spec.Horizon)*2+10)) + int64(rng.IntN(20))
 				answerable := q >= cutoff || (maxFolded != math.MinInt64 && q >= maxFolded)
-				last, ok, sess := naiveRecency(ts, q, spec.Gap)
+				last, ok, sess := naiveRecency(ts, q, int64(spec.Gap))
 				if !answerable {
 					last, ok, sess = 0, false, 0
 				}
@@ -228,7 +230,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 
 func recencyRoundTrip(t *testing.T, r *Recency) {
 	t.Helper()
-	e := NewRecency(r.spec)
+	e := must(NewRecency(r.spec))
 	e.Add(5)
 	roundTripCodec(t, r, e, func() bool {
 		return e.seen == r.seen && e.maxT == r.maxT && e.first == r.first && e.folded == r.folded &&
@@ -274,18 +276,18 @@ func TestVelocityFastVsNaive(t *testing.T) {
 		rng := rand.New(rand.NewPCG(seed, 9))
 		r := int64(1 + rng.IntN(5))
 		ns := int64(1 + rng.IntN(4))
-		spec := VelocitySpec{Short: ns * r, Long: (ns + 1 + int64(rng.IntN(8))) * r, Resolution: r,
-			Horizon: int64(rng.IntN(30)), Smoothing: float64(rng.IntN(3)) / 2}
-		v := NewVelocity(spec)
+		spec := VelocitySpec{Short: time.Duration(ns * r), Long: time.Duration((ns + 1 + int64(rng.IntN(8))) * r), Resolution: time.Duration(r),
+			Horizon: time.Duration(int64(rng.IntN(30))), Smoothing: float64(rng.IntN(3)) / 2}
+		v := must(NewVelocity(spec))
 		m := &naiveSliding{spec: spec.sliding(), op: opCount}
 		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
 			if v.Add(x) != m.add(x, 0) {
 				t.Fatalf("seed %d: Add(%d) disagrees", seed, x)
 			}
 			q := m.maxT - int64(rng.IntN(40)) + 5
-			cs := float64(len(m.selected(q, spec.Short/r)))
-			cl := float64(len(m.selected(q, spec.Long/r)))
-			a := spec.alpha()
+			cs := float64(len(m.selected(q, int64(spec.Short)/r)))
+			cl := float64(len(m.selected(q, int64(spec.Long)/r)))
+			a := cmp.Or(spec.Smoothing, 1)
 			want := (cs + a) / (cl*float64(spec.Short)/float64(spec.Long) + a)
 			if got := v.RatioAt(q); got != want {
 				t.Fatalf("seed %d %+v add #%d: RatioAt(%d) = %v, want %v", seed, spec, i, q, got, want)

@@ -1,27 +1,35 @@
 package window
 
 import (
+	"cmp"
 	"encoding/binary"
 	"math"
+	"time"
 	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// RecencySpec defines first/last-seen tracking and gap-based sessions.
+// RecencySpec defines first/last-seen tracking and gap-based sessions. A
+// zero field means its default.
 type RecencySpec struct {
-	// Gap in nanoseconds, > 0: two consecutive events (in time order) at
-	// most Gap apart belong to the same session. No default.
-	Gap int64
+	// Gap, > 0: two consecutive events (in time order) at most Gap apart
+	// belong to the same session. Default 30 minutes (common practice for
+	// web sessions).
+	Gap time.Duration
 	// Horizon as in SlidingSpec: how far behind the newest added time
 	// queries stay exact, >= 0. Default 0.
-	Horizon int64
+	Horizon time.Duration
 }
+
+// DefaultGap is RecencySpec's default Gap.
+const DefaultGap = 30 * time.Minute
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
 // each matching ErrInvalidSpec), or nil.
 func (s RecencySpec) Validate() error {
+	s.Gap = cmp.Or(s.Gap, DefaultGap)
 	e := specErrs{spec: "RecencySpec"}
 	e.positive("Gap", s.Gap)
 	e.nonNegative("Horizon", s.Horizon)
@@ -49,8 +57,8 @@ func (s RecencySpec) Validate() error {
 // is not merged in, so the session count undercounts. Events that arrive
 // within Horizon of the newest time never cause it.
 //
-// Build with NewRecency; an aggregate built from an invalid spec ignores
-// Add. Not safe for concurrent use.
+// Build with NewRecency; the zero value ignores Add. Not safe for
+// concurrent use.
 //
 // Invariants: !seen implies an empty state; first <= every retained time;
 // folded implies sStart <= sLast <= cutoff and sCount >= 1; raw is sorted
@@ -75,16 +83,19 @@ type session struct {
 	count       uint64
 }
 
-// NewRecency returns an empty recency tracker over spec.
-func NewRecency(spec RecencySpec) *Recency {
-	r := &Recency{spec: spec, valid: spec.Validate() == nil}
-	if r.valid {
-		r.raw.buf = make([]event, 0, 8)
+// NewRecency returns an empty recency tracker over spec, or the errors of
+// spec.Validate.
+func NewRecency(spec RecencySpec) (*Recency, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
 	}
-	return r
+	spec.Gap = cmp.Or(spec.Gap, DefaultGap)
+	r := &Recency{spec: spec, valid: true}
+	r.raw.buf = make([]event, 0, 8)
+	return r, nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (r *Recency) Spec() RecencySpec { return r.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -94,18 +105,18 @@ func (r *Recency) Reset() {
 	r.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (r *Recency) Newest() int64 { return r.maxT }
+// Newest returns the largest time added, and false if none was.
+func (r *Recency) Newest() (int64, bool) { return r.maxT, r.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (r *Recency) SizeBytes() int {
 	return int(unsafe.Sizeof(*r)) + r.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (r *Recency) cutoff() int64 { return sat.Sub(r.maxT, r.spec.Horizon) }
+func (r *Recency) cutoff() int64 { return sat.Sub(r.maxT, int64(r.spec.Horizon)) }
 
 // within reports whether b − a <= Gap for a <= b, without overflow.
-func (r *Recency) within(a, b int64) bool { return sat.Sub(b, a) <= r.spec.Gap }
+func (r *Recency) within(a, b int64) bool { return sat.Sub(b, a) <= int64(r.spec.Gap) }
 
 // Add records one event at time t. It returns false only when the spec is
 // invalid.
@@ -286,7 +297,7 @@ func (r *Recency) decode(b []byte, store bool) error {
 	if !ok {
 		return rd.Err
 	}
-	cutoff := sat.Sub(maxT, r.spec.Horizon)
+	cutoff := sat.Sub(maxT, int64(r.spec.Horizon))
 	first := back(&rd, maxT, rd.Uvarint(), math.MinInt64, "first")
 	var s session
 	folded := flags&flagFolded != 0

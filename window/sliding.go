@@ -1,8 +1,10 @@
 package window
 
 import (
+	"cmp"
 	"encoding/binary"
 	"math"
+	"time"
 	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -10,28 +12,36 @@ import (
 )
 
 // SlidingSpec defines a sliding window over event time, cut into panes.
-//
-// The zero value is invalid; every field must be set.
+// A zero field means its default; Window is required.
 type SlidingSpec struct {
-	// Window is the window length in nanoseconds. It must be > 0 and a
-	// multiple of Resolution. No default.
-	Window int64
-	// Resolution is the pane width in nanoseconds, > 0. Panes are aligned to
-	// the Unix epoch: pane(t) = floor(t / Resolution). A smaller resolution
-	// narrows the trailing-edge error and costs more panes. No default.
-	Resolution int64
-	// Horizon is how far behind the newest added time, in nanoseconds, Add
-	// and as-of queries stay exact; >= 0. A pipeline passes its allowed
-	// disorder. Default 0.
-	Horizon int64
+	// Window is the window length, > 0 and a multiple of Resolution.
+	// Required; no default.
+	Window time.Duration
+	// Resolution is the pane width, > 0. Panes are aligned to the Unix
+	// epoch: pane(t) = floor(t / Resolution). A smaller resolution narrows
+	// the trailing-edge error and costs more panes. Default Window/60 (at
+	// least 1 ns).
+	Resolution time.Duration
+	// Horizon is how far behind the newest added time Add and as-of queries
+	// stay exact; >= 0. A pipeline passes its allowed disorder. Default 0.
+	Horizon time.Duration
+}
+
+// withDefaults returns s with zero fields set to their defaults.
+func (s SlidingSpec) withDefaults() SlidingSpec {
+	if s.Window > 0 {
+		s.Resolution = cmp.Or(s.Resolution, max(s.Window/60, 1))
+	}
+	return s
 }
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
-// each matching ErrInvalidSpec), or nil.
+// each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s SlidingSpec) Validate() error {
+	s = s.withDefaults()
 	e := specErrs{spec: "SlidingSpec"}
 	e.positive("Window", s.Window)
-	e.positive("Resolution", s.Resolution)
+	e.check(s.Window <= 0 || s.Resolution > 0, "Resolution", "must be > 0")
 	e.check(s.Window <= 0 || s.Resolution <= 0 || s.Window%s.Resolution == 0,
 		"Window", "must be a multiple of Resolution")
 	e.nonNegative("Horizon", s.Horizon)
@@ -96,8 +106,10 @@ type pane struct {
 //   - when seen, cutPane, cutStart, cutNext describe pane(cutoff).
 type ring struct {
 	spec  SlidingSpec
-	valid bool  // spec.Validate() == nil
+	valid bool  // built by a constructor from a valid spec
 	n     int64 // Window / Resolution
+	res   int64 // Resolution in ns
+	hor   int64 // Horizon in ns
 	op    op
 	kind  byte
 
@@ -111,20 +123,22 @@ type ring struct {
 	raw                        seq[event]
 }
 
-func (g *ring) init(spec SlidingSpec, o op, kind byte) {
-	g.spec, g.op, g.kind = spec, o, kind
-	g.valid = spec.Validate() == nil
-	if !g.valid {
-		return
+func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
+	if err := spec.Validate(); err != nil {
+		return err
 	}
-	g.n = spec.Window / spec.Resolution
+	spec = spec.withDefaults()
+	g.spec, g.op, g.kind, g.valid = spec, o, kind, true
+	g.res, g.hor = int64(spec.Resolution), int64(spec.Horizon)
+	g.n = int64(spec.Window / spec.Resolution)
 	// Small to start: most entities are sparse. Storage grows by append and
 	// is then reused, so the steady state allocates nothing.
 	g.panes.buf = make([]pane, 0, min(g.n+1, 4))
 	g.raw.buf = make([]event, 0, 4)
+	return nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (g *ring) Spec() SlidingSpec { return g.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -134,11 +148,11 @@ func (g *ring) Reset() {
 	g.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (g *ring) Newest() int64 { return g.maxT }
+// Newest returns the largest time added, and false if none was.
+func (g *ring) Newest() (int64, bool) { return g.maxT, g.seen }
 
-// Len returns the number of events retained (folded into panes or raw).
-func (g *ring) Len() uint64 { return g.total }
+// Count returns the number of events retained (folded into panes or raw).
+func (g *ring) Count() uint64 { return g.total }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (g *ring) SizeBytes() int {
@@ -146,12 +160,12 @@ func (g *ring) SizeBytes() int {
 		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.spec.Resolution) }
+func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.res) }
 
 // paneStart is the first time of pane idx, saturated to the int64 range.
-func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.spec.Resolution) }
+func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.res) }
 
-func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.spec.Horizon) }
+func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.hor) }
 
 func (g *ring) setCut() {
 	g.cutPane = g.paneOf(g.cutoff())
@@ -388,7 +402,7 @@ func (g *ring) decode(b []byte, store bool) error {
 	if !ok {
 		return r.Err
 	}
-	cutoff := sat.Sub(maxT, g.spec.Horizon)
+	cutoff := sat.Sub(maxT, g.hor)
 	pc := g.paneOf(cutoff)
 	floor := sat.Sub(pc, g.n-1)
 	vbytes := 0
