@@ -148,8 +148,8 @@ func (g *ring) Reset() {
 	g.raw.clear()
 }
 
-// Newest returns the largest time added, and false if none was.
-func (g *ring) Newest() (int64, bool) { return g.maxT, g.seen }
+// Newest returns the largest time added; ok is false (and t 0) if none.
+func (g *ring) Newest() (t int64, ok bool) { return g.maxT, g.seen }
 
 // Count returns the number of events retained (folded into panes or raw).
 func (g *ring) Count() uint64 { return g.total }
