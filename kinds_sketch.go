@@ -77,17 +77,6 @@ func (k Frequency) params() sketch.CountMinParams {
 	return sketch.CountMinParams{Epsilon: cmp.Or(k.Epsilon, 0.01), Delta: cmp.Or(k.Delta, 0.01)}
 }
 
-// orDefault is v, or def when v is the zero value. Kinds spell their
-// defaults out through it, so that Describe is the same whether a default
-// is left zero or written explicitly.
-func orDefault[T comparable](v, def T) T {
-	var zero T
-	if v == zero {
-		return def
-	}
-	return v
-}
-
 // Describe implements Kind.
 func (k Frequency) Describe() string {
 	p := k.params()
