@@ -31,11 +31,12 @@ var (
 
 // Kind bytes. Frozen: a retired value is never reused.
 const (
-	kindDistinct   byte = 1
-	kindCountMin   byte = 2
-	kindTopK       byte = 3
-	kindQuantile   byte = 4
-	formatVersion1 byte = 1
+	kindDistinct     byte = 1
+	kindCountMin     byte = 2
+	kindTopK         byte = 3
+	kindQuantile     byte = 4
+	kindDistinctEver byte = 5
+	formatVersion1   byte = 1
 )
 
 func corruptf(format string, args ...any) error {

@@ -139,3 +139,18 @@ func FuzzQuantileUnmarshal(f *testing.F) {
 		_ = o.Merge(s)
 	})
 }
+
+func FuzzDistinctEverUnmarshal(f *testing.F) {
+	fuzzDecoder(f, goldenSeeds(f, "ever"), func() encoder {
+		d, _ := NewDistinctEver(DistinctEverSpec{Precision: 5, Horizon: 3 * sec})
+		d.Add(100*sec, 1<<40)
+		return d
+	}, func(e encoder) {
+		d := e.(*DistinctEver)
+		n, _ := d.Newest()
+		for i := range int64(40) {
+			d.Add(n+i*sec/3-2*sec, uint64(i)*0x9e3779b97f4a7c15)
+			d.DistinctAt(n + i*sec/5 - 3*sec)
+		}
+	})
+}

@@ -51,6 +51,27 @@ func goldenCases(t testing.TB) []goldenCase {
 		}
 		return b.String()
 	}
+	everSpec := DistinctEverSpec{Precision: 6, Horizon: 3 * sec}
+	ever := func(n, u int) func() encoder {
+		return func() encoder {
+			d := mustEver(t, everSpec)
+			rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
+			for i := range n {
+				d.Add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint("device-", rng.IntN(u))))
+			}
+			return d
+		}
+	}
+	renderEver := func(e encoder) string {
+		d := e.(*DistinctEver)
+		newest, _ := d.Newest()
+		var b strings.Builder
+		fmt.Fprintf(&b, "events=%d", d.Count())
+		for _, dt := range []int64{-3 * sec, -sec, 0, 4 * sec} {
+			fmt.Fprintf(&b, " at%+ds=%d", dt/sec, d.DistinctAt(newest+dt))
+		}
+		return b.String()
+	}
 	return []goldenCase{
 		{"distinct_v1_empty.bin", func() encoder { return mustDistinct(t, spec) }, renderDistinct},
 		{"distinct_v1_exact.bin", distinct(40, 12), renderDistinct},
@@ -77,6 +98,9 @@ func goldenCases(t testing.TB) []goldenCase {
 			s := e.(*TopK)
 			return fmt.Sprintf("N=%d bound=%d top=%v share=%.4f", s.Count(), s.ErrorBound(), s.Top(nil, 4), s.TopShare())
 		}},
+		{"ever_v1_empty.bin", func() encoder { return mustEver(t, everSpec) }, renderEver},
+		{"ever_v1_sparse.bin", ever(60, 25), renderEver},
+		{"ever_v1_dense.bin", ever(3000, 2500), renderEver},
 		{"quantiles_v1.bin", func() encoder {
 			s := mustQ(t, QuantileParams{RelativeAccuracy: 0.02, MaxBuckets: 32})
 			rng := rand.New(rand.NewPCG(2, 2))
