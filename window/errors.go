@@ -77,6 +77,7 @@ const (
 	kindDecayed      byte = 6
 	kindVelocity     byte = 7
 	kindRecency      byte = 8
+	kindSurge        byte = 9
 )
 
 const flagSeen byte = 1

@@ -139,6 +139,33 @@ func FuzzDecodeRecency(f *testing.F) {
 	})
 }
 
+func FuzzDecodeSurge(f *testing.F) {
+	addSeeds(f, 4, 9, "v1-surge", "v1-surge-empty")
+	f.Fuzz(func(t *testing.T, b []byte, a, h uint8) {
+		r := time.Duration(int64(a&3)+1) * minute
+		spec := SurgeSpec{Window: 5 * r, HalfLife: time.Duration(int64(a>>2)+1) * hour, Resolution: r, Horizon: time.Duration(int64(h) * 10 * second)}
+		fresh := func() codec { s := must(NewSurge(spec)); s.Add(t0); return s }
+		checkDecoded(t, b, fresh, func(c codec) error {
+			s := c.(*Surge)
+			n, _ := s.Newest()
+			_ = s.RatioAt(n)
+			_ = s.RatioAt(n - int64(spec.Horizon) - 1)
+			s.Add(n + 1)
+			s.Add(n - int64(spec.Window))
+			if err := s.short.checkInvariants(); err != nil {
+				return err
+			}
+			if err := s.base.checkInvariants(); err != nil {
+				return err
+			}
+			if t1, _ := s.short.Newest(); t1 != s.base.maxT {
+				return errors.New("parts disagree on the newest time")
+			}
+			return nil
+		})
+	})
+}
+
 func (r *Recency) checkInvariants() error {
 	if !r.seen {
 		if r.folded || r.raw.len() != 0 {

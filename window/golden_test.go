@@ -67,6 +67,16 @@ func goldenStates() map[string]func() codec {
 			return c
 		},
 		"v1-sliding-count-empty": func() codec { return must(NewSlidingCount(spec)) },
+		"v1-surge": func() codec {
+			c := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}))
+			for _, t := range ts {
+				c.Add(t)
+			}
+			return c
+		},
+		"v1-surge-empty": func() codec {
+			return must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}))
+		},
 	}
 }
 

@@ -295,3 +295,73 @@ func TestVelocityFastVsNaive(t *testing.T) {
 		}
 	}
 }
+
+// TestSurgeFastVsNaive checks RatioAt against the formula on the type over
+// a short count and a decayed count recomputed from the raw events
+// (Σ 2^(−(t−ti)/h) summed directly, no landmark), on 5k seeded streams.
+func TestSurgeFastVsNaive(t *testing.T) {
+	for seed := range uint64(5000) {
+		rng := rand.New(rand.NewPCG(seed, 11))
+		r := int64(1 + rng.IntN(5))
+		spec := SurgeSpec{Window: time.Duration(r * int64(1+rng.IntN(6))), HalfLife: time.Duration(1 + rng.IntN(200)),
+			Resolution: time.Duration(r), Horizon: time.Duration(rng.IntN(30)), Smoothing: float64(rng.IntN(3)) / 2}
+		s := must(NewSurge(spec))
+		m := &naiveSliding{spec: spec.sliding(), op: opCount}
+		a := cmp.Or(spec.Smoothing, 1)
+		k := float64(spec.Window) * math.Ln2 / float64(spec.HalfLife)
+		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
+			if s.Add(x) != m.add(x, 0) {
+				t.Fatalf("seed %d: Add(%d) disagrees", seed, x)
+			}
+			q := m.maxT - int64(rng.IntN(40)) + 5
+			got := s.RatioAt(q)
+			if q < m.cutoff() {
+				if !math.IsNaN(got) {
+					t.Fatalf("seed %d: RatioAt(%d) below the cutoff = %v, want NaN", seed, q, got)
+				}
+				continue
+			}
+			c := float64(len(m.selected(q, int64(spec.Window)/r)))
+			var d float64
+			for _, e := range m.events {
+				if e.t <= q {
+					d += math.Exp2(-float64(q-e.t) / float64(spec.HalfLife))
+				}
+			}
+			want := (c + a) / (d*k + a)
+			if !closeTo(got, want, want) {
+				t.Fatalf("seed %d %+v add #%d: RatioAt(%d) = %v, want %v", seed, spec, i, q, got, want)
+			}
+		}
+		roundTripCodec(t, s, must(NewSurge(spec)), func() bool { return true })
+	}
+}
+
+// Worked values of the formula on Surge (derived): a new entity reads 1;
+// a steady rate of one event per Window/4 over many half-lives reads about
+// 1; one burst of 9 events in the window over an empty history, with
+// Window = HalfLife·ln2 (so W·ln2/h = ln2² ≈ 0.48), reads (9+1)/(9·0.48+1).
+func TestSurgeWorkedValues(t *testing.T) {
+	s := must(NewSurge(SurgeSpec{Window: time.Hour, HalfLife: 24 * time.Hour, Resolution: time.Minute}))
+	if got := s.RatioAt(t0); got != 1 {
+		t.Fatalf("new entity reads %v, want 1", got)
+	}
+	step := int64(15 * time.Minute)
+	var x int64
+	for x = t0; x < t0+40*24*int64(time.Hour); x += step {
+		s.Add(x)
+	}
+	if got := s.RatioAt(x - step); math.Abs(got-1) > 0.02 {
+		t.Fatalf("steady rate reads %v, want about 1", got)
+	}
+	h := 100 * time.Second
+	w := time.Duration(float64(h) * math.Ln2)
+	b := must(NewSurge(SurgeSpec{Window: w, HalfLife: h, Resolution: w}))
+	for range 9 {
+		b.Add(0)
+	}
+	want := 10 / (9*float64(w)*math.Ln2/float64(h) + 1) // w is h·ln2 cut to whole ns
+	if got := b.RatioAt(0); math.Abs(got-want) > 1e-12 {
+		t.Fatalf("burst reads %v, want %v", got, want)
+	}
+}
