@@ -269,7 +269,15 @@ func (l *tailedSummary) AppendBinary(dst []byte) ([]byte, error) {
 var errTailed = errors.New("tailed summary")
 
 // UnmarshalBinary decodes the format of AppendBinary; l is unchanged on
-// error.
+// error. Layout, version 1 (docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	byte     1 if any event was added, else 0
+//	varint   newest time
+//	uvarint  number of raw events n, then n times, oldest first:
+//	         uvarint newest − t, 8 bytes value (IEEE 754, little endian),
+//	         8 bytes item hash (little endian)
+//	rest     the summary's own versioned encoding (package sketch)
 func (l *tailedSummary) UnmarshalBinary(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != tailedVersion1 {

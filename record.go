@@ -91,7 +91,15 @@ func peekLast(b []byte) (int64, error) {
 }
 
 // decodeRecord decodes b into fresh aggregates made by fresh. It returns an
-// error, never panics, on any malformed input.
+// error, never panics, on any malformed input. Layout, version 1 (as
+// written by record.AppendBinary; docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	varint   last event time applied
+//	uvarint  number of features n (must equal the definition's)
+//	n times: uvarint length, then that many bytes of the feature's own
+//	         versioned encoding
+//	then end of input
 func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != recordVersion1 {
