@@ -1,8 +1,10 @@
 // Package sketch holds mergeable summaries with versioned binary encodings
 // and stated error bounds, for per-entity features: a windowed distinct
-// count (Distinct), item frequencies (CountMin), heavy hitters (TopK) and
-// relative-error quantiles (Quantile). It does no I/O and depends on no
-// other tallyward package.
+// count (Distinct), a distinct count over a whole history (DistinctEver),
+// item frequencies (CountMin), heavy hitters (TopK) and relative-error
+// quantiles (Quantile). It does no I/O and depends on no other tallyward
+// package but two internal helpers (the shared decoder and saturating
+// arithmetic).
 //
 // # Items, time and hashing
 //
@@ -28,9 +30,13 @@
 //   - Quantile: every estimate within RelativeAccuracy of the exact value
 //     of its rank, for positive, negative and zero values, as long as that
 //     rank is not in a collapsed bucket (Masson, Rim, Lee, 2019).
+//   - DistinctEver: near-exact while its sparse form is small (25-bit
+//     indices; Heule, Nunkesser, Hall, EDBT 2013), then relative standard
+//     error 1.04/sqrt(2^p); as of any t >= Newest()-Horizon it never counts
+//     an item newer than t.
 //
 // Each type reports its bound: Distinct.RelativeError, CountMin.ErrorBound,
-// TopK.ErrorBound, Quantile.RelativeError.
+// TopK.ErrorBound, Quantile.RelativeError, DistinctEver.RelativeError.
 //
 // # Order
 //
@@ -52,7 +58,8 @@
 //
 // Every type has AppendBinary and UnmarshalBinary. The first byte is the
 // format version (1), the second the kind (1 distinct, 2 Count-Min, 3
-// Space-Saving, 4 quantiles; frozen, never reused); the byte table is in
+// Space-Saving, 4 quantile, 5 distinct-ever; frozen, never reused); the
+// byte table is in
 // each UnmarshalBinary doc comment. Decoders reject unknown versions
 // (ErrUnknownVersion), trailing bytes (ErrTrailingBytes) and anything
 // malformed (ErrCorrupt), wrapped with context for errors.Is, and leave

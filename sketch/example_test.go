@@ -48,3 +48,18 @@ func ExampleTopK() {
 	fmt.Printf("%.2f\n", s.TopShare())
 	// Output: 0.60
 }
+
+// Distinct devices ever seen for one account, however long ago.
+func ExampleDistinctEver() {
+	d, err := sketch.NewDistinctEver(sketch.DistinctEverSpec{Horizon: 5 * time.Second})
+	if err != nil {
+		panic(err)
+	}
+	t0 := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC).UnixNano()
+	day := int64(24 * time.Hour)
+	d.Add(t0, sketch.HashString("device-a"))
+	d.Add(t0+200*day, sketch.HashString("device-b"))
+	d.Add(t0+400*day, sketch.HashString("device-a"))
+	fmt.Println(d.DistinctAt(t0+400*day), d.Count())
+	// Output: 2 3
+}

@@ -1,9 +1,12 @@
 // Package window holds pure windowed aggregates over event time: sliding
 // count, sum, min, max and mean over epoch-aligned panes; exponentially
-// decayed count, sum, mean and variance; a velocity ratio; first/last seen
-// and gap-based sessions; and tumbling/hopping window assignment. It does no
-// I/O, reads no clock and depends on no other tallyward package, so it can
-// be used on its own as a fast sliding counter.
+// decayed count, sum, mean and variance; a velocity ratio, against a
+// longer window (Velocity) or against the entity's own decayed history
+// (Surge); first/last seen and gap-based sessions; and tumbling/hopping
+// window assignment. It does no I/O, reads no clock and depends on no other
+// tallyward package but two internal helpers (the shared decoder and
+// saturating arithmetic), so it can be used on its own as a fast sliding
+// counter.
 //
 // # Contract
 //

@@ -54,3 +54,30 @@ func ExampleVelocity() {
 	// 1
 	// 3.750
 }
+
+// An account that signs in about four times an hour, then nine times in
+// ten minutes: the surge ratio against its own one-day decayed baseline.
+func ExampleSurge() {
+	s, err := window.NewSurge(window.SurgeSpec{Window: 10 * time.Minute, HalfLife: 24 * time.Hour, Resolution: time.Minute})
+	if err != nil {
+		panic(err)
+	}
+	t0 := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC).UnixNano()
+	fmt.Printf("new: %.2f\n", s.RatioAt(t0))
+	t := t0
+	for range 4 * 24 * 7 { // a week at the usual pace
+		s.Add(t)
+		t += int64(15 * time.Minute)
+	}
+	fmt.Printf("usual: %.2f\n", s.RatioAt(t-int64(15*time.Minute)))
+	for i := range 9 {
+		s.Add(t + int64(i)*int64(time.Minute))
+	}
+	fmt.Printf("burst: %.2f\n", s.RatioAt(t+int64(9*time.Minute)))
+	// "usual" is above 1 because the asking event counts itself: one event
+	// in ten minutes against a baseline of 2/3.
+	// Output:
+	// new: 1.00
+	// usual: 1.20
+	// burst: 5.88
+}
