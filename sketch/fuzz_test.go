@@ -146,11 +146,16 @@ func FuzzDistinctEverUnmarshal(f *testing.F) {
 		d.Add(100*sec, 1<<40)
 		return d
 	}, func(e encoder) {
+		// Use the decoded state past its horizon and into the dense range.
 		d := e.(*DistinctEver)
 		n, _ := d.Newest()
-		for i := range int64(40) {
-			d.Add(n+i*sec/3-2*sec, uint64(i)*0x9e3779b97f4a7c15)
-			d.DistinctAt(n + i*sec/5 - 3*sec)
+		for i := range uint64(300) {
+			if d.Add(n+int64(i)*sec/7, i*0x9e3779b97f4a7c15); i%25 == 0 {
+				_ = d.DistinctAt(n)
+			}
+		}
+		if _, err := d.AppendBinary(nil); err != nil {
+			panic(err)
 		}
 	})
 }

@@ -31,46 +31,38 @@ type goldenCase struct {
 func goldenCases(t testing.TB) []goldenCase {
 	spec := DistinctSpec{Window: 10 * sec, Resolution: 2 * sec, Horizon: 3 * sec, Precision: 6, ExactLimit: 20}
 	t0 := int64(1_767_225_600) * sec // 2026-01-01T00:00:00Z
-	distinct := func(n, u int) func() encoder {
-		return func() encoder {
-			d := mustDistinct(t, spec)
-			rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
-			for i := range n {
-				d.Add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint("acct-", rng.IntN(u))))
-			}
-			return d
+	// feed adds n items drawn from u distinct ones, a quarter second apart
+	// with up to 2 s of disorder.
+	feed := func(n, u int, prefix string, add func(int64, uint64) bool) {
+		rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
+		for i := range n {
+			add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint(prefix, rng.IntN(u))))
 		}
+	}
+	// answers renders head and the answers at newest+dt for each dt.
+	answers := func(head string, newest int64, at func(int64) uint64, dts ...int64) string {
+		b := []byte(head)
+		for _, dt := range dts {
+			b = fmt.Appendf(b, " at%+ds=%d", dt/sec, at(newest+dt))
+		}
+		return string(b)
+	}
+	distinct := func(n, u int) func() encoder {
+		return func() encoder { d := mustDistinct(t, spec); feed(n, u, "acct-", d.Add); return d }
 	}
 	renderDistinct := func(e encoder) string {
 		d := e.(*Distinct)
 		newest, _ := d.Newest()
-		var b strings.Builder
-		fmt.Fprintf(&b, "exact=%v", d.Exact())
-		for _, dt := range []int64{-3 * sec, -sec, 0, 4 * sec, 9 * sec} {
-			fmt.Fprintf(&b, " at%+ds=%d", dt/sec, d.DistinctAt(newest+dt))
-		}
-		return b.String()
+		return answers(fmt.Sprintf("exact=%v", d.Exact()), newest, d.DistinctAt, -3*sec, -sec, 0, 4*sec, 9*sec)
 	}
 	everSpec := DistinctEverSpec{Precision: 6, Horizon: 3 * sec}
 	ever := func(n, u int) func() encoder {
-		return func() encoder {
-			d := mustEver(t, everSpec)
-			rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
-			for i := range n {
-				d.Add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint("device-", rng.IntN(u))))
-			}
-			return d
-		}
+		return func() encoder { d := mustEver(t, everSpec); feed(n, u, "device-", d.Add); return d }
 	}
 	renderEver := func(e encoder) string {
 		d := e.(*DistinctEver)
 		newest, _ := d.Newest()
-		var b strings.Builder
-		fmt.Fprintf(&b, "events=%d", d.Count())
-		for _, dt := range []int64{-3 * sec, -sec, 0, 4 * sec} {
-			fmt.Fprintf(&b, " at%+ds=%d", dt/sec, d.DistinctAt(newest+dt))
-		}
-		return b.String()
+		return answers(fmt.Sprintf("events=%d", d.Count()), newest, d.DistinctAt, -3*sec, -sec, 0, 4*sec)
 	}
 	return []goldenCase{
 		{"distinct_v1_empty.bin", func() encoder { return mustDistinct(t, spec) }, renderDistinct},

@@ -30,6 +30,7 @@ type codec interface {
 func goldenStates() map[string]func() codec {
 	ts := []int64{t0 + 5*second, t0 + 61*second, t0 + 62*second, t0 + 3*minute, t0 + 3*minute + 1, t0 + 4*minute}
 	spec := SlidingSpec{Window: hour, Resolution: minute, Horizon: 90 * second}
+	surge := SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}
 	feedV := func(add func(int64, float64) bool) {
 		for i, t := range ts {
 			add(t, float64(i)*1.5-2)
@@ -68,15 +69,11 @@ func goldenStates() map[string]func() codec {
 		},
 		"v1-sliding-count-empty": func() codec { return must(NewSlidingCount(spec)) },
 		"v1-surge": func() codec {
-			c := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}))
-			for _, t := range ts {
-				c.Add(t)
-			}
+			c := must(NewSurge(surge))
+			feedV(func(t int64, _ float64) bool { return c.Add(t) })
 			return c
 		},
-		"v1-surge-empty": func() codec {
-			return must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}))
-		},
+		"v1-surge-empty": func() codec { return must(NewSurge(surge)) },
 	}
 }
 
