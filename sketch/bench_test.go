@@ -311,3 +311,48 @@ func BenchmarkQuantile(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkDistinctEver: one add and one as-of query per event, the
+// pipeline's pattern, on an entity that already holds n distinct items,
+// with events cycling through 4n items (so a quarter of the adds are new
+// early on and repeats later). The baseline is the plain library pattern
+// the summary avoids: insert, then Estimate, on every event.
+//
+//	go test -run '^$' -bench DistinctEver -benchtime 20000x ./sketch/
+func BenchmarkDistinctEver(b *testing.B) {
+	for _, n := range []int{10, 1_000, 100_000} {
+		hs := benchHashes(4*n, 3)
+		spec := DistinctEverSpec{Horizon: 5 * sec}
+		fill := func() *DistinctEver {
+			d := mustEver(b, spec)
+			for i, h := range hs[:n] {
+				d.Add(benchT0+int64(i)*sec/100, h)
+			}
+			return d
+		}
+		b.Run(fmt.Sprintf("n=%d/summary", n), func(b *testing.B) {
+			d := fill()
+			t := benchT0 + int64(n)*sec/100
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				t += sec / 100
+				d.Add(t, hs[i%len(hs)])
+				_ = d.DistinctAt(t)
+			}
+			b.ReportMetric(float64(d.SizeBytes()), "bytes")
+		})
+		b.Run(fmt.Sprintf("n=%d/baseline-estimate-per-event", n), func(b *testing.B) {
+			s, _ := hyperloglog.NewSketch(defaultEverPrecision, true)
+			for _, h := range hs[:n] {
+				s.InsertHash(h)
+			}
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				s.InsertHash(hs[i%len(hs)])
+				_ = s.Estimate()
+			}
+		})
+	}
+}

@@ -54,10 +54,12 @@ func (s DistinctEverSpec) Validate() error {
 //
 // It is backed by github.com/axiomhq/hyperloglog with its sparse
 // representation (Heule, Nunkesser, Hall, "HyperLogLog in practice",
-// EDBT 2013: 25-bit sparse indices, near-exact while the set is small)
-// and, once the sparse form outgrows 2^p bytes, 2^p dense registers with
-// relative standard error 1.04/sqrt(2^p) (Flajolet, Fusy, Gandouet,
-// Meunier, AofA 2007).
+// EDBT 2013: 25-bit sparse indices, near-exact while the set is small;
+// the library's estimate) and, once the sparse form outgrows 2^p bytes,
+// the library's 2^p dense registers, estimated from a histogram of their
+// values by Ertl's improved raw estimator (O(64), where the library's own
+// dense estimate costs a math.Pow per register), with relative standard
+// error 1.04/sqrt(2^p) (Flajolet, Fusy, Gandouet, Meunier, AofA 2007).
 //
 // As of t: items added at times <= Newest()-Horizon are folded into the
 // sketch; newer ones are kept with their times. DistinctAt(t) counts the
@@ -72,21 +74,28 @@ func (s DistinctEverSpec) Validate() error {
 // depends on the add sequence. Apply items in a canonical order for
 // bit-identical results, as the pipeline does.
 //
-// Cost: Add amortised O(1) (a library insert); memory a few bytes per
-// distinct item while sparse, then 2·2^p bytes (the library's registers
-// and a copy that tells whether an add raised one). DistinctAt returns a
-// cached estimate unless the sketch changed: a sparse estimate is
-// O(sparse size), a dense one costs one library Estimate (a math.Pow per
-// register, ~0.2 ms at p=12), paid only after an add raised a register,
-// which becomes rarer as the set grows. Not safe for concurrent use.
+// Items within the horizon are kept once each, with their earliest time.
+//
+// Cost: Add amortised O(1) plus a scan of the kept items; memory a few
+// bytes per distinct item while sparse, then 2·2^p bytes (the library's
+// registers and a copy with its histogram). DistinctAt: dense, O(64 + kept
+// items at or before t); sparse, a copy of the sparse form plus the kept
+// items (O(its size + kept items)) when either changed since the last
+// query, else a cached answer. Measured per add+query (BenchmarkDistinctEver,
+// p=12, 5 s horizon, 100 events/s, 2 shared cores): about 0.8 us at 10
+// items, 6 us at 100k (dense), and about 110 us for a sparse set taking a
+// new item every event (500 new items kept), against 2, 460 and 205 us
+// for the library's insert-then-Estimate. Not safe for concurrent use.
 type DistinctEver struct {
 	spec   DistinctEverSpec // defaults applied
 	hll    *hyperloglog.Sketch
 	dense  bool    // the library switched to dense registers (as last seen)
 	regs   []uint8 // dense: a copy of the library's registers
-	folded uint64  // items inserted into hll
+	hist   [66]uint32
+	folded uint64 // items inserted into hll
 
-	// Invariant: sorted by t, ties in add order; every t > newest-Horizon.
+	// Invariant: sorted by t, ties in add order; every t > newest-Horizon;
+	// no hash twice (each item at its earliest time).
 	tail   []everItem
 	newest int64
 	has    bool
@@ -95,6 +104,7 @@ type DistinctEver struct {
 	estOK   bool
 	est     uint64
 	scratch []byte
+	raised  []uint32
 }
 
 type everItem struct {
@@ -120,7 +130,7 @@ func (d *DistinctEver) Reset() {
 	if err != nil {
 		panic(err) // unreachable: the precision was validated
 	}
-	*d = DistinctEver{spec: d.spec, hll: hll, tail: d.tail[:0], scratch: d.scratch[:0]}
+	*d = DistinctEver{spec: d.spec, hll: hll, tail: d.tail[:0], scratch: d.scratch[:0], raised: d.raised[:0]}
 }
 
 // Spec returns the spec with defaults applied.
@@ -159,8 +169,18 @@ func (d *DistinctEver) Add(t int64, h uint64) bool {
 		d.insert(h)
 		return true
 	}
+	for k, e := range d.tail {
+		if e.h == h {
+			if e.t <= t {
+				return true // kept already, at an earlier time
+			}
+			d.tail = slices.Delete(d.tail, k, k+1)
+			break
+		}
+	}
 	i := d.upTo(t)
 	d.tail = slices.Insert(d.tail, i, everItem{t, h})
+	d.estOK = d.estOK && d.dense // sparse: the cached answer covered the old kept items
 	return true
 }
 
@@ -190,9 +210,26 @@ func (d *DistinctEver) insert(h uint64) {
 		if r <= d.regs[i] {
 			return // no register changed: the estimate stands
 		}
+		d.hist[d.regs[i]]--
+		d.hist[r]++
 		d.regs[i] = r
 	}
 	d.estOK = false
+}
+
+// setDense copies the library's dense registers and counts their values.
+func (d *DistinctEver) setDense(regs []uint8) {
+	d.dense = true
+	d.regs = append(d.regs[:0], regs...)
+	d.hist = [66]uint32{}
+	for _, r := range d.regs {
+		d.hist[r]++
+	}
+}
+
+func (d *DistinctEver) denseEstimate(hist *[66]uint32) uint64 {
+	p := d.spec.Precision
+	return uint64(ertlRaw(hist[:], p, 64-int(p)) + 0.5)
 }
 
 // encodeHLL appends the library's encoding with the sparse tmp-set keys
@@ -219,8 +256,8 @@ func encodeHLL(dst []byte, s *hyperloglog.Sketch) ([]byte, error) {
 	return dst, nil
 }
 
-// base returns the estimate of the folded items, cached until an add
-// changes the sketch.
+// base returns the estimate of the folded items (dense) or of the folded
+// and all kept items (sparse), cached until an add changes it.
 func (d *DistinctEver) base() uint64 {
 	if d.estOK {
 		return d.est
@@ -230,14 +267,19 @@ func (d *DistinctEver) base() uint64 {
 		b, err := d.hll.AppendBinary(d.scratch[:0])
 		d.scratch = b
 		if err == nil && len(b) >= 8 && b[3] == 0 {
-			d.dense = true
-			d.regs = append(d.regs[:0], b[8:]...)
+			d.setDense(b[8:])
 		}
 	}
 	if d.dense {
-		d.est = d.hll.Estimate() // dense Estimate does not change the sketch
+		d.est = d.denseEstimate(&d.hist)
 	} else {
-		d.est = d.hll.Clone().Estimate() // a sparse Estimate compacts: use a copy
+		// A sparse Estimate compacts the sketch: estimate a copy, so that
+		// queries never change the state.
+		c := d.hll.Clone()
+		for _, e := range d.tail {
+			c.InsertHash(e.h)
+		}
+		d.est = c.Estimate()
 	}
 	d.estOK = true
 	return d.est
@@ -251,26 +293,39 @@ func (d *DistinctEver) DistinctAt(t int64) uint64 {
 	}
 	n := d.upTo(t)
 	base := d.base()
-	if n == 0 {
+	if !d.dense {
+		if n == len(d.tail) {
+			return base // the cached answer covers every kept item
+		}
+		c := d.hll.Clone()
+		for _, e := range d.tail[:n] {
+			c.InsertHash(e.h)
+		}
+		return c.Estimate()
+	}
+	// Dense: raise, on a copy of the histogram, the registers the kept
+	// items at or before t raise (each register to its largest rank).
+	p := d.spec.Precision
+	raised := d.raised[:0]
+	for _, e := range d.tail[:n] {
+		if i, r := register(e.h, p); r > d.regs[i] {
+			raised = append(raised, i<<8|uint32(r))
+		}
+	}
+	d.raised = raised
+	if len(raised) == 0 {
 		return base
 	}
-	if d.dense {
-		raises := false
-		for _, e := range d.tail[:n] {
-			if i, r := register(e.h, d.spec.Precision); r > d.regs[i] {
-				raises = true
-				break
-			}
+	slices.Sort(raised)
+	hist := d.hist
+	for k, x := range raised {
+		if k+1 < len(raised) && raised[k+1]>>8 == x>>8 {
+			continue // a larger rank of the same register follows
 		}
-		if !raises {
-			return base
-		}
+		hist[d.regs[x>>8]]--
+		hist[x&0xff]++
 	}
-	c := d.hll.Clone()
-	for _, e := range d.tail[:n] {
-		c.InsertHash(e.h)
-	}
-	return c.Estimate()
+	return d.denseEstimate(&hist)
 }
 
 // SizeBytes approximates the heap footprint in bytes.
@@ -316,7 +371,8 @@ func (d *DistinctEver) AppendBinary(dst []byte) ([]byte, error) {
 //	uvarint  number of events added
 //	uvarint  n kept items, oldest first, then n times:
 //	uvarint  newest - time, below Horizon, non-increasing
-//	8 bytes  item hash, big endian (XXH64 seed 0 of the item)
+//	8 bytes  item hash, big endian (XXH64 seed 0 of the item); no hash
+//	         twice (each kept item at its earliest time)
 //	rest     the folded items: github.com/axiomhq/hyperloglog v0.3.0's
 //	         encoding, version 2 only (its UnmarshalBinary documents it),
 //	         at the same precision, with the sparse tmp-set keys in
@@ -375,6 +431,16 @@ func (d *DistinctEver) unmarshal(b []byte) error {
 	if uint64(len(nd.tail)) > nd.count {
 		return corruptf("%d kept items but %d events", len(nd.tail), nd.count)
 	}
+	hs := make([]uint64, len(nd.tail))
+	for i, e := range nd.tail {
+		hs[i] = e.h
+	}
+	slices.Sort(hs)
+	for i := 1; i < len(hs); i++ {
+		if hs[i] == hs[i-1] {
+			return corruptf("item %#x kept twice", hs[i])
+		}
+	}
 	lib := r.B
 	if len(lib) < 4 || lib[0] != 2 || lib[1] != s.Precision {
 		return corruptf("folded sketch header % x", lib[:min(len(lib), 4)])
@@ -383,8 +449,7 @@ func (d *DistinctEver) unmarshal(b []byte) error {
 		return fmt.Errorf("%w: folded sketch: %w", ErrCorrupt, err)
 	}
 	if lib[3] == 0 {
-		nd.dense = true
-		nd.regs = append([]uint8(nil), lib[8:]...)
+		nd.setDense(lib[8:])
 		nd.folded = uint64(1) << s.Precision
 	} else {
 		nd.folded = uint64(len(lib)) / 4
