@@ -353,7 +353,25 @@ func (d *DistinctEver) AppendBinary(dst []byte) ([]byte, error) {
 		dst = binary.AppendUvarint(dst, uint64(d.newest-e.t))
 		dst = appendU64(dst, e.h)
 	}
-	return encodeHLL(dst, d.hll)
+	// The library's part, after a one-byte length guess shifted if the
+	// length needs more bytes (dense parts do), so no scratch is needed.
+	at := len(dst)
+	dst = append(dst, 0)
+	dst, err := encodeHLL(dst, d.hll)
+	if err != nil {
+		return dst, err
+	}
+	n := len(dst) - at - 1
+	if n < 0x80 {
+		dst[at] = byte(n)
+		return dst, nil
+	}
+	var lb [binary.MaxVarintLen64]byte
+	k := binary.PutUvarint(lb[:], uint64(n))
+	dst = append(dst, lb[:k-1]...)
+	copy(dst[at+k:], dst[at+1:at+1+n])
+	copy(dst[at:], lb[:k])
+	return dst, nil
 }
 
 // UnmarshalBinary replaces d with the decoded count, spec included. On
@@ -373,14 +391,15 @@ func (d *DistinctEver) AppendBinary(dst []byte) ([]byte, error) {
 //	uvarint  newest - time, below Horizon, non-increasing
 //	8 bytes  item hash, big endian (XXH64 seed 0 of the item); no hash
 //	         twice (each kept item at its earliest time)
-//	rest     the folded items: github.com/axiomhq/hyperloglog v0.3.0's
-//	         encoding, version 2 only (its UnmarshalBinary documents it),
-//	         at the same precision, with the sparse tmp-set keys in
-//	         ascending order. Item hashes enter it through InsertHash, so
-//	         the library's own item hash plays no part.
+//	uvarint  n, then n bytes: the folded items, in
+//	         github.com/axiomhq/hyperloglog v0.3.0's encoding, version 2
+//	         only (its UnmarshalBinary documents it), at the same
+//	         precision, with the sparse tmp-set keys in ascending order.
+//	         Item hashes enter it through InsertHash, so the library's own
+//	         item hash plays no part.
+//	then end of input (else ErrTrailingBytes).
 //
-// Trailing bytes inside the library's part are ErrCorrupt (it frames
-// itself by its lengths); anything malformed is ErrCorrupt.
+// Anything malformed, inside the library's part too, is ErrCorrupt.
 func (d *DistinctEver) UnmarshalBinary(b []byte) error {
 	return named("distinct-ever", d.unmarshal(b))
 }
@@ -441,7 +460,10 @@ func (d *DistinctEver) unmarshal(b []byte) error {
 			return corruptf("item %#x kept twice", hs[i])
 		}
 	}
-	lib := r.B
+	lib := r.Bytes(r.Len())
+	if err := r.Finish(); err != nil {
+		return err
+	}
 	if len(lib) < 4 || lib[0] != 2 || lib[1] != s.Precision {
 		return corruptf("folded sketch header % x", lib[:min(len(lib), 4)])
 	}
