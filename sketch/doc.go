@@ -52,7 +52,9 @@
 // and its Merge is commutative but not associative. For bit-identical
 // Settled results, apply the events of TopK and Distinct in the canonical
 // (time, tie-break) order once the watermark passes them, as the pipeline
-// does, and do not merge partial TopK summaries.
+// does, and do not merge partial TopK summaries. DistinctEver has no Merge;
+// its state is a function of the sequence of adds, and its estimate of
+// the set it holds, except at the sparse-to-dense switch.
 //
 // # Encodings
 //
@@ -79,7 +81,10 @@
 // (frontiers spill beyond four entries). A window start not seen before
 // costs one O(2^p) view rebuild (once per pane boundary). CountMin:
 // 8*width*depth bytes, Add/Estimate O(depth). TopK: O(log Capacity) per Add.
-// Quantile: one logarithm per Add, 8 bytes per bucket.
+// Quantile: one logarithm per Add, 8 bytes per bucket. DistinctEver: a few
+// bytes per item while sparse, 2*2^p once dense; the per-event Add+DistinctAt
+// about 1-6 us, more while a sparse set takes many new items within the
+// horizon (BenchmarkDistinctEver; figures on the type).
 //
 // # What it is not for
 //
