@@ -13,6 +13,9 @@ import (
 	"time"
 
 	"github.com/stretchr/testify/require"
+
+	"github.com/tallyward/tallyward/sketch"
+	"github.com/tallyward/tallyward/window"
 )
 
 var rewriteFormats = flag.Bool("formats.rewrite", false, "write missing golden blobs under testdata/formats/")
@@ -160,4 +163,28 @@ func TestDescribeGolden(t *testing.T) {
 	require.NoError(t, err)
 	require.Equal(t, string(want), got.String())
 	require.True(t, bytes.Contains(want, []byte("frequency epsilon=0.01 delta=0.01")))
+}
+
+// Packages window and sketch report decode and spec errors with the same
+// values and type, so one errors.Is or errors.As serves both.
+func TestSharedErrors(t *testing.T) {
+	require.Same(t, window.ErrCorrupt, sketch.ErrCorrupt)
+	require.Same(t, window.ErrUnknownVersion, sketch.ErrUnknownVersion)
+	require.Same(t, window.ErrTrailingBytes, sketch.ErrTrailingBytes)
+	require.Same(t, window.ErrWrongKind, sketch.ErrWrongKind)
+	require.Same(t, window.ErrInvalidSpec, sketch.ErrInvalidSpec)
+
+	_, werr := window.NewSlidingCount(window.SlidingSpec{Window: -1})
+	_, serr := sketch.NewTopK(sketch.TopKParams{Capacity: -1})
+	for _, err := range []error{werr, serr} {
+		var se *sketch.SpecError
+		require.ErrorAs(t, err, &se)
+		require.ErrorIs(t, err, window.ErrInvalidSpec)
+	}
+	c, _ := sketch.NewCountMin(sketch.CountMinParams{})
+	b, _ := c.AppendBinary(nil)
+	var q sketch.Quantile
+	require.ErrorIs(t, q.UnmarshalBinary(b), window.ErrWrongKind)
+	s, _ := window.NewSlidingCount(window.SlidingSpec{Window: time.Minute})
+	require.ErrorIs(t, s.UnmarshalBinary(b[:1]), sketch.ErrCorrupt)
 }

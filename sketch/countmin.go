@@ -2,8 +2,8 @@ package sketch
 
 import (
 	"encoding/binary"
-	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"math/bits"
 
@@ -38,19 +38,19 @@ func (p CountMinParams) withDefaults() CountMinParams {
 // ErrInvalidSpec.
 func (p CountMinParams) Validate() error {
 	p = p.withDefaults()
-	var errs []error
+	e := check.For("sketch.CountMinParams")
 	if !(p.Epsilon >= 1e-6 && p.Epsilon < 1) {
-		errs = appendSpecErr(errs, "count-min", "Epsilon %v must be in [1e-6, 1)", p.Epsilon)
+		e.Check(false, "Epsilon", "%v must be in [1e-6, 1)", p.Epsilon)
 	}
 	if !(p.Delta >= 1e-12 && p.Delta < 1) {
-		errs = appendSpecErr(errs, "count-min", "Delta %v must be in [1e-12, 1)", p.Delta)
+		e.Check(false, "Delta", "%v must be in [1e-12, 1)", p.Delta)
 	}
-	if len(errs) == 0 {
+	if e.Err() == nil {
 		if w, d := p.Dims(); w*d > maxCountMinCells {
-			errs = appendSpecErr(errs, "count-min", "width %d * depth %d exceeds %d cells", w, d, maxCountMinCells)
+			e.Check(false, "Epsilon", "with Delta gives width %d * depth %d, over %d cells", w, d, maxCountMinCells)
 		}
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 // Dims returns the width and depth the parameters imply (defaults applied).

@@ -2,7 +2,7 @@ package sketch
 
 import (
 	"cmp"
-	"errors"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"slices"
 	"time"
@@ -59,31 +59,30 @@ func (s DistinctSpec) withDefaults() DistinctSpec {
 // ErrInvalidSpec. Zero optional fields are valid (they mean the default).
 func (s DistinctSpec) Validate() error {
 	s = s.withDefaults()
-	var errs []error
-	bad := func(format string, args ...any) { errs = appendSpecErr(errs, "distinct spec", format, args...) }
+	e := check.For("sketch.DistinctSpec")
 	if s.Resolution <= 0 || s.Resolution > maxSpecDuration {
-		bad("Resolution %d must be in [1, 2^61]", s.Resolution)
+		e.Check(false, "Resolution", "%d must be in [1, 2^61]", s.Resolution)
 	}
 	if s.Window <= 0 || s.Window > maxSpecDuration {
-		bad("Window %d must be in [1, 2^61]", s.Window)
+		e.Check(false, "Window", "%d must be in [1, 2^61]", s.Window)
 	}
 	if s.Horizon < 0 || s.Horizon > maxSpecDuration {
-		bad("Horizon %d must be in [0, 2^61]", s.Horizon)
+		e.Check(false, "Horizon", "%d must be in [0, 2^61]", s.Horizon)
 	}
 	if s.Resolution > 0 && s.Window > 0 && s.Horizon >= 0 {
 		if s.Window%s.Resolution != 0 {
-			bad("Window %d is not a multiple of Resolution %d", s.Window, s.Resolution)
+			e.Check(false, "Window", "%d is not a multiple of Resolution %d", s.Window, s.Resolution)
 		} else if span := int64(s.Window/s.Resolution) + ceilDiv(int64(s.Horizon), int64(s.Resolution)) + 1; span > maxSpan {
-			bad("Window/Resolution + ceil(Horizon/Resolution) + 1 = %d exceeds %d panes", span, maxSpan)
+			e.Check(false, "Window", "/Resolution + ceil(Horizon/Resolution) + 1 = %d exceeds %d panes", span, maxSpan)
 		}
 	}
 	if s.Precision < 4 || s.Precision > 18 {
-		bad("Precision %d must be in [4, 18]", s.Precision)
+		e.Check(false, "Precision", "%d must be in [4, 18]", s.Precision)
 	}
 	if s.ExactLimit < 1 || s.ExactLimit > maxExactLimit {
-		bad("ExactLimit %d must be in [1, %d]", s.ExactLimit, maxExactLimit)
+		e.Check(false, "ExactLimit", "%d must be in [1, %d]", s.ExactLimit, maxExactLimit)
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }

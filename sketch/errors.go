@@ -3,6 +3,7 @@ package sketch
 import (
 	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -23,7 +24,7 @@ var (
 	// match ErrCorrupt.
 	ErrWrongKind = wire.ErrWrongKind
 	// ErrInvalidSpec: a spec or parameter set failed Validate.
-	ErrInvalidSpec = wire.ErrInvalidSpec
+	ErrInvalidSpec = check.ErrInvalidSpec
 	// ErrIncompatible: Merge was asked to combine summaries built with
 	// different parameters.
 	ErrIncompatible = errors.New("sketch: incompatible parameters")
@@ -43,7 +44,7 @@ func corruptf(format string, args ...any) error {
 	return fmt.Errorf("%s: %w", fmt.Sprintf(format, args...), ErrCorrupt)
 }
 
-// appendSpecErr appends one Validate problem, wrapping ErrInvalidSpec.
-func appendSpecErr(errs []error, what, format string, args ...any) []error {
-	return append(errs, fmt.Errorf("%s: %s: %w", what, fmt.Sprintf(format, args...), ErrInvalidSpec))
-}
+// SpecError names one invalid field of a spec or parameter set; it
+// matches ErrInvalidSpec under errors.Is. It is the same type as
+// window.SpecError.
+type SpecError = check.SpecError

@@ -3,8 +3,8 @@ package sketch
 import (
 	"cmp"
 	"encoding/binary"
-	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"math/bits"
 	"slices"
@@ -38,14 +38,14 @@ func (s DistinctEverSpec) withDefaults() DistinctEverSpec {
 // ErrInvalidSpec. Zero fields are valid (they mean the default).
 func (s DistinctEverSpec) Validate() error {
 	s = s.withDefaults()
-	var errs []error
+	e := check.For("sketch.DistinctEverSpec")
 	if s.Precision < 4 || s.Precision > 18 {
-		errs = appendSpecErr(errs, "distinct-ever spec", "Precision %d must be in [4, 18]", s.Precision)
+		e.Check(false, "Precision", "%d must be in [4, 18]", s.Precision)
 	}
 	if s.Horizon < 0 || s.Horizon > maxSpecDuration {
-		errs = appendSpecErr(errs, "distinct-ever spec", "Horizon %d must be in [0, 2^61]", s.Horizon)
+		e.Check(false, "Horizon", "%d must be in [0, 2^61]", s.Horizon)
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 // DistinctEver counts the distinct items (64-bit hashes) an entity has

@@ -2,8 +2,8 @@ package sketch
 
 import (
 	"encoding/binary"
-	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 
 	"cmp"
@@ -37,14 +37,14 @@ func (p QuantileParams) withDefaults() QuantileParams {
 // ErrInvalidSpec.
 func (p QuantileParams) Validate() error {
 	p = p.withDefaults()
-	var errs []error
+	e := check.For("sketch.QuantileParams")
 	if !(p.RelativeAccuracy >= 1e-4 && p.RelativeAccuracy <= 0.5) {
-		errs = appendSpecErr(errs, "quantile", "RelativeAccuracy %v must be in [1e-4, 0.5]", p.RelativeAccuracy)
+		e.Check(false, "RelativeAccuracy", "%v must be in [1e-4, 0.5]", p.RelativeAccuracy)
 	}
 	if p.MaxBuckets < 16 || p.MaxBuckets > 1<<16 {
-		errs = appendSpecErr(errs, "quantile", "MaxBuckets %d must be in [16, 65536]", p.MaxBuckets)
+		e.Check(false, "MaxBuckets", "%d must be in [16, 65536]", p.MaxBuckets)
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 // Quantile is a relative-error quantile summary of float64 values,

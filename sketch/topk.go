@@ -4,6 +4,7 @@ import (
 	"cmp"
 	"encoding/binary"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"slices"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -26,10 +27,9 @@ func (p TopKParams) withDefaults() TopKParams {
 // Validate reports every problem with p at once, wrapping ErrInvalidSpec.
 func (p TopKParams) Validate() error {
 	p = p.withDefaults()
-	if p.Capacity < 1 || p.Capacity > 1<<16 {
-		return fmt.Errorf("top-k: Capacity %d must be in [1, 65536]: %w", p.Capacity, ErrInvalidSpec)
-	}
-	return nil
+	e := check.For("sketch.TopKParams")
+	e.Check(p.Capacity >= 1 && p.Capacity <= 1<<16, "Capacity", "%d must be in [1, 65536]", p.Capacity)
+	return e.Err()
 }
 
 // Counter is one monitored item: Count-Err <= true frequency <= Count.

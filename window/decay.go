@@ -49,7 +49,7 @@ func (s DecaySpec) rebase() int64 { return cmp.Or(s.RebaseEvery, defaultRebaseEv
 // Validate reports every problem of s at once (errors.Join of *SpecError,
 // each matching ErrInvalidSpec), or nil.
 func (s DecaySpec) Validate() error {
-	e := specErrs{spec: "DecaySpec"}
+	e := newSpecErrs("DecaySpec")
 	e.positive("HalfLife", s.HalfLife)
 	e.nonNegative("Horizon", s.Horizon)
 	k := s.rebase()

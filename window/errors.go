@@ -2,11 +2,11 @@ package window
 
 import (
 	"encoding/binary"
-	"errors"
 	"fmt"
 	"math"
 	"time"
 
+	"github.com/tallyward/tallyward/internal/check"
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -28,41 +28,25 @@ var (
 	ErrCorrupt = wire.ErrCorrupt
 	// ErrInvalidSpec: a spec field is out of range. Every problem is reported
 	// as a *SpecError wrapping this sentinel.
-	ErrInvalidSpec = wire.ErrInvalidSpec
+	ErrInvalidSpec = check.ErrInvalidSpec
 )
 
-// SpecError names one invalid field of a spec. It matches ErrInvalidSpec
-// under errors.Is.
-type SpecError struct {
-	Spec    string // type name, e.g. "SlidingSpec"
-	Field   string
-	Problem string
-}
-
-func (e *SpecError) Error() string {
-	return fmt.Sprintf("window: %s.%s %s", e.Spec, e.Field, e.Problem)
-}
-
-// Is reports whether target is ErrInvalidSpec.
-func (e *SpecError) Is(target error) bool { return target == ErrInvalidSpec }
+// SpecError names one invalid field of a spec; it matches ErrInvalidSpec
+// under errors.Is. It is the same type as sketch.SpecError.
+type SpecError = check.SpecError
 
 // specErrs collects every problem of one spec, joined by errors.Join.
-type specErrs struct {
-	spec string
-	errs []error
-}
+type specErrs struct{ p *check.Problems }
 
-func (s *specErrs) check(ok bool, field, problem string) {
-	if !ok {
-		s.errs = append(s.errs, &SpecError{Spec: s.spec, Field: field, Problem: problem})
-	}
-}
+func newSpecErrs(spec string) specErrs { return specErrs{check.For("window." + spec)} }
 
-func (s *specErrs) positive(field string, x time.Duration) { s.check(x > 0, field, "must be > 0") }
+func (s specErrs) check(ok bool, field, problem string) { s.p.Check(ok, field, "%s", problem) }
 
-func (s *specErrs) nonNegative(field string, x time.Duration) { s.check(x >= 0, field, "must be >= 0") }
+func (s specErrs) positive(field string, x time.Duration) { s.check(x > 0, field, "must be > 0") }
 
-func (s *specErrs) err() error { return errors.Join(s.errs...) }
+func (s specErrs) nonNegative(field string, x time.Duration) { s.check(x >= 0, field, "must be >= 0") }
+
+func (s specErrs) err() error { return s.p.Err() }
 
 // Format version and kind bytes. Frozen: values are never reused or edited;
 // a new layout gets a new version.

@@ -30,7 +30,7 @@ const DefaultGap = 30 * time.Minute
 // each matching ErrInvalidSpec), or nil.
 func (s RecencySpec) Validate() error {
 	s.Gap = cmp.Or(s.Gap, DefaultGap)
-	e := specErrs{spec: "RecencySpec"}
+	e := newSpecErrs("RecencySpec")
 	e.positive("Gap", s.Gap)
 	e.nonNegative("Horizon", s.Horizon)
 	return e.err()

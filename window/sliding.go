@@ -39,7 +39,7 @@ func (s SlidingSpec) withDefaults() SlidingSpec {
 // each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s SlidingSpec) Validate() error {
 	s = s.withDefaults()
-	e := specErrs{spec: "SlidingSpec"}
+	e := newSpecErrs("SlidingSpec")
 	e.positive("Window", s.Window)
 	e.check(s.Window <= 0 || s.Resolution > 0, "Resolution", "must be > 0")
 	e.check(s.Window <= 0 || s.Resolution <= 0 || s.Window%s.Resolution == 0,

@@ -50,7 +50,7 @@ func (s SurgeSpec) decay() DecaySpec { return DecaySpec{HalfLife: s.HalfLife, Ho
 // each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s SurgeSpec) Validate() error {
 	s = s.withDefaults()
-	e := specErrs{spec: "SurgeSpec"}
+	e := newSpecErrs("SurgeSpec")
 	e.positive("Window", s.Window)
 	e.positive("HalfLife", s.HalfLife)
 	e.check(s.Window <= 0 || s.Resolution > 0, "Resolution", "must be > 0")

@@ -45,7 +45,7 @@ func (s VelocitySpec) sliding() SlidingSpec {
 // each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s VelocitySpec) Validate() error {
 	s = s.withDefaults()
-	e := specErrs{spec: "VelocitySpec"}
+	e := newSpecErrs("VelocitySpec")
 	e.positive("Short", s.Short)
 	e.check(s.Short < s.Long, "Short", "must be < Long")
 	e.check(s.Resolution <= 0 || s.Short%s.Resolution == 0, "Short", "must be a multiple of Resolution")

@@ -30,9 +30,6 @@ var (
 	// ErrWrongKind: the kind byte names another aggregate than the
 	// receiver. Errors wrapping it also match ErrCorrupt.
 	ErrWrongKind = errors.New("encoding of another kind")
-	// ErrInvalidSpec: a spec or parameter set failed Validate (not a decode
-	// error; shared here so that window and sketch specs match one value).
-	ErrInvalidSpec = errors.New("invalid spec")
 )
 
 // WrongKind returns the error for kind byte got where want was expected;
