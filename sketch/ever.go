@@ -12,6 +12,7 @@ import (
 
 	"github.com/axiomhq/hyperloglog"
 	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // DistinctEverSpec shapes a distinct count over an entity's whole history
@@ -353,25 +354,7 @@ func (d *DistinctEver) AppendBinary(dst []byte) ([]byte, error) {
 		dst = binary.AppendUvarint(dst, uint64(d.newest-e.t))
 		dst = appendU64(dst, e.h)
 	}
-	// The library's part, after a one-byte length guess shifted if the
-	// length needs more bytes (dense parts do), so no scratch is needed.
-	at := len(dst)
-	dst = append(dst, 0)
-	dst, err := encodeHLL(dst, d.hll)
-	if err != nil {
-		return dst, err
-	}
-	n := len(dst) - at - 1
-	if n < 0x80 {
-		dst[at] = byte(n)
-		return dst, nil
-	}
-	var lb [binary.MaxVarintLen64]byte
-	k := binary.PutUvarint(lb[:], uint64(n))
-	dst = append(dst, lb[:k-1]...)
-	copy(dst[at+k:], dst[at+1:at+1+n])
-	copy(dst[at:], lb[:k])
-	return dst, nil
+	return wire.AppendFramed(dst, func(dst []byte) ([]byte, error) { return encodeHLL(dst, d.hll) })
 }
 
 // UnmarshalBinary replaces d with the decoded count, spec included. On

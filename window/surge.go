@@ -2,7 +2,6 @@ package window
 
 import (
 	"cmp"
-	"encoding/binary"
 	"fmt"
 	"math"
 	"time"
@@ -174,20 +173,10 @@ func (s *Surge) AppendBinary(dst []byte) ([]byte, error) {
 	if s.base == nil {
 		return dst, errInvalidAgg
 	}
-	dst = append(dst, version1, kindSurge, 0)
-	at := len(dst)
-	dst, err := s.short.AppendBinary(dst)
+	dst, err := wire.AppendFramed(append(dst, version1, kindSurge, 0), s.short.AppendBinary)
 	if err != nil {
 		return dst, err
 	}
-	// The short window's encoding is short: shift it right by its length
-	// prefix rather than encode twice.
-	n := len(dst) - at
-	var lb [binary.MaxVarintLen64]byte
-	k := binary.PutUvarint(lb[:], uint64(n))
-	dst = append(dst, lb[:k]...)
-	copy(dst[at+k:], dst[at:at+n])
-	copy(dst[at:], lb[:k])
 	return s.base.AppendBinary(dst)
 }
 

@@ -197,3 +197,26 @@ func (d *Decoder) Finish() error {
 	}
 	return nil
 }
+
+// AppendFramed appends a uvarint length and then what body appends, the
+// layout Len and Bytes read back. body writes straight into dst after a
+// one-byte length guess, which is widened in place when the length needs
+// more bytes, so no scratch buffer is needed.
+func AppendFramed(dst []byte, body func(dst []byte) ([]byte, error)) ([]byte, error) {
+	at := len(dst)
+	dst, err := body(append(dst, 0))
+	if err != nil {
+		return dst, err
+	}
+	n := len(dst) - at - 1
+	if n < 0x80 {
+		dst[at] = byte(n)
+		return dst, nil
+	}
+	var lb [binary.MaxVarintLen64]byte
+	k := binary.PutUvarint(lb[:], uint64(n))
+	dst = append(dst, lb[:k-1]...)
+	copy(dst[at+k:], dst[at+1:at+1+n])
+	copy(dst[at:], lb[:k])
+	return dst, nil
+}

@@ -70,3 +70,26 @@ func TestDecoderErrors(t *testing.T) {
 		t.Fatalf("length: %v", d.Err)
 	}
 }
+
+// AppendFramed writes what binary.AppendUvarint and append would, for
+// bodies on both sides of the one-byte length.
+func TestAppendFramed(t *testing.T) {
+	for _, n := range []int{0, 1, 127, 128, 300, 20_000} {
+		body := make([]byte, n)
+		for i := range body {
+			body[i] = byte(i*7 + n)
+		}
+		got, err := AppendFramed([]byte("head"), func(dst []byte) ([]byte, error) { return append(dst, body...), nil })
+		if err != nil {
+			t.Fatal(err)
+		}
+		want := append(binary.AppendUvarint([]byte("head"), uint64(n)), body...)
+		if string(got) != string(want) {
+			t.Fatalf("n=%d: framing differs", n)
+		}
+		d := Decoder{B: got[4:]}
+		if string(d.Bytes(d.Len())) != string(body) || d.Finish() != nil {
+			t.Fatalf("n=%d: does not read back", n)
+		}
+	}
+}
