@@ -108,6 +108,10 @@ func BenchmarkAdd(b *testing.B) {
 		r := must(NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second}))
 		benchAdd(b, func(t int64, _ float64) { r.Add(t) })
 	})
+	b.Run("Surge", func(b *testing.B) {
+		s := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: 24 * hour, Resolution: minute, Horizon: 5 * second}))
+		benchAdd(b, func(t int64, _ float64) { s.Add(t) })
+	})
 }
 
 func BenchmarkQuery(b *testing.B) {
@@ -130,6 +134,10 @@ func BenchmarkQuery(b *testing.B) {
 	b.Run("Velocity.RatioAt", func(b *testing.B) {
 		v := must(NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second}))
 		benchQuery(b, func(t int64, _ float64) { v.Add(t) }, func(t int64) { sinkF += v.RatioAt(t) })
+	})
+	b.Run("Surge.RatioAt", func(b *testing.B) {
+		s := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: 24 * hour, Resolution: minute, Horizon: 5 * second}))
+		benchQuery(b, func(t int64, _ float64) { s.Add(t) }, func(t int64) { sinkF += s.RatioAt(t) })
 	})
 	b.Run("Recency.SessionCountAt", func(b *testing.B) {
 		r := must(NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second}))

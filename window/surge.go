@@ -84,6 +84,10 @@ func (s SurgeSpec) Validate() error {
 // Horizon are exact; older ones answer NaN, as Decayed does, rather than a
 // value that could include a newer event.
 //
+// Cost: an Add and a query of a SlidingCount and of a Decayed; memory
+// and encoding, the two together (BenchmarkAdd/Surge and
+// BenchmarkQuery/Surge.RatioAt measure it beside Velocity).
+//
 // Build with NewSurge; the zero value ignores Add and answers NaN. Not
 // safe for concurrent use.
 type Surge struct {
