@@ -372,8 +372,9 @@ func (d *DistinctEver) AppendBinary(dst []byte) ([]byte, error) {
 //	uvarint  number of events added
 //	uvarint  n kept items, oldest first, then n times:
 //	uvarint  newest - time, below Horizon, non-increasing
-//	8 bytes  item hash, big endian (XXH64 seed 0 of the item); no hash
-//	         twice (each kept item at its earliest time)
+//	8 bytes  item hash, big endian: the 64-bit hash the caller added (Hash
+//	         gives XXH64 seed 0; a pipeline may key its own); no hash twice
+//	         (each kept item at its earliest time)
 //	uvarint  n, then n bytes: the folded items, in
 //	         github.com/axiomhq/hyperloglog v0.3.0's encoding, version 2
 //	         only (its UnmarshalBinary documents it), at the same
