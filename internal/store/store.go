@@ -8,7 +8,6 @@ import (
 	"io"
 
 	"github.com/cockroachdb/pebble/v2"
-	"github.com/cockroachdb/pebble/v2/bloom"
 	"github.com/cockroachdb/pebble/v2/vfs"
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -173,27 +172,8 @@ func Open(opts Options) (*Store, error) {
 	if err := opts.Validate(); err != nil {
 		return nil, err
 	}
-	cache := pebble.NewCache(opts.BlockCacheBytes)
-	popts := &pebble.Options{
-		FS:                 opts.FS,
-		Cache:              cache,
-		FormatMajorVersion: FormatMajorVersion,
-		Logger:             opts.Logger,
-		// A commit writes every dirty record in one batch; a memtable
-		// that holds several such batches keeps them from being flushed
-		// as oversized batches one by one, and the stop threshold leaves
-		// room for a flush to finish while the next commit is written.
-		MemTableSize:                64 << 20,
-		MemTableStopWritesThreshold: 4,
-		L0CompactionThreshold:       4,
-		L0StopWritesThreshold:       24,
-	}
-	// A lookup of an entity never seen before is common; bloom filters on
-	// every level make it cheap.
-	for i := range popts.Levels {
-		popts.Levels[i].FilterPolicy = bloom.FilterPolicy(10)
-	}
-	popts.EnsureDefaults()
+	popts := PebbleOptions(opts)
+	cache := popts.Cache
 	dir := opts.Dir
 	if dir == "" {
 		dir = "tallyward"
