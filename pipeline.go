@@ -257,7 +257,9 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
-		if err := p.Commit(nil); err != nil {
+		// Off the caller's path: the write runs while processing goes
+		// on; only the next commit waits for it.
+		if err := p.commit(nil, true); err != nil {
 			return dst, err
 		}
 	}
@@ -485,11 +487,22 @@ func (p *Pipeline[E]) Flush() error {
 // Commit durably stores all state changed since the last commit together
 // with the source position (and the caller's cursor, if not nil; nil keeps
 // the previous one), in one synced batch.
-func (p *Pipeline[E]) Commit(cursor []byte) error {
+func (p *Pipeline[E]) Commit(cursor []byte) error { return p.commit(cursor, false) }
+
+// commit is Commit; async leaves the write to the store's background
+// goroutine (automatic commits: the caller does not need it durable on
+// return, and a crash before it lands resumes from the one before).
+func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
 	began := p.opts.MetricsClock.Now()
+	// Settle first: the previous commit must land before this one is cut,
+	// and Mark then reports it.
+	if err := p.store.Settle(); err != nil {
+		p.err = err
+		return err
+	}
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
@@ -509,7 +522,11 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	p.c.expired += uint64(n)
 	p.c.live -= int64(n)
 	m.Extra = p.progress().append(nil)
-	if err := p.store.Commit(m); err != nil {
+	write := p.store.Commit
+	if async {
+		write = p.store.CommitAsync
+	}
+	if err := write(m); err != nil {
 		p.err = err
 		return err
 	}

@@ -32,9 +32,10 @@ type Slot[V Value] struct {
 	size    int
 	dirty   bool
 	evicted bool
-	ref     bool  // used since the clock hand last passed
-	idx     int   // position in Table.slots
-	indexed int64 // expiry bucket of this key's stored index entry; 0 = none
+	ref     bool   // used since the clock hand last passed
+	idx     int    // position in Table.slots
+	indexed int64  // expiry bucket of this key's stored index entry; 0 = none
+	taken   uint64 // the commit (Store.gen) that last took this slot's bytes
 }
 
 // Table is a write-back cache of one kind of record (one key space under a
@@ -176,7 +177,7 @@ const slotOverhead = 96
 // evict drops victim from memory, staging it in the pending batch first if
 // it is dirty so that later reads and the next commit still see it.
 func (t *Table[V]) evict(victim *Slot[V]) error {
-	if victim.dirty {
+	if victim.dirty || t.store.inFlight(victim.taken) {
 		if err := t.stage(t.store.pending, victim); err != nil {
 			return err
 		}
@@ -258,6 +259,7 @@ func (t *Table[V]) flushDirty(b writer) error {
 			return err
 		}
 		sl.dirty = false
+		sl.taken = t.store.gen
 	}
 	clear(t.dirty)
 	t.dirty = t.dirty[:0]

@@ -408,7 +408,7 @@ func (s *Store) SetTombstone(table, entity string, on bool) error {
 // copy opens as a store of its own: Options{Dir: dir}.
 func (s *Store) Snapshot(dir string) (err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return err
 	}
 	if err := s.db.Checkpoint(dir, pebble.WithFlushedWAL()); err != nil {

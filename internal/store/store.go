@@ -144,6 +144,8 @@ type Store struct {
 	opts    Options
 	cache   *pebble.Cache
 	pending *pebble.Batch // indexed; reads see it; written by the next Commit
+	flight  *flight       // the commit being written, if any
+	gen     uint64        // number of commits taken (frozen) since Open
 	popts   *pebble.Options
 	dir     string
 	mark    Mark
@@ -311,51 +313,32 @@ func (s *Store) DeleteDefinition(name string) error {
 
 // Commit writes every dirty cached entry, anything staged, and m in one
 // synced batch, or for a large commit one ingested table (see
-// Options.IngestThreshold); either is atomic. On error the store is failed: nothing of this commit is
+// Options.IngestThreshold); either is atomic. It returns once the commit
+// is durable. On error the store is failed: nothing of this commit is
 // visible after a reopen, and every later call returns the error.
-func (s *Store) Commit(m Mark) (err error) {
-	defer s.guard(&err)
-	if err := s.check(); err != nil {
+func (s *Store) Commit(m Mark) error {
+	if err := s.CommitAsync(m); err != nil {
 		return err
 	}
-	n := int(s.pending.Count())
-	for _, t := range s.tables {
-		n += t.dirtyCount()
+	return s.Settle()
+}
+
+// CommitAsync is Commit that returns once the commit's writes are taken
+// (dirty records encoded) and leaves writing them to a goroutine of its
+// own; Settle waits for it. The cache and the store stay usable, and reads
+// see the commit's writes, while it is in flight. It first waits for the
+// previous commit, so at most one is in flight; Mark and Commits report
+// the last commit that landed.
+func (s *Store) CommitAsync(m Mark) (err error) {
+	defer s.guard(&err)
+	if err := s.Settle(); err != nil {
+		return err
 	}
-	if s.opts.IngestThreshold > 0 && n >= s.opts.IngestThreshold {
-		return s.commitIngest(m)
-	}
-	// The commit batch is a plain (unindexed) batch: appending to it is
-	// far cheaper than inserting into the indexed pending batch, which
-	// only exists so that reads see evicted dirty records.
-	b := s.db.NewBatch()
-	defer b.Close()
-	if !s.pending.Empty() {
-		if err := b.Apply(s.pending, nil); err != nil {
-			return s.fail(err)
-		}
-	}
-	for _, t := range s.tables {
-		if err := t.flushDirty(b); err != nil {
-			return s.fail(err)
-		}
-	}
-	buf, _ := m.AppendBinary(nil)
-	if err := b.Set(metaKey(metaMark), buf, nil); err != nil {
-		return s.fail(err)
-	}
-	if err := b.Commit(pebble.Sync); err != nil {
-		return s.fail(fmt.Errorf("state: commit: %w", err))
-	}
-	return s.committed(m)
+	return s.freeze(m)
 }
 
 // committed records a successful commit of m.
 func (s *Store) committed(m Mark) error {
-	if !s.pending.Empty() {
-		s.pending.Close()
-		s.pending = s.db.NewIndexedBatch()
-	}
 	s.mark = m
 	s.mark.Cursor = bytes.Clone(m.Cursor)
 	s.mark.Extra = bytes.Clone(m.Extra)
@@ -376,7 +359,7 @@ func (s *Store) committed(m Mark) error {
 // sweep (the pipeline does) check LastTime themselves.
 func (s *Store) Sweep(w int64) (_ int, err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return 0, err
 	}
 	b := s.db.NewBatch()
@@ -397,12 +380,15 @@ func (s *Store) Close() (err error) {
 	if s.closed {
 		return nil
 	}
-	s.closed = true
 	defer s.guard(&err)
+	settleErr := s.Settle()
+	s.closed = true
 	s.pending.Close()
 	err = s.db.Close()
 	if s.err != nil {
 		err = errors.Join(s.err, err)
+	} else if settleErr != nil {
+		err = errors.Join(settleErr, err)
 	}
 	return err
 }
