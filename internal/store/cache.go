@@ -178,7 +178,7 @@ const slotOverhead = 96
 // it is dirty so that later reads and the next commit still see it.
 func (t *Table[V]) evict(victim *Slot[V]) error {
 	if victim.dirty || t.store.inFlight(victim.taken) {
-		if err := t.stage(t.store.pending, victim); err != nil {
+		if err := t.stage(staging{t.store}, victim); err != nil {
 			return err
 		}
 		victim.dirty = false
@@ -279,7 +279,7 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	}
 	sl.dirty = false
 	t.drop(sl)
-	b := t.store.pending
+	b := staging{t.store}
 	if sl.indexed != 0 {
 		t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, key)
 		if err := b.Delete(t.keybuf, nil); err != nil {

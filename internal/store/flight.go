@@ -31,9 +31,10 @@ import (
 
 // flight is a commit being written.
 type flight struct {
-	done chan error
-	mark Mark
-	took uint32 // entries of the pending batch the commit holds
+	done  chan error
+	mark  Mark
+	took  uint32 // entries of the pending batch the commit holds
+	spill *spill // the spill the commit took; reads see it until it lands
 }
 
 // freeze takes the writes of a commit of m and starts writing them. The
@@ -59,6 +60,13 @@ func (s *Store) freeze(m Mark) error {
 			return s.fail(fmt.Errorf("state: unexpected %v in pending batch", kind))
 		}
 	}
+	for k, e := range s.spill.m {
+		if e.del {
+			c.Delete([]byte(k), nil)
+		} else {
+			c.Set([]byte(k), e.val, nil)
+		}
+	}
 	s.gen++
 	for _, t := range s.tables {
 		if err := t.flushDirty(c); err != nil {
@@ -68,7 +76,8 @@ func (s *Store) freeze(m Mark) error {
 	buf, _ := m.AppendBinary(nil)
 	c.Set(metaKey(metaMark), buf, nil)
 	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
-	f := &flight{done: make(chan error, 1), mark: m, took: took}
+	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill}
+	s.spill = newSpill()
 	s.flight = f
 	ingest := s.opts.IngestThreshold > 0 && len(c.ents) >= s.opts.IngestThreshold
 	seq := s.commits + 1
@@ -98,6 +107,8 @@ func (s *Store) Settle() error {
 	return s.committed(f.mark)
 }
 
+// (The spill's keys are converted once more above: c.keep copies them.)
+
 // dropTaken removes the first n entries, now durable, from the pending
 // batch, keeping the ones written while the commit was in flight.
 func (s *Store) dropTaken(n uint32) error {
@@ -106,6 +117,7 @@ func (s *Store) dropTaken(n uint32) error {
 		if n > 0 {
 			old.Close()
 			s.pending = s.db.NewIndexedBatch()
+			s.pendingRecords = false
 		}
 		return nil
 	}

@@ -225,6 +225,9 @@ func (t *Table[V]) RebuildExpiry() error {
 	if err := t.store.check(); err != nil {
 		return err
 	}
+	if err := t.store.spillToPending(); err != nil {
+		return err
+	}
 	b := t.store.pending
 	// Index entries of every bucket: scan the index for this table.
 	it, err := b.NewIter(&pebble.IterOptions{LowerBound: []byte{tagExpiry}, UpperBound: []byte{tagExpiry + 1}})
@@ -268,6 +271,10 @@ func (t *Table[V]) RebuildExpiry() error {
 func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) error {
 	lower := RecordKey(nil, t.name, "")
 	upper := prefixEnd(lower)
+	if err := t.store.spillToPending(); err != nil {
+		return err
+	}
+	t.store.pendingRecords = true
 	b := t.store.pending
 	it, err := b.NewIter(&pebble.IterOptions{LowerBound: lower, UpperBound: upper})
 	if err != nil {

@@ -144,15 +144,18 @@ type Store struct {
 	opts    Options
 	cache   *pebble.Cache
 	pending *pebble.Batch // indexed; reads see it; written by the next Commit
+	spill   *spill        // staged record writes; see spill
 	flight  *flight       // the commit being written, if any
-	gen     uint64        // number of commits taken (frozen) since Open
-	popts   *pebble.Options
-	dir     string
-	mark    Mark
-	budget  *budget
-	tables  []flusher
-	err     error // sticky: set once a write fails
-	closed  bool
+	// pendingRecords: the pending batch may hold record keys (see spill).
+	pendingRecords bool
+	gen            uint64 // number of commits taken (frozen) since Open
+	popts          *pebble.Options
+	dir            string
+	mark           Mark
+	budget         *budget
+	tables         []flusher
+	err            error // sticky: set once a write fails
+	closed         bool
 
 	salt       []byte
 	tombstones map[[16]byte]struct{}
@@ -187,6 +190,7 @@ func Open(opts Options) (*Store, error) {
 	}
 	s := &Store{db: db, opts: opts, popts: popts, dir: dir, budget: &budget{limit: opts.CacheBytes}}
 	s.pending = db.NewIndexedBatch()
+	s.spill = newSpill()
 	var m Mark
 	found, err := s.getRaw(metaKey(metaMark), func(v []byte) error { return m.UnmarshalBinary(v) })
 	if err != nil {
@@ -237,7 +241,18 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 	defer s.guard(&err)
 	var v []byte
 	var closer io.Closer
-	if s.pending.Empty() {
+	if key[0] == tagRecord {
+		if sv, del, ok := s.lookupStaged(key); ok {
+			if del {
+				return false, nil
+			}
+			if err := fn(sv); err != nil {
+				return true, fmt.Errorf("state: key %q: %w", key, err)
+			}
+			return true, nil
+		}
+	}
+	if s.pending.Empty() || key[0] == tagRecord && !s.pendingRecords {
 		v, closer, err = s.db.Get(key)
 	} else {
 		v, closer, err = s.pending.Get(key)
@@ -366,7 +381,7 @@ func (s *Store) Sweep(w int64) (_ int, err error) {
 	defer b.Close()
 	n, err := s.sweep(b, w)
 	if err == nil && !b.Empty() {
-		err = s.pending.Apply(b, nil)
+		err = s.stageBatch(b)
 	}
 	if err != nil {
 		return 0, s.fail(fmt.Errorf("state: expiry sweep: %w", err))
