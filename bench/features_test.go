@@ -9,6 +9,7 @@ import (
 	"math/rand/v2"
 	"runtime"
 	"slices"
+	"syscall"
 	"testing"
 	"time"
 
@@ -128,10 +129,29 @@ func featureSpec(emit func(tallyward.Row[payment])) tallyward.Spec[payment] {
 	}
 }
 
-// memDelta measures allocations between two points.
-type memDelta struct{ before runtime.MemStats }
+// memDelta measures allocations and process CPU time between two
+// points. CPU time (every goroutine, GC included) is reported beside wall
+// time because the development machine is shared: under load, CPU per
+// event is the steadier figure.
+type memDelta struct {
+	before runtime.MemStats
+	cpu    time.Duration
+}
 
-func (m *memDelta) start() { runtime.ReadMemStats(&m.before) }
+func (m *memDelta) start() {
+	runtime.ReadMemStats(&m.before)
+	m.cpu = cpuTime()
+}
+
+func (m *memDelta) cpuSince() time.Duration { return cpuTime() - m.cpu }
+
+func cpuTime() time.Duration {
+	var ru syscall.Rusage
+	if err := syscall.Getrusage(syscall.RUSAGE_SELF, &ru); err != nil {
+		return 0
+	}
+	return time.Duration(ru.Utime.Nano() + ru.Stime.Nano())
+}
 
 func (m *memDelta) stop() (mallocs, bytes uint64) {
 	var after runtime.MemStats
@@ -173,6 +193,7 @@ func BenchmarkFeatures(b *testing.B) {
 			var heapPerEntity float64
 			var md memDelta
 			var mallocs, allocBytes uint64
+			var cpu time.Duration
 			for range b.N {
 				b.StopTimer()
 				opts := tallyward.Options{Dir: b.TempDir(), Mode: c.mode, MaxDisorder: c.dis, CacheBytes: featureCacheBytes()}
@@ -192,6 +213,7 @@ func BenchmarkFeatures(b *testing.B) {
 					b.Fatal(err)
 				}
 				b.StopTimer()
+				cpu += md.cpuSince()
 				m, by := md.stop()
 				mallocs += m
 				allocBytes += by
@@ -209,6 +231,7 @@ func BenchmarkFeatures(b *testing.B) {
 			n := float64(b.N) * float64(len(data.events))
 			b.ReportMetric(n/b.Elapsed().Seconds(), "events/s")
 			b.ReportMetric(float64(mallocs)/n, "allocs/event")
+			b.ReportMetric(float64(cpu.Nanoseconds())/n, "cpu-ns/event")
 			b.ReportMetric(float64(allocBytes)/n, "B/event")
 			b.ReportMetric(heapPerEntity, "heapB/entity")
 			b.ReportMetric(float64(last.CachedBytes)/float64(max(last.CachedKeys, 1)), "estB/entity")
