@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"fmt"
+	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/objstorage/objstorageprovider"
@@ -69,19 +70,30 @@ func (s *Store) freeze(m Mark) error {
 	}
 	s.gen++
 	for _, t := range s.tables {
-		if err := t.flushDirty(c); err != nil {
+		if err := t.freezeDirty(c); err != nil {
 			return s.fail(err)
 		}
 	}
-	buf, _ := m.AppendBinary(nil)
-	c.Set(metaKey(metaMark), buf, nil)
 	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
 	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill}
 	s.spill = newSpill()
 	s.flight = f
-	ingest := s.opts.IngestThreshold > 0 && len(c.ents) >= s.opts.IngestThreshold
+	n := len(c.ents)
+	for _, t := range s.tables {
+		n += t.frozenCount()
+	}
+	ingest := s.opts.IngestThreshold > 0 && n >= s.opts.IngestThreshold
 	seq := s.commits + 1
-	go func() { f.done <- s.write(c, ingest, seq) }()
+	tables := slices.Clone(s.tables)
+	go func() {
+		err := encodeAll(tables, c)
+		if err == nil {
+			buf, _ := m.AppendBinary(nil)
+			c.Set(metaKey(metaMark), buf, nil)
+			err = s.write(c, ingest, seq)
+		}
+		f.done <- err
+	}()
 	return nil
 }
 

@@ -166,8 +166,9 @@ type Store struct {
 
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
-	flushDirty(b writer) error
-	dirtyCount() int
+	freezeDirty(c *collector) error
+	encodeFrozen(c *collector) error
+	frozenCount() int
 }
 
 // Open opens (creating if needed) the store described by opts and reads its
