@@ -103,7 +103,7 @@ func (k Frequency) NewAggregate(horizon time.Duration) Aggregate {
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(int64(horizon), &frequencySummary{cm})
+	return newTailed(int64(horizon), &frequencySummary{cm})
 }
 
 // TopShare is the share of an entity's events that carried its most
@@ -133,7 +133,7 @@ func (k TopShare) NewAggregate(horizon time.Duration) Aggregate {
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(int64(horizon), &topShareSummary{tk: tk})
+	return newTailed(int64(horizon), &topShareSummary{tk: tk})
 }
 
 // Quantile is the Q-quantile of an entity's values over its lifetime (is
@@ -170,10 +170,10 @@ func (k Quantile) NewAggregate(horizon time.Duration) Aggregate {
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(int64(horizon), &quantileSummary{q: q, quantile: k.Q})
+	return newTailed(int64(horizon), &quantileSummary{q: q, quantile: k.Q})
 }
 
-// summary is a time-free sketch that a lifetime wraps.
+// summary is a time-free sketch that a tailedSummary wraps.
 type summary interface {
 	encoded
 	fold(v float64, h uint64)
@@ -188,7 +188,7 @@ type tailEvent struct {
 	h uint64
 }
 
-// lifetime gives a time-free summary exact as-of answers: events within
+// tailedSummary gives a time-free summary exact as-of answers: events within
 // horizon of the newest time are kept raw, in time order, and folded into
 // the summary once older. An answer as of t >= newest − horizon is the
 // summary (all of whose events are at or before that) plus the raw events
@@ -197,7 +197,7 @@ type tailEvent struct {
 // includes the summary's events between t and newest − horizon.
 //
 // Invariant: raw is sorted by t and every raw t > newest − horizon.
-type lifetime struct {
+type tailedSummary struct {
 	sum     summary
 	raw     []tailEvent
 	newest  int64
@@ -205,11 +205,11 @@ type lifetime struct {
 	horizon int64
 }
 
-func newLifetime(horizon int64, s summary) *lifetime {
-	return &lifetime{sum: s, horizon: horizon}
+func newTailed(horizon int64, s summary) *tailedSummary {
+	return &tailedSummary{sum: s, horizon: horizon}
 }
 
-func (l *lifetime) Add(t int64, v float64, h uint64) bool {
+func (l *tailedSummary) Add(t int64, v float64, h uint64) bool {
 	if !l.has || t > l.newest {
 		l.newest, l.has = t, true
 		cut := sat.Sub(l.newest, l.horizon)
@@ -234,7 +234,7 @@ func (l *lifetime) Add(t int64, v float64, h uint64) bool {
 	return true
 }
 
-func (l *lifetime) At(t int64, item uint64) float64 {
+func (l *tailedSummary) At(t int64, item uint64) float64 {
 	n, _ := slices.BinarySearchFunc(l.raw, t, func(e tailEvent, t int64) int {
 		if e.t <= t {
 			return -1
@@ -245,11 +245,11 @@ func (l *lifetime) At(t int64, item uint64) float64 {
 }
 
 // Newest implements Aggregate.
-func (l *lifetime) Newest() (t int64, ok bool) { return l.newest, l.has }
+func (l *tailedSummary) Newest() (t int64, ok bool) { return l.newest, l.has }
 
-func (l *lifetime) SizeBytes() int { return 64 + 24*cap(l.raw) + l.sum.SizeBytes() }
+func (l *tailedSummary) SizeBytes() int { return 64 + 24*cap(l.raw) + l.sum.SizeBytes() }
 
-const lifetimeVersion1 = 1
+const tailedVersion1 = 1
 
 // AppendBinary encodes l:
 //
@@ -260,8 +260,8 @@ const lifetimeVersion1 = 1
 //	n times: uvarint newest − t, 8 bytes value (IEEE 754, little endian),
 //	         8 bytes item hash (little endian)
 //	rest     the summary's own versioned encoding (package sketch)
-func (l *lifetime) AppendBinary(dst []byte) ([]byte, error) {
-	dst = append(dst, lifetimeVersion1)
+func (l *tailedSummary) AppendBinary(dst []byte) ([]byte, error) {
+	dst = append(dst, tailedVersion1)
 	if l.has {
 		dst = append(dst, 1)
 	} else {
@@ -277,20 +277,20 @@ func (l *lifetime) AppendBinary(dst []byte) ([]byte, error) {
 	return l.sum.AppendBinary(dst)
 }
 
-var errLifetime = errors.New("lifetime summary")
+var errTailed = errors.New("tailed summary")
 
 // UnmarshalBinary decodes the format of AppendBinary; l is unchanged on
 // error.
-func (l *lifetime) UnmarshalBinary(b []byte) error {
+func (l *tailedSummary) UnmarshalBinary(b []byte) error {
 	d := wire.Decoder{B: b}
-	if v := d.Byte(); d.Err == nil && v != lifetimeVersion1 {
-		return fmt.Errorf("%w: unknown version %d", errLifetime, v)
+	if v := d.Byte(); d.Err == nil && v != tailedVersion1 {
+		return fmt.Errorf("%w: unknown version %d", errTailed, v)
 	}
 	has := d.Byte()
 	newest := d.Varint()
 	n := d.Uvarint()
 	if d.Err == nil && (has > 1 || n > uint64(len(d.B))/17) {
-		return fmt.Errorf("%w: bad header", errLifetime)
+		return fmt.Errorf("%w: bad header", errTailed)
 	}
 	raw := make([]tailEvent, 0, n)
 	for range n {
@@ -301,15 +301,15 @@ func (l *lifetime) UnmarshalBinary(b []byte) error {
 		}
 		t := newest - int64(back)
 		if back > math.MaxInt64 || t > newest || (len(raw) > 0 && t < raw[len(raw)-1].t) {
-			return fmt.Errorf("%w: raw events out of order", errLifetime)
+			return fmt.Errorf("%w: raw events out of order", errTailed)
 		}
 		raw = append(raw, tailEvent{t, math.Float64frombits(binary.LittleEndian.Uint64(bits)), binary.LittleEndian.Uint64(bits[8:])})
 	}
 	if d.Err != nil {
-		return fmt.Errorf("%w: %w", errLifetime, d.Err)
+		return fmt.Errorf("%w: %w", errTailed, d.Err)
 	}
 	if err := l.sum.UnmarshalBinary(d.B); err != nil {
-		return fmt.Errorf("%w: %w", errLifetime, err)
+		return fmt.Errorf("%w: %w", errTailed, err)
 	}
 	l.raw, l.newest, l.has = raw, newest, has == 1
 	return nil
@@ -327,7 +327,7 @@ func (s *frequencySummary) UnmarshalBinary(b []byte) error {
 		return err
 	}
 	if got := cm.Params(); got != want {
-		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errLifetime, got, want)
+		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errTailed, got, want)
 	}
 	*s.CountMin = cm
 	return nil

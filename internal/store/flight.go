@@ -3,6 +3,7 @@ package store
 import (
 	"bytes"
 	"context"
+	"errors"
 	"fmt"
 	"slices"
 
@@ -110,6 +111,13 @@ func (s *Store) Settle() error {
 	}
 	err := <-f.done
 	s.flight = nil
+	var fw fatalWrite
+	if errors.As(err, &fw) {
+		// As guard does for a fatal error on the caller's goroutine.
+		s.abandoned = true
+		s.fs.fence()
+		return s.fail(fw.err)
+	}
 	if err != nil {
 		return s.fail(err)
 	}
@@ -165,16 +173,25 @@ func (s *Store) dropTaken(n uint32) error {
 	return nil
 }
 
+// fatalWrite is a Pebble fatal error raised while a commit was written;
+// Settle handles it as guard does on the caller's goroutine.
+type fatalWrite struct{ err error }
+
+func (f fatalWrite) Error() string { return f.err.Error() }
+
 // write is the background half of a commit: it owns c and touches nothing
 // else of s but the database, the filesystem and the fixed options.
 func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
 	defer func() {
 		if r := recover(); r != nil {
-			f, ok := r.(fatalError)
-			if !ok {
-				panic(r)
+			// No panic may escape this goroutine: it would end the
+			// process. Pebble panics when the database is closed under
+			// a running commit (as a crash test does to abandon a store).
+			if f, ok := r.(fatalError); ok {
+				err = fatalWrite{f.err}
+			} else {
+				err = fmt.Errorf("state: commit: %v", r)
 			}
-			err = f.err
 		}
 	}()
 	if ingest {

@@ -22,7 +22,11 @@ import (
 type spill struct {
 	m     map[string]spilled
 	arena []byte // values, in chunks
+	bytes int64  // approximate memory, for the budget
 }
+
+// spillEntryBytes approximates a map entry's memory beside key and value.
+const spillEntryBytes = 64
 
 type spilled struct {
 	val []byte
@@ -39,9 +43,13 @@ func (sp *spill) set(key, val []byte) {
 	}
 	sp.arena = append(sp.arena, val...)
 	sp.m[string(key)] = spilled{val: sp.arena[len(sp.arena)-len(val) : len(sp.arena) : len(sp.arena)]}
+	sp.bytes += int64(len(key) + len(val) + spillEntryBytes)
 }
 
-func (sp *spill) delete(key []byte) { sp.m[string(key)] = spilled{del: true} }
+func (sp *spill) delete(key []byte) {
+	sp.m[string(key)] = spilled{del: true}
+	sp.bytes += int64(len(key) + spillEntryBytes)
+}
 
 // get reports whether the spill holds key, and its value (nil if deleted).
 func (sp *spill) get(key []byte) (v []byte, del, ok bool) {
