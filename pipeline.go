@@ -51,6 +51,7 @@ type Pipeline[E any] struct {
 	vals    []float64
 	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
 	batch   []*held[E]              // Settled: scratch for one timestamp's events
+	slab    holdSlab[E]             // Settled: where held events are carved from
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
@@ -91,10 +92,6 @@ type inputs struct {
 	on   []bool    // per feature: the event updates it
 	v    []float64 // per feature
 	item []uint64  // per feature
-}
-
-func (in *inputs) clone() inputs {
-	return inputs{t: in.t, keys: slices.Clone(in.keys), on: slices.Clone(in.on), v: slices.Clone(in.v), item: slices.Clone(in.item)}
 }
 
 // Open validates spec and opts, opens the store and checks that the stored
@@ -263,7 +260,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
@@ -287,7 +284,7 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 		return nil // rejected the first time too; already counted
 	}
 	if p.opts.Mode == Settled && p.in.t >= p.wm {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
 	}
 	return nil
 }
