@@ -37,12 +37,20 @@ type flight struct {
 	mark  Mark
 	took  uint32 // entries of the pending batch the commit holds
 	spill *spill // the spill the commit took; reads see it until it lands
+	c     *collector
 }
 
 // freeze takes the writes of a commit of m and starts writing them. The
 // store must be settled.
 func (s *Store) freeze(m Mark) error {
-	c := &collector{}
+	// The collector and spill of the last landed commit are reused: a
+	// commit's buffers run to megabytes, and allocating them anew while
+	// the GC marks makes the caller pay for marking in proportion.
+	c := s.spareC
+	s.spareC = nil
+	if c == nil {
+		c = &collector{}
+	}
 	took := s.pending.Count()
 	r := s.pending.Reader()
 	for {
@@ -76,8 +84,12 @@ func (s *Store) freeze(m Mark) error {
 		}
 	}
 	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
-	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill}
-	s.spill = newSpill()
+	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill, c: c}
+	if sp := s.spareSpill; sp != nil {
+		s.spill, s.spareSpill = sp, nil
+	} else {
+		s.spill = newSpill()
+	}
 	s.flight = f
 	n := len(c.ents)
 	for _, t := range s.tables {
@@ -124,6 +136,10 @@ func (s *Store) Settle() error {
 	if err := s.dropTaken(f.took); err != nil {
 		return s.fail(err)
 	}
+	f.c.reset()
+	s.spareC = f.c
+	f.spill.reset()
+	s.spareSpill = f.spill
 	return s.committed(f.mark)
 }
 

@@ -28,6 +28,13 @@ type entry struct {
 	del      bool
 }
 
+// reset empties c for reuse, keeping its room.
+func (c *collector) reset() {
+	clear(c.ents) // drop references into old arenas
+	c.ents = c.ents[:0]
+	c.arena = c.arena[:0]
+}
+
 func (c *collector) keep(b []byte) []byte {
 	c.arena = append(c.arena, b...)
 	return c.arena[len(c.arena)-len(b) : len(c.arena) : len(c.arena)]

@@ -37,6 +37,13 @@ const spillChunk = 1 << 20
 
 func newSpill() *spill { return &spill{m: map[string]spilled{}} }
 
+// reset empties sp for reuse, keeping its map's room and its last chunk.
+func (sp *spill) reset() {
+	clear(sp.m)
+	sp.arena = sp.arena[:0]
+	sp.bytes = 0
+}
+
 func (sp *spill) set(key, val []byte) {
 	if cap(sp.arena)-len(sp.arena) < len(val) {
 		sp.arena = make([]byte, 0, max(spillChunk, len(val)))

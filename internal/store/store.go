@@ -240,6 +240,9 @@ type Store struct {
 	pending *pebble.Batch // indexed; reads see it; written by the next Commit
 	spill   *spill        // staged record writes; see spill
 	flight  *flight       // the commit being written, if any
+	// Buffers of the last landed commit, reused by the next (see freeze).
+	spareC     *collector
+	spareSpill *spill
 	// pendingRecords: the pending batch may hold record keys (see spill).
 	pendingRecords bool
 	gen            uint64 // number of commits taken (frozen) since Open
