@@ -236,6 +236,7 @@ func BenchmarkFeatures(b *testing.B) {
 			b.ReportMetric(heapPerEntity, "heapB/entity")
 			b.ReportMetric(float64(last.CachedBytes)/float64(max(last.CachedKeys, 1)), "estB/entity")
 			b.ReportMetric(float64(last.CachedKeys), "cached")
+			b.ReportMetric(float64(last.Commits), "commits")
 			b.ReportMetric(float64(last.LiveEntities), "live")
 			b.ReportMetric(last.HitRate(), "hit-rate")
 			b.ReportMetric(last.TotalCommitDuration.Seconds()/float64(max(last.Commits, 1))*1e3, "caller-ms/commit")
