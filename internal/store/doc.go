@@ -9,12 +9,21 @@
 // value to encode itself (encoding.BinaryAppender) when it must be written.
 //
 // Durability is by commit only. Between commits, changes live in the
-// write-back cache (and, for dirty entries evicted to bound memory, in an
-// unsynced indexed batch that later reads see). Commit writes every dirty
-// entry, the caller's [Mark] (source position and watermark) and nothing
-// else, in one synced Pebble batch. A crash therefore exposes exactly the
-// last commit: never part of one. A caller that resumes its source at the
-// stored Mark reproduces its uninterrupted run.
+// write-back cache (and, for dirty entries evicted to bound memory, in a
+// map of staged record writes that later reads see; other staged writes
+// wait in an indexed batch). Commit writes every dirty entry, everything
+// staged and the caller's [Mark] (source position and watermark), and
+// nothing else, in one synced Pebble batch or one ingested table. A crash
+// therefore exposes exactly the last commit: never part of one. A caller
+// that resumes its source at the stored Mark reproduces its uninterrupted
+// run.
+//
+// [Store.CommitAsync] cuts a commit at once and writes it on a goroutine
+// of its own while the caller goes on (see flight.go): dirty records are
+// encoded by that goroutine, or by the caller just before it changes one;
+// reads see the commit's writes while it is in flight; the next commit,
+// Sweep, Snapshot and Close wait for it ([Store.Settle]). Mark and Commits
+// report the last commit that landed.
 //
 // # Damage, full disks and fatal errors
 //
@@ -83,5 +92,8 @@
 // # Concurrency
 //
 // A Store and its caches are not safe for concurrent use; the pipeline
-// drives them from one goroutine (or under one lock).
+// drives them from one goroutine (or under one lock). The only other
+// goroutine is the one writing a commit in flight, which touches the
+// database, the collected writes and, through an atomic per-slot state,
+// the records it encodes.
 package store

@@ -226,6 +226,9 @@ func (t *Table[V]) RebuildExpiry() (err error) {
 	if err := t.store.check(); err != nil {
 		return err
 	}
+	if err := t.store.spillToPending(); err != nil {
+		return err
+	}
 	b := t.store.pending
 	// Index entries of every bucket: scan the index for this table.
 	it, err := b.NewIter(&pebble.IterOptions{LowerBound: []byte{tagExpiry}, UpperBound: []byte{tagExpiry + 1}})
@@ -270,6 +273,10 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 	defer t.store.guard(&err)
 	lower := RecordKey(nil, t.name, "")
 	upper := prefixEnd(lower)
+	if err := t.store.spillToPending(); err != nil {
+		return err
+	}
+	t.store.pendingRecords = true
 	b := t.store.pending
 	it, err := b.NewIter(&pebble.IterOptions{LowerBound: lower, UpperBound: upper})
 	if err != nil {
@@ -410,7 +417,7 @@ func (s *Store) SetTombstone(table, entity string, on bool) error {
 // copy opens as a store of its own: Options{Dir: dir}.
 func (s *Store) Snapshot(dir string) (err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return err
 	}
 	if err := s.db.Checkpoint(dir, pebble.WithFlushedWAL()); err != nil {
