@@ -65,11 +65,12 @@ type Pipeline[E any] struct {
 	in    inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
-	recs   []*record
-	vals   []float64
-	held   *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
-	batch  []*held[E]              // Settled: scratch for one timestamp's events
-	closed bool
+	recs    []*record
+	vals    []float64
+	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
+	batch   []*held[E]              // Settled: scratch for one timestamp's events
+	slab    holdSlab[E]             // Settled: where held events are carved from
+	closed  bool
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
 	// the row being emitted. Atomic because Live reads it from goroutines
@@ -115,10 +116,6 @@ type inputs struct {
 	on   []bool    // per feature: the event updates it
 	v    []float64 // per feature
 	item []uint64  // per feature
-}
-
-func (in *inputs) clone() inputs {
-	return inputs{t: in.t, keys: slices.Clone(in.keys), on: slices.Clone(in.on), v: slices.Clone(in.v), item: slices.Clone(in.item)}
 }
 
 // Open validates spec and opts, opens the store and checks that the stored
@@ -303,11 +300,15 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone(), before: before})
+		h := p.slab.hold(seq, p.in.tieBreak(), e, &p.in)
+		h.before = before
+		p.held.ReplaceOrInsert(h)
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
-		if err := p.commit(nil); err != nil {
+		// Off the caller's path: the write runs while processing goes
+		// on; only the next commit waits for it.
+		if err := p.commit(nil, true); err != nil {
 			return dst, err
 		}
 	}
@@ -339,7 +340,9 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 		w = max(w, p.resetWm)
 	}
 	if p.opts.Mode == Settled && p.in.t >= w {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone(), before: before})
+		h := p.slab.hold(seq, p.in.tieBreak(), e, &p.in)
+		h.before = before
+		p.held.ReplaceOrInsert(h)
 	}
 	return nil
 }
@@ -636,16 +639,24 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
-	return p.commit(cursor)
+	return p.commit(cursor, false)
 }
 
-// commit is Commit without the re-entry check, for the automatic commit
-// inside process.
-func (p *Pipeline[E]) commit(cursor []byte) error {
+// commit is Commit without the re-entry check (the automatic commit runs
+// inside process); async leaves the write to the store's background
+// goroutine (automatic commits: the caller does not need it durable on
+// return, and a crash before it lands resumes from the one before).
+func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if p.opts.ReadOnly {
 		return ErrReadOnly
 	}
 	began := p.opts.MetricsClock.Now()
+	// Settle first: the previous commit must land before this one is cut,
+	// and Mark then reports it.
+	if err := p.store.Settle(); err != nil {
+		p.err = err
+		return err
+	}
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
@@ -676,7 +687,11 @@ func (p *Pipeline[E]) commit(cursor []byte) error {
 	pr := p.progress()
 	pr.resumeNewest = resumeNewest
 	m.Extra = pr.append(nil)
-	if err := p.store.Commit(m); err != nil {
+	write := p.store.Commit
+	if async {
+		write = p.store.CommitAsync
+	}
+	if err := write(m); err != nil {
 		p.err = err
 		return err
 	}
