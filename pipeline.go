@@ -65,12 +65,12 @@ type Pipeline[E any] struct {
 	in    inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
-	recs    []*record
-	vals    []float64
-	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
-	batch   []*held[E]              // Settled: scratch for one timestamp's events
-	slab    holdSlab[E]             // Settled: where held events are carved from
-	closed  bool
+	recs   []*record
+	vals   []float64
+	held   *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
+	batch  []*held[E]              // Settled: scratch for one timestamp's events
+	slab   holdSlab[E]             // Settled: where held events are carved from
+	closed bool
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
 	// the row being emitted. Atomic because Live reads it from goroutines
