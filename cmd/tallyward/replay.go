@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"os"
 	"os/signal"
+	"slices"
 	"strings"
 	"syscall"
 
@@ -207,12 +208,15 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 		return exitFailure
 	}
 	st := p.Stats()
-	var rejected uint64
-	for _, n := range st.Rejected {
-		rejected += n
+	var rejected []string
+	for r, n := range st.Rejected {
+		if n > 0 {
+			rejected = append(rejected, fmt.Sprintf("%d %v", n, r))
+		}
 	}
-	fmt.Fprintf(e.stderr, "replay: %d events, %d rows, %d bad rows, %d rejected, %d late; table %s\n",
-		st.Events, st.Emitted, rd.BadRows(), rejected, st.Late, o.out)
+	slices.Sort(rejected)
+	fmt.Fprintf(e.stderr, "replay: %d events, %d rows, %d bad rows, rejected: [%s], %d late; table %s\n",
+		st.Events, st.Emitted, rd.BadRows(), strings.Join(rejected, ", "), st.Late, o.out)
 	if err := p.Close(); err != nil {
 		e.errorf("%v", err)
 		return exitFailure
