@@ -473,6 +473,8 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 			d[key] = l.duration(path+"."+key, text)
 		}
 	}
+	// A parameter that did not parse would only add noise below.
+	paramsOK := len(l.problems) == before
 	switch info.input(fd) {
 	case inNone:
 		if fd.Value != "" {
@@ -500,6 +502,9 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 	}
 	if len(fd.When) > 0 {
 		feat.Where = l.conditions(s, path+".when", fd.When)
+	}
+	if !paramsOK {
+		return feat, false
 	}
 	k, err := info.build(fd, d)
 	if err != nil {
