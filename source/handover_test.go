@@ -4,6 +4,7 @@ import (
 	"context"
 	"math"
 	"slices"
+	"strings"
 	"testing"
 
 	"github.com/tallyward/tallyward"
@@ -109,5 +110,23 @@ func TestHandoverEqualsOneReplay(t *testing.T) {
 				t.Fatalf("cut %v row %d: %+v, want %+v", cut, i, g, w)
 			}
 		}
+	}
+}
+
+// TestJSONLinesStream: a live JSON-lines stream yields its good rows and
+// tells bad ones with their line.
+func TestJSONLinesStream(t *testing.T) {
+	s := schema(t)
+	in := `{"ts":1767225600000,"kind":"login","account":"a1"}` + "\n\nnot json\n" + `{"ts":1767225601000,"kind":"pay","account":"a2","amount":3}`
+	var bad []*source.RowError
+	var got []specfile.Event
+	for ev, err := range source.Lines(strings.NewReader(in), "stdin", s, func(e *source.RowError) { bad = append(bad, e) }) {
+		if err != nil {
+			t.Fatal(err)
+		}
+		got = append(got, ev)
+	}
+	if len(got) != 2 || got[1].Fields[2].Num != 3 || len(bad) != 1 || !strings.HasPrefix(bad[0].Error(), "stdin:3:") {
+		t.Fatalf("got %+v, bad %v", got, bad)
 	}
 }
