@@ -67,7 +67,7 @@ func sameFloat(a, b float64) bool { return a == b || math.IsNaN(a) && math.IsNaN
 // encoding/json) and Parquet (read by parquet-go) give back every value,
 // awkward strings included.
 func TestTablesReadBack(t *testing.T) {
-	rows := genRows(300)
+	rows := genRows(2500) // more than one conversion batch
 	dir := t.TempDir()
 
 	write(t, filepath.Join(dir, "t.csv"), sink.CSV, rows)
