@@ -28,10 +28,10 @@ type parquetReader struct {
 	// Parquet TIMESTAMP; such a column is read by its annotation whatever
 	// the spec's time format. 0: not annotated.
 	timeUnit int64
-	buf  []parquet.Row
-	n, i int
-	p    pos
-	seen []bool
+	buf      []parquet.Row
+	n, i     int
+	p        pos
+	seen     []bool
 }
 
 func openParquet(path string, s *specfile.Schema, at pos, counter *int64) (_ *parquetReader, err error) {
