@@ -272,3 +272,55 @@ func TestMain(m *testing.M) {
 	}
 	os.Exit(code)
 }
+
+// BenchmarkResume: reaching the last tenth of a file after a restart, by
+// seeking to a stored cursor against re-decoding and skipping the first
+// nine tenths (tallyward.Skip), the way a source without positions must.
+//
+//	go test ./source/ -run '^$' -bench Resume -benchtime 1x
+func BenchmarkResume(b *testing.B) {
+	paths := benchInputs(b)
+	f, err := specfile.Parse("bench.yaml", []byte(benchSpec))
+	if err != nil {
+		b.Fatal(err)
+	}
+	opts := source.Options{MaxDisorder: f.Options.MaxDisorder}
+	for _, format := range []string{"jsonl", "csv", "parquet"} {
+		in := []string{paths[format]}
+		at := uint64(*benchEvents) * 9 / 10
+		r, err := source.Open(in, f.Schema, opts, nil, 0)
+		if err != nil {
+			b.Fatal(err)
+		}
+		readAll(b, r, int(at))
+		cur, err := r.CursorAt(at)
+		if err != nil {
+			b.Fatal(err)
+		}
+		r.Close()
+		b.Run(format+"/seek", func(b *testing.B) {
+			for b.Loop() {
+				r, err := source.Open(in, f.Schema, opts, cur, at)
+				if err != nil {
+					b.Fatal(err)
+				}
+				readAll(b, r, -1)
+				r.Close()
+			}
+		})
+		b.Run(format+"/skip", func(b *testing.B) {
+			for b.Loop() {
+				r, err := source.Open(in, f.Schema, opts, nil, 0)
+				if err != nil {
+					b.Fatal(err)
+				}
+				for _, err := range tallyward.Skip(r.Events(), at) {
+					if err != nil {
+						b.Fatal(err)
+					}
+				}
+				r.Close()
+			}
+		})
+	}
+}
