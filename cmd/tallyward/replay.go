@@ -77,6 +77,9 @@ type replayFlags struct {
 //	bytes    the source cursor (package source)
 const replayCursorVersion = 1
 
+// maxShownBad bounds the bad rows printed one by one.
+const maxShownBad = 100
+
 func replay(e *env, o *replayFlags, inputs []string) int {
 	if len(inputs) == 0 {
 		e.errorf("replay needs at least one input file")
@@ -152,11 +155,19 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 		e.errorf("%v", err)
 		return exitFailure
 	}
+	shownBad := 0
 	srcOpts := source.Options{
 		MaxDisorder: f.Options.MaxDisorder,
 		SortFiles:   o.sortFiles,
 		MaxBadRows:  o.maxBad,
-		OnBadRow:    func(re *source.RowError) { e.errorf("bad row: %v", re) },
+		OnBadRow: func(re *source.RowError) {
+			// The first ones are told; after that only the count, at the end.
+			if shownBad++; shownBad <= maxShownBad {
+				e.errorf("bad row: %v", re)
+			} else if shownBad == maxShownBad+1 {
+				e.errorf("more bad rows; not showing them")
+			}
+		},
 	}
 	rd, err := source.Open(inputs, f.Schema, srcOpts, srcCursor, p.ResumeSeq())
 	if err != nil {
