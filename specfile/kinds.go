@@ -2,6 +2,7 @@ package specfile
 
 import (
 	"fmt"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward"
@@ -188,4 +189,14 @@ func (f *featureDoc) setParams() []string {
 func (f *featureDoc) durationParams() map[string]string {
 	return map[string]string{pWindow: f.Window, pResolution: f.Resolution, pHalfLife: f.HalfLife,
 		pShort: f.Short, pLong: f.Long, pGap: f.Gap}
+}
+
+// KindNames lists the kind names a spec file accepts, sorted.
+func KindNames() []string {
+	names := make([]string, 0, len(kinds))
+	for k := range kinds {
+		names = append(names, k)
+	}
+	slices.Sort(names)
+	return names
 }

@@ -453,12 +453,7 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 	feat := tallyward.Feature[Event]{Name: fd.Name, BeforeEvent: fd.BeforeEvent}
 	info, ok := kinds[fd.Kind]
 	if !ok {
-		var names []string
-		for k := range kinds {
-			names = append(names, k)
-		}
-		slices.Sort(names)
-		l.add(path+".kind", "%q is not a kind (one of %s)", fd.Kind, strings.Join(names, ", "))
+		l.add(path+".kind", "%q is not a kind (one of %s)", fd.Kind, strings.Join(KindNames(), ", "))
 		return feat, false
 	}
 	before := len(l.problems)
