@@ -172,6 +172,14 @@ func sameEvents(t *testing.T, got, want []specfile.Event) {
 // yields exactly the events from r on of one uninterrupted read, with the
 // same bad-row count, for every format and compression at once.
 func TestResumeFromCursorEqualsOneRead(t *testing.T) {
+	for _, sorted := range []bool{false, true} {
+		t.Run(map[bool]string{false: "streamed", true: "sorted"}[sorted], func(t *testing.T) {
+			testResume(t, sorted)
+		})
+	}
+}
+
+func testResume(t *testing.T, sorted bool) {
 	n := 3000
 	if testing.Short() {
 		n = 600
@@ -179,7 +187,7 @@ func TestResumeFromCursorEqualsOneRead(t *testing.T) {
 	dir := t.TempDir()
 	paths := fiveFiles(t, dir, n)
 	s := schema(t)
-	opts := source.Options{MaxDisorder: 60e9, MaxBadRows: -1}
+	opts := source.Options{MaxDisorder: 60e9, MaxBadRows: -1, SortFiles: sorted}
 	r, err := source.Open(paths, s, opts, nil, 0)
 	if err != nil {
 		t.Fatal(err)
