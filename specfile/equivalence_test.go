@@ -2,6 +2,7 @@ package specfile_test
 
 import (
 	"encoding/json"
+	"errors"
 	"math"
 	"math/rand/v2"
 	"reflect"
@@ -128,7 +129,7 @@ func runRows[E any](t *testing.T, spec tallyward.Spec[E], opts tallyward.Options
 
 func isBenign(err error) bool {
 	var re *tallyward.RejectError
-	return errorsAs(err, &re) || err == tallyward.ErrLate
+	return errors.As(err, &re) || errors.Is(err, tallyward.ErrLate)
 }
 
 // TestSpecFileEqualsGoAPI: the spec file and the same definitions written
