@@ -228,6 +228,9 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 	slices.Sort(rejected)
 	fmt.Fprintf(e.stderr, "replay: %d events, %d rows, %d bad rows, rejected: [%s], %d late; table %s\n",
 		st.Events, st.Emitted, rd.BadRows(), strings.Join(rejected, ", "), st.Late, o.out)
+	if st.Rejected[tallyward.FutureTime] > 0 {
+		e.errorf("hint: events after a quiet spell longer than run.future_skew (default 1h) are rejected as future-time; history with nights or weekends needs a larger future_skew")
+	}
 	if err := p.Close(); err != nil {
 		e.errorf("%v", err)
 		return exitFailure
