@@ -41,6 +41,21 @@ func TestCommandsHelpAndExitCodes(t *testing.T) {
 	if r.code != exitBadInput || !strings.Contains(r.stderr, "junk.jsonl:2:") {
 		t.Errorf("bad input: exit %d:\n%s", r.code, r.stderr)
 	}
+	// A file out of time order beyond max_disorder stops with 4, naming
+	// file and line; -sort-files reads it.
+	late := filepath.Join(dir, "late.jsonl")
+	os.WriteFile(late, []byte(`{"ts":1767225600000,"kind":"login","account":"a","device":"d"}
+{"ts":1767225900000,"kind":"login","account":"a","device":"d"}
+{"ts":1767225700000,"kind":"login","account":"a","device":"d"}
+`), 0o644)
+	r = runCmd(t, nil, replayArgs(spec, filepath.Join(dir, "late-state"), filepath.Join(dir, "late.csv"), []string{late})...)
+	if r.code != exitBadInput || !strings.Contains(r.stderr, "late.jsonl:3:") {
+		t.Errorf("disorder: exit %d:\n%s", r.code, r.stderr)
+	}
+	r = runCmd(t, nil, append([]string{"replay", "-sort-files", "-spec", spec, "-state", filepath.Join(dir, "sorted-state"), "-out", filepath.Join(dir, "sorted.csv")}, late)...)
+	if r.code != 0 || !strings.Contains(r.stderr, "3 events, 3 rows") {
+		t.Errorf("-sort-files: exit %d:\n%s", r.code, r.stderr)
+	}
 	// A changed definition: check says what a replay would reset (5), and
 	// replay refuses (5) until -reset names it.
 	state := filepath.Join(dir, "state")
