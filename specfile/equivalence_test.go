@@ -58,6 +58,8 @@ func goSpec() (tallyward.Spec[payEvent], tallyward.Options) {
 				{Name: "age", Kind: tallyward.Recency{Stat: tallyward.Age}},
 				{Name: "session_events", Kind: tallyward.Recency{Stat: tallyward.SessionEvents, Gap: 20 * time.Minute}},
 				{Name: "devices_24h", Kind: tallyward.Distinct{Window: day, Precision: 10}, Item: func(e payEvent) string { return e.Device }},
+				{Name: "devices_ever", Kind: tallyward.DistinctEver{Precision: 11}, Item: func(e payEvent) string { return e.Device }},
+				{Name: "login_surge", Kind: tallyward.Surge{Window: 10 * time.Minute, HalfLife: day, Resolution: time.Minute, Smoothing: 2}, Where: isType("login")},
 			}},
 			{Name: "card", Key: func(e payEvent) string { return e.Card }, Features: []tallyward.Feature[payEvent]{
 				{Name: "merchant_seen", Kind: tallyward.Frequency{Epsilon: 0.02, Delta: 0.05}, Item: func(e payEvent) string { return e.Merchant }, BeforeEvent: true},
