@@ -2,7 +2,10 @@ package tallyward
 
 import (
 	"context"
-	"sync"
+	"errors"
+	"log/slog"
+	"math/bits"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -13,53 +16,141 @@ import (
 // injected clock drives only the future-time check and the idle watermark
 // advance, so with a clock that never triggers those, a live run is
 // identical to a replay of the same sequence.
+//
+// # The clock contract
+//
+// The Clock must tell Unix nanoseconds on the same scale as event times,
+// and must not run behind them by more than Options.FutureSkew: an event
+// whose time is more than FutureSkew ahead of the clock is rejected
+// (FutureTime). A clock set to the wrong epoch or unit therefore rejects
+// every event. The submitting calls return that rejection; Run, which has
+// no caller to return it to, counts it (Stats.Rejected) and logs it to
+// Options.Logger.
+//
+// # Contexts
+//
+// Calls that can wait take a context: for the core while another
+// goroutine holds it (a commit, which syncs to disk, can take tens of
+// milliseconds), or, in SubmitInOrder, for earlier events. A call whose
+// context ends before it got the core returns the context's error and
+// changes nothing; once it has the core it runs to completion.
 type Live[E any] struct {
-	mu      sync.Mutex
-	turn    *sync.Cond
+	// sem is the lock on the core: a channel, so that waiting for it can
+	// be abandoned when a context ends.
+	sem     chan struct{}
 	p       *Pipeline[E]
 	clock   Clock
-	next    uint64 // ticket of the next event SubmitInOrder lets through
-	lastArr int64  // clock time of the last arrival
+	log     *slog.Logger
+	next    uint64        // ticket of the next event SubmitInOrder lets through
+	moved   chan struct{} // closed and replaced when next moves while waiters > 0
+	waiters int
+	lastArr int64 // clock time of the last arrival
+	runRej  uint64
 }
 
 // NewLive wraps p. The caller must not use p directly while Live is in
 // use.
 func NewLive[E any](p *Pipeline[E], clock Clock) *Live[E] {
-	l := &Live[E]{p: p, clock: clock, next: p.seen}
-	l.turn = sync.NewCond(&l.mu)
+	l := &Live[E]{sem: make(chan struct{}, 1), p: p, clock: clock, log: p.opts.Logger, next: p.seen, moved: make(chan struct{})}
 	l.lastArr = clock.Now()
 	return l
 }
 
+func (l *Live[E]) lock(ctx context.Context) error {
+	select {
+	case l.sem <- struct{}{}:
+		return nil
+	default:
+	}
+	select {
+	case l.sem <- struct{}{}:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+func (l *Live[E]) unlock() { <-l.sem }
+
 // Submit processes e as the next event of the sequence (arrival order at
-// the lock) and returns Process's error.
-func (l *Live[E]) Submit(e E) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+// the core) and returns Process's error.
+func (l *Live[E]) Submit(ctx context.Context, e E) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	_, err := l.submitLocked(e, nil, false)
 	return err
 }
 
 // Score is Submit that also appends e's features to dst (Eager mode).
-func (l *Live[E]) Score(e E, dst []float64) ([]float64, error) {
+func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, error) {
 	if l.p.opts.Mode != Eager {
 		return dst, ErrNotEager
 	}
-	l.mu.Lock()
-	defer l.mu.Unlock()
+	if err := l.lock(ctx); err != nil {
+		return dst, err
+	}
+	defer l.unlock()
 	return l.submitLocked(e, dst, true)
+}
+
+// SubmitBatch processes es in order as consecutive events of the sequence,
+// holding the core for the whole batch so no other submission interleaves.
+// errs[i] is event i's error (nil if applied); the returned error is a
+// storage failure or the context's, and stops the batch. If dst is not
+// nil, each event's features are appended to it (Eager mode).
+func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, errs []error, dst []float64) ([]error, []float64, error) {
+	want := dst != nil
+	if want && l.p.opts.Mode != Eager {
+		return errs, dst, ErrNotEager
+	}
+	if err := l.lock(ctx); err != nil {
+		return errs, dst, err
+	}
+	defer l.unlock()
+	for _, e := range es {
+		var err error
+		dst, err = l.submitLocked(e, dst, want)
+		if err != nil && !benign(err) {
+			return append(errs, err), dst, err
+		}
+		errs = append(errs, err)
+	}
+	return errs, dst, nil
 }
 
 // SubmitInOrder processes e as event number n of the sequence: it waits
 // until events n0..n-1 have been submitted (n0 = ResumeSeq() when Live was
 // made), so several goroutines that decode or fetch a source in parallel
 // still feed the core one ordered sequence. Each n must be submitted once.
-func (l *Live[E]) SubmitInOrder(n uint64, e E) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	for l.next != n {
-		l.turn.Wait()
+// If ctx ends while it waits, it returns ctx's error and e is not
+// submitted; the events after n then wait for n until it is.
+func (l *Live[E]) SubmitInOrder(ctx context.Context, n uint64, e E) error {
+	for {
+		if err := l.lock(ctx); err != nil {
+			return err
+		}
+		if l.next == n {
+			break
+		}
+		l.waiters++
+		moved := l.moved
+		l.unlock()
+		select {
+		case <-moved:
+		case <-ctx.Done():
+		}
+		// Deregister under the lock whatever woke us; a lock that the
+		// context forbids is taken anyway, for a moment, to keep count.
+		l.sem <- struct{}{}
+		l.waiters--
+		l.unlock()
+		if err := ctx.Err(); err != nil {
+			return err
+		}
 	}
+	defer l.unlock()
 	_, err := l.submitLocked(e, nil, false)
 	return err
 }
@@ -69,7 +160,10 @@ func (l *Live[E]) submitLocked(e E, dst []float64, want bool) ([]float64, error)
 	l.lastArr = now
 	dst, err := l.p.process(e, now, dst, want)
 	l.next++
-	l.turn.Broadcast()
+	if l.waiters > 0 {
+		close(l.moved)
+		l.moved = make(chan struct{})
+	}
 	return dst, err
 }
 
@@ -77,9 +171,11 @@ func (l *Live[E]) submitLocked(e E, dst []float64, want bool) ([]float64, error)
 // for Options.IdleAdvance of clock time, the watermark rises to
 // clock − MaxDisorder − IdleAdvance. Run calls it periodically; tests call
 // it directly with a fake clock.
-func (l *Live[E]) Tick() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Tick(ctx context.Context) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	idle := int64(l.p.opts.IdleAdvance)
 	if idle == 0 {
 		return l.p.usable()
@@ -92,8 +188,13 @@ func (l *Live[E]) Tick() error {
 }
 
 // Run consumes ch until it is closed or ctx ends, ticking every tick of
-// real time (no ticking if tick is 0). Per-event rejections are counted,
-// not returned.
+// real time (no ticking if tick is 0). It returns nil when ch is closed,
+// ctx's error when ctx ends, and any storage failure at once.
+//
+// Events the pipeline rejects or finds late are counted in Stats as
+// always; Run also logs rejections to Options.Logger (at Warn, the 1st,
+// 2nd, 4th, 8th... of this Run, each with the running count, so a clock
+// that rejects everything is visible without flooding the log).
 func (l *Live[E]) Run(ctx context.Context, ch <-chan E, tick time.Duration) error {
 	var tc <-chan time.Time
 	if tick > 0 {
@@ -109,41 +210,82 @@ func (l *Live[E]) Run(ctx context.Context, ch <-chan E, tick time.Duration) erro
 			if !ok {
 				return nil
 			}
-			if err := l.Submit(e); err != nil && !benign(err) {
+			err := l.Submit(ctx, e)
+			switch {
+			case err == nil:
+			case benign(err):
+				l.noteRejected(err)
+			default:
 				return err
 			}
 		case <-tc:
-			if err := l.Tick(); err != nil {
+			if err := l.Tick(ctx); err != nil {
 				return err
 			}
 		}
 	}
 }
 
+func (l *Live[E]) noteRejected(err error) {
+	var re *RejectError
+	if !errors.As(err, &re) {
+		return
+	}
+	l.runRej++
+	if bits.OnesCount64(l.runRej) != 1 {
+		return
+	}
+	attrs := []any{"reason", re.Reason.String(), "seq", re.Seq, "event_time", re.Time, "rejected_so_far", l.runRej}
+	if re.Reason == FutureTime {
+		attrs = append(attrs, "clock", l.clock.Now(), "future_skew", l.p.opts.FutureSkew)
+	}
+	if re.Feature != "" {
+		attrs = append(attrs, "feature", re.Feature)
+	}
+	l.log.Warn("live: event rejected", attrs...)
+}
+
+// Advance raises the watermark to w; see Pipeline.Advance.
+func (l *Live[E]) Advance(ctx context.Context, w int64) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Advance(w)
+}
+
 // Commit commits the pipeline; see Pipeline.Commit.
-func (l *Live[E]) Commit(cursor []byte) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Commit(ctx context.Context, cursor []byte) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	return l.p.Commit(cursor)
 }
 
 // Flush flushes the pipeline; see Pipeline.Flush.
-func (l *Live[E]) Flush() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Flush(ctx context.Context) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	return l.p.Flush()
 }
 
-// Stats returns the pipeline's stats.
+// Names returns the feature names in row order; see Pipeline.Names.
+func (l *Live[E]) Names() []string { return slices.Clone(l.p.names) }
+
+// Stats returns the pipeline's stats. It waits for the core without a
+// context: the wait is bounded by one event or one commit.
 func (l *Live[E]) Stats() Stats {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+	l.sem <- struct{}{}
+	defer l.unlock()
 	return l.p.Stats()
 }
 
-// Close closes the pipeline (committing).
+// Close closes the pipeline (committing). It waits for the core.
 func (l *Live[E]) Close() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+	l.sem <- struct{}{}
+	defer l.unlock()
 	return l.p.Close()
 }

@@ -4,6 +4,7 @@ import (
 	"errors"
 	"math"
 	"slices"
+	"time"
 
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/sat"
@@ -41,6 +42,7 @@ type Pipeline[E any] struct {
 	lastCommitSeen uint64
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
+	commitHist                   [len(CommitBuckets) + 1]uint64
 
 	c  counters
 	in inputs // scratch for the current event
@@ -97,6 +99,10 @@ func (in *inputs) clone() inputs {
 // Open validates spec and opts, opens the store and checks that the stored
 // feature definitions match spec. The source must restart at ResumeSeq().
 func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
+	so := store.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold}
+	if opts.Logger != nil {
+		so.Logger = store.SlogLogger(opts.Logger)
+	}
 	opts.EnsureDefaults()
 	// One nanosecond more than the allowed disorder keeps as-of answers
 	// exact for BeforeEvent features, which ask at the event's time − 1.
@@ -111,7 +117,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	st, err := store.Open(store.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold})
+	st, err := store.Open(so)
 	if err != nil {
 		return nil, err
 	}
@@ -141,6 +147,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err := p.checkDefinitions(); err != nil {
 		st.Close()
 		return nil, err
+	}
+	for _, n := range p.notices {
+		opts.Logger.Warn(n)
 	}
 	if len(p.notices) > 0 {
 		// Make the reset durable before any event is processed.
@@ -516,6 +525,7 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	p.lastCommitSeen = p.seen
 	p.lastCommitNanos = p.opts.MetricsClock.Now() - began
 	p.commitNanos += p.lastCommitNanos
+	p.commitHist[commitBucket(time.Duration(p.lastCommitNanos))]++
 	return nil
 }
 

@@ -69,9 +69,9 @@ type Options struct {
 	// Default: DefaultIngestThreshold.
 	IngestThreshold int
 
-	// Logger receives Pebble's messages. Default: a logger that discards
-	// informational messages and keeps the last error for Stats; Pebble's
-	// own default would print on every open and exit the process on Fatalf.
+	// Logger receives Pebble's messages (SlogLogger adapts a slog.Logger).
+	// Default: a logger that discards them; Pebble's own default would
+	// print on every open and exit the process on Fatalf.
 	Logger pebble.Logger
 }
 
