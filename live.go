@@ -79,7 +79,7 @@ func (l *Live[E]) Submit(ctx context.Context, e E) error {
 		return err
 	}
 	defer l.unlock()
-	_, err := l.submitLocked(e, nil, false)
+	_, err := l.submitLocked(e, l.clock.Now(), nil, false)
 	return err
 }
 
@@ -92,32 +92,44 @@ func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, err
 		return dst, err
 	}
 	defer l.unlock()
-	return l.submitLocked(e, dst, true)
+	return l.submitLocked(e, l.clock.Now(), dst, true)
 }
 
-// SubmitBatch processes es in order as consecutive events of the sequence,
-// holding the core for the whole batch so no other submission interleaves.
-// errs[i] is event i's error (nil if applied); the returned error is a
-// storage failure or the context's, and stops the batch. If dst is not
-// nil, each event's features are appended to it (Eager mode).
-func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, errs []error, dst []float64) ([]error, []float64, error) {
-	want := dst != nil
+// SubmitBatch processes es in order as consecutive events of the
+// sequence, all or none: it first checks every event against the
+// pipeline's state as it would be when that event's turn came, and if one
+// would be rejected, or refused as late (unless Options.Lateness is
+// ApplyLate), it returns a *BatchError naming it and consumes nothing, so
+// no event of a refused batch reaches state or the counters. Otherwise it
+// holds the core for the whole batch, so no other submission interleaves,
+// and, if want, appends each event's features to dst (Eager mode).
+//
+// Any other error is a storage failure or ctx's. The automatic commit
+// (Options.CommitEvery) waits for the end of the batch, so no commit
+// splits one; a storage failure can stop a batch part way, but the
+// pipeline is then unusable and a restart resumes from the last commit.
+func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, dst []float64, want bool) ([]float64, error) {
 	if want && l.p.opts.Mode != Eager {
-		return errs, dst, ErrNotEager
+		return dst, ErrNotEager
 	}
 	if err := l.lock(ctx); err != nil {
-		return errs, dst, err
+		return dst, err
 	}
 	defer l.unlock()
+	now := l.clock.Now()
+	if err := l.p.precheck(es, now); err != nil {
+		return dst, err
+	}
+	l.p.inBatch = true
 	for _, e := range es {
 		var err error
-		dst, err = l.submitLocked(e, dst, want)
-		if err != nil && !benign(err) {
-			return append(errs, err), dst, err
+		if dst, err = l.submitLocked(e, now, dst, want); err != nil {
+			l.p.inBatch = false
+			return dst, err
 		}
-		errs = append(errs, err)
 	}
-	return errs, dst, nil
+	l.p.inBatch = false
+	return dst, l.p.autoCommit()
 }
 
 // SubmitInOrder processes e as event number n of the sequence: it waits
@@ -151,12 +163,11 @@ func (l *Live[E]) SubmitInOrder(ctx context.Context, n uint64, e E) error {
 		}
 	}
 	defer l.unlock()
-	_, err := l.submitLocked(e, nil, false)
+	_, err := l.submitLocked(e, l.clock.Now(), nil, false)
 	return err
 }
 
-func (l *Live[E]) submitLocked(e E, dst []float64, want bool) ([]float64, error) {
-	now := l.clock.Now()
+func (l *Live[E]) submitLocked(e E, now int64, dst []float64, want bool) ([]float64, error) {
 	l.lastArr = now
 	dst, err := l.p.process(e, now, dst, want)
 	l.next++
@@ -288,4 +299,47 @@ func (l *Live[E]) Close() error {
 	l.sem <- struct{}{}
 	defer l.unlock()
 	return l.p.Close()
+}
+
+// Lookup is Pipeline.Lookup on the core: safe while other goroutines
+// submit events.
+func (l *Live[E]) Lookup(ctx context.Context, entity, key string, t int64, dst []float64) ([]float64, bool, error) {
+	if err := l.lock(ctx); err != nil {
+		return dst, false, err
+	}
+	defer l.unlock()
+	return l.p.Lookup(entity, key, t, dst)
+}
+
+// Erase erases one entity key; see Pipeline.Erase. It runs between two
+// submissions.
+func (l *Live[E]) Erase(ctx context.Context, entity, key string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Erase(entity, key)
+}
+
+// Entities returns the entity names and, for each, its features' names
+// (without the entity prefix), in row order.
+func (l *Live[E]) Entities() (names []string, features [][]string) {
+	for _, es := range l.p.ents {
+		names = append(names, es.ent.Name)
+		fs := make([]string, len(es.ent.Features))
+		for i, f := range es.ent.Features {
+			fs[i] = f.Name
+		}
+		features = append(features, fs)
+	}
+	return names, features
+}
+
+// ResumeSeq returns the sequence number the last commit covers events
+// up to: after a crash, events from there on were lost and must be sent
+// again. See Pipeline.ResumeSeq.
+func (l *Live[E]) ResumeSeq() uint64 {
+	l.sem <- struct{}{}
+	defer l.unlock()
+	return l.p.ResumeSeq()
 }

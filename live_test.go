@@ -76,19 +76,42 @@ func TestLiveCanceledSubmitChangesNothing(t *testing.T) {
 	require.Zero(t, live.Stats().Events)
 }
 
-// SubmitBatch reports each event's own error and keeps the batch going
-// past rejections.
-func TestLiveSubmitBatch(t *testing.T) {
-	p := openTest(t, loginSpec(nil), Options{})
+// SubmitBatch takes a batch whole or not at all: one bad event refuses
+// it before anything is consumed or counted.
+func TestLiveSubmitBatchAllOrNothing(t *testing.T) {
+	p := openTest(t, loginSpec(nil), Options{MaxDisorder: time.Second, CommitEvery: 2})
 	live := NewLive(p, &fakeClock{now: t0})
-	batch := []login{{T: t0, Account: "a", Addr: "x"}, {T: 0, Account: "a"}, {T: t0 + 1, Account: "a", Addr: "x"}}
-	errs, vals, err := live.SubmitBatch(context.Background(), batch, nil, []float64{})
+	ctx := context.Background()
+	ok := login{T: t0, Account: "a", Addr: "x"}
+	for _, c := range []struct {
+		bad  login
+		want error
+	}{
+		{login{T: 0, Account: "a"}, ErrZeroTime},
+		{login{T: t0 + int64(2*time.Hour), Account: "a"}, ErrFutureTime},
+		// Late only once the batch's own first event has moved the
+		// watermark: the check follows the batch as it would unfold.
+		{login{T: t0 - int64(2*time.Second), Account: "a"}, ErrLate},
+	} {
+		_, err := live.SubmitBatch(ctx, []login{ok, ok, c.bad}, nil, false)
+		var be *BatchError
+		require.ErrorAs(t, err, &be)
+		require.Equal(t, 2, be.Index)
+		require.ErrorIs(t, err, c.want)
+		st := live.Stats()
+		require.Zero(t, st.Events)
+		require.Zero(t, st.Rejected[ZeroTime]+st.Rejected[FutureTime]+st.Late)
+		require.Zero(t, st.Commits)
+	}
+	batch := []login{ok, {T: t0 + 1, Account: "a", Addr: "x"}, {T: t0 + 2, Account: "b", Addr: "x"}}
+	vals, err := live.SubmitBatch(ctx, batch, []float64{}, true)
 	require.NoError(t, err)
-	require.NoError(t, errs[0])
-	require.ErrorIs(t, errs[1], ErrZeroTime)
-	require.NoError(t, errs[2])
-	require.Len(t, vals, 2*len(live.Names()))
-	require.Equal(t, 2.0, vals[len(live.Names())+1], "addr.all_1m after two applied events")
+	n := len(live.Names())
+	require.Len(t, vals, 3*n)
+	require.Equal(t, 3.0, vals[2*n+1], "addr.all_1m after three events")
+	st := live.Stats()
+	require.Equal(t, uint64(3), st.Applied)
+	require.Equal(t, uint64(1), st.Commits, "one automatic commit, after the batch")
 }
 
 // Open's notices (a reset feature) and the storage engine's own messages

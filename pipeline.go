@@ -53,6 +53,7 @@ type Pipeline[E any] struct {
 	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
 	batch   []*held[E]              // Settled: scratch for one timestamp's events
 	closed  bool
+	inBatch bool     // Live.SubmitBatch: no automatic commit inside a batch
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
 }
@@ -264,12 +265,19 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
-	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
-		if err := p.Commit(nil); err != nil {
-			return dst, err
-		}
+	if err := p.autoCommit(); err != nil {
+		return dst, err
 	}
 	return dst, p.err
+}
+
+// autoCommit commits if Options.CommitEvery events came since the last
+// commit (and no batch is in progress).
+func (p *Pipeline[E]) autoCommit() error {
+	if p.err == nil && !p.inBatch && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
+		return p.Commit(nil)
+	}
+	return nil
 }
 
 // reconsume handles an event re-read after a restart (seq < reread): it
@@ -291,10 +299,17 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 // extract fills p.in from e and validates it. Nothing is touched on error
 // except the rejection counters.
 func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
+	return p.extractAt(e, seq, now, p.hasMax, p.maxT, false)
+}
+
+// extractAt is extract against a given newest time; dry leaves the
+// counters alone, for checking events before any of them is consumed.
+func (p *Pipeline[E]) extractAt(e E, seq uint64, now int64, hasMax bool, maxT int64, dry bool) error {
 	t := p.spec.Time(e)
 	p.in.t = t
+	counted := !dry && seq >= p.reread
 	reject := func(r Reason, feature string) error {
-		if seq >= p.reread {
+		if counted {
 			p.c.rejected[r]++
 		}
 		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature}
@@ -303,8 +318,8 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 		return reject(ZeroTime, "")
 	}
 	skew := int64(p.opts.FutureSkew)
-	if (p.hasMax && t > sat.Add(p.maxT, skew)) || (now != 0 && t > sat.Add(now, skew)) {
-		if seq >= p.reread {
+	if (hasMax && t > sat.Add(maxT, skew)) || (now != 0 && t > sat.Add(now, skew)) {
+		if counted {
 			p.futureRejected = append(p.futureRejected, seq)
 		}
 		return reject(FutureTime, "")
@@ -562,4 +577,36 @@ func heldLess[E any](a, b *held[E]) bool {
 		return a.tie < b.tie
 	}
 	return a.seq < b.seq
+}
+
+// precheck reports the first of es, taken as the next events in order,
+// that process would refuse (rejected, late under a policy that does not
+// apply late events, or after Flush), as a *BatchError, without consuming
+// or counting anything: so a batch can be taken whole or not at all.
+func (p *Pipeline[E]) precheck(es []E, now int64) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	hasMax, maxT, wm := p.hasMax, p.maxT, p.wm
+	for i, e := range es {
+		seq := p.seen + uint64(i)
+		if seq < p.reread {
+			continue // a re-read is never refused
+		}
+		if p.flushed {
+			return &BatchError{Index: i, Err: ErrFlushed}
+		}
+		if err := p.extractAt(e, seq, now, hasMax, maxT, true); err != nil {
+			return &BatchError{Index: i, Err: err}
+		}
+		t := p.in.t
+		if t < wm && p.opts.Lateness != ApplyLate {
+			return &BatchError{Index: i, Err: &LateError{Time: t, Watermark: wm}}
+		}
+		if !hasMax || t > maxT {
+			hasMax, maxT = true, t
+		}
+		wm = max(wm, sat.Sub(maxT, int64(p.opts.MaxDisorder)))
+	}
+	return nil
 }
