@@ -102,34 +102,36 @@ func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, err
 // ApplyLate), it returns a *BatchError naming it and consumes nothing, so
 // no event of a refused batch reaches state or the counters. Otherwise it
 // holds the core for the whole batch, so no other submission interleaves,
-// and, if want, appends each event's features to dst (Eager mode).
+// and, if want, appends each event's features to dst (Eager mode). first
+// is the sequence number the batch's first event got.
 //
 // Any other error is a storage failure or ctx's. The automatic commit
 // (Options.CommitEvery) waits for the end of the batch, so no commit
 // splits one; a storage failure can stop a batch part way, but the
 // pipeline is then unusable and a restart resumes from the last commit.
-func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, dst []float64, want bool) ([]float64, error) {
+func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, dst []float64, want bool) (first uint64, _ []float64, _ error) {
 	if want && l.p.opts.Mode != Eager {
-		return dst, ErrNotEager
+		return 0, dst, ErrNotEager
 	}
 	if err := l.lock(ctx); err != nil {
-		return dst, err
+		return 0, dst, err
 	}
 	defer l.unlock()
 	now := l.clock.Now()
+	first = l.p.seen
 	if err := l.p.precheck(es, now); err != nil {
-		return dst, err
+		return first, dst, err
 	}
 	l.p.inBatch = true
 	for _, e := range es {
 		var err error
 		if dst, err = l.submitLocked(e, now, dst, want); err != nil {
 			l.p.inBatch = false
-			return dst, err
+			return first, dst, err
 		}
 	}
 	l.p.inBatch = false
-	return dst, l.p.autoCommit()
+	return first, dst, l.p.autoCommit()
 }
 
 // SubmitInOrder processes e as event number n of the sequence: it waits

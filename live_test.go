@@ -93,7 +93,7 @@ func TestLiveSubmitBatchAllOrNothing(t *testing.T) {
 		// watermark: the check follows the batch as it would unfold.
 		{login{T: t0 - int64(2*time.Second), Account: "a"}, ErrLate},
 	} {
-		_, err := live.SubmitBatch(ctx, []login{ok, ok, c.bad}, nil, false)
+		_, _, err := live.SubmitBatch(ctx, []login{ok, ok, c.bad}, nil, false)
 		var be *BatchError
 		require.ErrorAs(t, err, &be)
 		require.Equal(t, 2, be.Index)
@@ -104,8 +104,9 @@ func TestLiveSubmitBatchAllOrNothing(t *testing.T) {
 		require.Zero(t, st.Commits)
 	}
 	batch := []login{ok, {T: t0 + 1, Account: "a", Addr: "x"}, {T: t0 + 2, Account: "b", Addr: "x"}}
-	vals, err := live.SubmitBatch(ctx, batch, []float64{}, true)
+	first, vals, err := live.SubmitBatch(ctx, batch, []float64{}, true)
 	require.NoError(t, err)
+	require.Zero(t, first)
 	n := len(live.Names())
 	require.Len(t, vals, 3*n)
 	require.Equal(t, 3.0, vals[2*n+1], "addr.all_1m after three events")
