@@ -60,7 +60,7 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 		exact = t >= sl.Value.last-es.horizon
 	}
 	for _, a := range aggs {
-		dst = append(dst, a.at(t, 0))
+		dst = append(dst, a.At(t, 0))
 	}
 	return dst, exact, nil
 }
