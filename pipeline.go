@@ -56,6 +56,8 @@ type Pipeline[E any] struct {
 	inBatch bool     // Live.SubmitBatch: no automatic commit inside a batch
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
+	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
+	beforeCommit func(CommitPoint) ([]byte, error)
 }
 
 type entityState[E any] struct {
@@ -524,6 +526,9 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	if err := p.runCommitHook(&m); err != nil {
+		return err
+	}
 	n, err := p.store.Sweep(p.expiryClock())
 	if err != nil {
 		p.err = err
