@@ -358,7 +358,7 @@ func (s *Server[E]) finish(w http.ResponseWriter, r *http.Request, route string,
 	if e == nil {
 		return
 	}
-	attrs := []any{"method", r.Method, "path", r.URL.Path, "status", code, "duration", d, "remote", r.RemoteAddr, "error", e.msg}
+	attrs := []any{"method", r.Method, "path", r.URL.Path, "status", code, "seconds", d.Seconds(), "remote", r.RemoteAddr, "error", e.msg}
 	if e.field != "" {
 		attrs = append(attrs, "field", e.field)
 	}
@@ -414,7 +414,7 @@ func (s *Server[E]) Commit(ctx context.Context, why string) error {
 	}
 	seq := s.live.ResumeSeq()
 	s.committed.Store(seq)
-	s.log.Info("commit", "why", why, "committed_seq", seq, "events", seq-before, "duration", time.Since(began))
+	s.log.Info("commit", "why", why, "committed_seq", seq, "events", seq-before, "seconds", time.Since(began).Seconds())
 	return nil
 }
 
