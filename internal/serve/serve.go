@@ -264,10 +264,17 @@ func New[E any](live *tallyward.Live[E], codec Codec[E], opts Options) (*Server[
 		metricsHandler.ServeHTTP(w, r)
 		return nil
 	})
-	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
-		s.finish(w, r, "other", time.Now(), &apiError{code: http.StatusNotFound, msg: "no such endpoint: " + r.Method + " " + r.URL.Path})
+	s.handler = http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		sw := &statusWriter{ResponseWriter: w, code: http.StatusOK}
+		began := time.Now()
+		mux.ServeHTTP(sw, r)
+		if sw.code >= 300 && !sw.logged {
+			// A refusal of the router itself: 404, or 405 for a known path.
+			s.requests.WithLabelValues("other", strconv.Itoa(sw.code)).Inc()
+			s.log.Warn("request refused", "method", r.Method, "path", r.URL.Path, "status", sw.code,
+				"seconds", time.Since(began).Seconds(), "remote", r.RemoteAddr)
+		}
 	})
-	s.handler = mux
 	s.ready.Store(true)
 	return s, nil
 }
@@ -353,6 +360,9 @@ func (s *Server[E]) finish(w http.ResponseWriter, r *http.Request, route string,
 		writeJSON(w, code, e.body())
 	}
 	d := time.Since(began)
+	if sw, ok := w.(*statusWriter); ok {
+		sw.logged = true
+	}
 	s.requests.WithLabelValues(route, strconv.Itoa(code)).Inc()
 	s.latency.WithLabelValues(route).Observe(d.Seconds())
 	if e == nil {
@@ -371,6 +381,22 @@ func (s *Server[E]) finish(w http.ResponseWriter, r *http.Request, route string,
 	}
 	s.log.Log(r.Context(), level, "request refused", attrs...)
 }
+
+// statusWriter remembers the status code, so that every non-2xx
+// response is logged once, whoever wrote it.
+type statusWriter struct {
+	http.ResponseWriter
+	code   int
+	logged bool
+}
+
+func (w *statusWriter) WriteHeader(code int) {
+	w.code = code
+	w.ResponseWriter.WriteHeader(code)
+}
+
+// Unwrap lets http.ResponseController reach the connection.
+func (w *statusWriter) Unwrap() http.ResponseWriter { return w.ResponseWriter }
 
 func writeJSON(w http.ResponseWriter, code int, body []byte) {
 	w.Header().Set("Content-Type", "application/json")
