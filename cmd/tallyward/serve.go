@@ -182,14 +182,16 @@ func runServe(e *env, f *specfile.File, dir string, o serve.Options) int {
 // which suits wide files but would hide a client's typo).
 type eventCodec struct {
 	schema *specfile.Schema
-	known  map[string]bool
+	known  map[string]bool // declared keys; the time field is known too
+	types  map[string]specfile.FieldType
 	decs   sync.Pool // *specfile.JSONDecoder: one per goroutine at a time
 }
 
 func newEventCodec(s *specfile.Schema) *eventCodec {
-	c := &eventCodec{schema: s, known: map[string]bool{s.TimeField: true}}
+	c := &eventCodec{schema: s, known: map[string]bool{s.TimeField: true}, types: map[string]specfile.FieldType{}}
 	for _, f := range s.Fields {
 		c.known[f.Name] = true
+		c.types[f.Name] = f.Type
 	}
 	c.decs.New = func() any { return s.NewJSONDecoder() }
 	return c
@@ -206,9 +208,15 @@ func (c *eventCodec) Decode(obj []byte) (specfile.Event, error) {
 		}
 		return specfile.Event{}, fmt.Errorf("malformed JSON: %v", err)
 	}
-	for k := range keys {
+	for k, v := range keys {
 		if !c.known[k] {
 			return specfile.Event{}, &serve.FieldError{Field: k, Err: errors.New("unknown field")}
+		}
+		// The file decoder converts between types (a number for a string
+		// field reads as its text); a client sending JSON gets the type
+		// its schema declares or a refusal.
+		if t, ok := c.types[k]; ok && len(v) > 0 && string(v) != "null" && !jsonTypeIs(v[0], t) {
+			return specfile.Event{}, &serve.FieldError{Field: k, Err: fmt.Errorf("wrong type: want a JSON %s, got %.40s", jsonTypeName(t), v)}
 		}
 	}
 	d := c.decs.Get().(*specfile.JSONDecoder)
@@ -222,4 +230,28 @@ func (c *eventCodec) Decode(obj []byte) (specfile.Event, error) {
 		return specfile.Event{}, err
 	}
 	return ev, nil
+}
+
+func jsonTypeIs(first byte, t specfile.FieldType) bool {
+	switch t {
+	case specfile.String:
+		return first == '"'
+	case specfile.Number:
+		return first == '-' || first >= '0' && first <= '9'
+	case specfile.Bool:
+		return first == 't' || first == 'f'
+	}
+	return true
+}
+
+func jsonTypeName(t specfile.FieldType) string {
+	switch t {
+	case specfile.String:
+		return "string"
+	case specfile.Number:
+		return "number"
+	case specfile.Bool:
+		return "boolean"
+	}
+	return t.String()
 }

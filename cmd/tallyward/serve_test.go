@@ -272,3 +272,103 @@ func TestServeEndpoints(t *testing.T) {
 	}
 	require.Equal(t, 3, refused, "404 planet, 404 endpoint, 405")
 }
+
+// Bad requests get a 4xx naming what is wrong, and nothing of them
+// reaches state: next_seq and the features stay as they were.
+func TestServeRefusesBadRequests(t *testing.T) {
+	s := startServe(t, t.TempDir(), "-max-body", "4096", "-max-batch", "10")
+	b := baseMillis()
+	code, m, _ := s.do("POST", "/v1/events", ev(b, "acct-1", "dev-1", 1, true))
+	require.Equal(t, 200, code, "%v", m)
+
+	good := ev(b+1000, "acct-1", "dev-1", 1, true)
+	for _, c := range []struct {
+		name, body string
+		code       int
+		field      string
+		index      float64 // -1: none
+	}{
+		{"malformed", `{"ts":`, 400, "", -1},
+		{"not an object", `42`, 400, "", -1},
+		{"empty", ``, 400, "", -1},
+		{"unknown field", fmt.Sprintf(`{"ts":%d,"account":"a","device":"d","colour":"red"}`, b), 400, "colour", -1},
+		{"wrong type", fmt.Sprintf(`{"ts":%d,"account":"a","device":"d","amount":"ten"}`, b), 400, "amount", -1},
+		{"wrong type bool", fmt.Sprintf(`{"ts":%d,"account":"a","device":"d","ok":"yes"}`, b), 400, "ok", -1},
+		{"missing required", fmt.Sprintf(`{"ts":%d,"device":"d"}`, b), 400, "account", -1},
+		{"missing time", `{"account":"a","device":"d"}`, 400, "ts", -1},
+		{"zero time", `{"ts":0,"account":"a","device":"d"}`, 422, "ts", -1},
+		{"future time", ev(time.Now().Add(3*time.Hour).UnixMilli(), "a", "d", 1, true), 422, "ts", -1},
+		{"late", ev(b-60_000, "a", "d", 1, true), 422, "ts", -1},
+		{"batch with a bad third event", "[" + good + "," + good + `,{"ts":0,"account":"a","device":"d"}]`, 422, "ts", 2},
+		{"batch with a malformed event", "[" + good + `,{"ts":1,"account":7,"device":"d"}]`, 400, "account", 1},
+		{"batch too long", "[" + strings.Repeat(good+",", 10) + good + "]", 413, "", -1},
+		{"body too large", "[" + strings.Repeat(" ", 5000) + good + "]", 413, "", -1},
+	} {
+		for _, path := range []string{"/v1/events", "/v1/score"} {
+			code, m, _ := s.do("POST", path, c.body)
+			require.Equal(t, c.code, code, "%s %s: %v", c.name, path, m)
+			require.NotEmpty(t, m["error"], c.name)
+			if c.field != "" {
+				require.Equal(t, c.field, m["field"], "%s: %v", c.name, m)
+				require.Contains(t, m["error"], c.field, c.name)
+			}
+			if c.index >= 0 {
+				require.Equal(t, c.index, m["index"], c.name)
+			}
+		}
+	}
+	// Bad query parameters of a lookup.
+	code, m, _ = s.do("GET", "/v1/entities/account/acct-1?at=yesterday", "")
+	require.Equal(t, 400, code)
+	require.Equal(t, "at", m["field"])
+	code, m, _ = s.do("GET", "/v1/entities/account/acct-1?when=1", "")
+	require.Equal(t, 400, code)
+	require.Equal(t, "when", m["field"])
+
+	code, m, _ = s.do("GET", "/v1/status", "")
+	require.Equal(t, 200, code)
+	require.Equal(t, 1.0, m["next_seq"], "no refused event was consumed")
+	require.Equal(t, 1.0, m["events"])
+	code, m, _ = s.do("GET", "/v1/entities/account/acct-1", "")
+	require.Equal(t, 200, code)
+	require.Equal(t, 1.0, m["features"].(map[string]any)["events_1h"])
+	code, m, _ = s.do("GET", "/v1/entities/account/a", "")
+	require.Equal(t, 200, code)
+	require.Equal(t, 0.0, m["features"].(map[string]any)["events_1h"])
+	require.Equal(t, 0, s.stop(syscall.SIGINT))
+}
+
+// Off loopback a token is required before anything is bound; with a
+// token, every endpoint but health and readiness needs it.
+func TestServeToken(t *testing.T) {
+	cmd := exec.Command(binary(t), "serve", "-spec", serveSpec, "-state", t.TempDir(), "-addr", "0.0.0.0:0")
+	cmd.Env = append(os.Environ(), "TALLYWARD_TOKEN=")
+	out, err := cmd.CombinedOutput()
+	require.Error(t, err)
+	require.Equal(t, exitUsage, cmd.ProcessState.ExitCode())
+	require.Contains(t, string(out), "token is required")
+
+	tokFile := filepath.Join(t.TempDir(), "token")
+	require.NoError(t, os.WriteFile(tokFile, []byte("s3cret-for-tests\n"), 0o600))
+	s := startServe(t, t.TempDir(), "-token-file", tokFile)
+	b := baseMillis()
+	for _, tok := range []string{"", "wrong"} {
+		s.token = tok
+		for _, r := range [][2]string{{"POST", "/v1/events"}, {"POST", "/v1/score"}, {"GET", "/v1/entities/account/a"},
+			{"DELETE", "/v1/entities/account/a"}, {"POST", "/v1/commit"}, {"GET", "/v1/status"}, {"GET", "/metrics"}} {
+			code, _, h := s.do(r[0], r[1], ev(b, "a", "d", 1, true))
+			require.Equal(t, 401, code, "%v token %q", r, tok)
+			require.Contains(t, h.Get("WWW-Authenticate"), "Bearer")
+		}
+		code, _, _ := s.do("GET", "/healthz", "")
+		require.Equal(t, 200, code)
+		code, _, _ = s.do("GET", "/readyz", "")
+		require.Equal(t, 200, code)
+	}
+	s.token = "s3cret-for-tests"
+	code, m, _ := s.do("POST", "/v1/events", ev(b, "a", "d", 1, true))
+	require.Equal(t, 200, code, "%v", m)
+	code, m, _ = s.do("GET", "/v1/status", "")
+	require.Equal(t, 1.0, m["events"], "unauthenticated requests applied nothing")
+	require.Equal(t, 0, s.stop(syscall.SIGTERM))
+}

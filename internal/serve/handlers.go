@@ -136,7 +136,7 @@ func (s *Server[E]) refusal(err error, batch bool, n int) *apiError {
 		case tallyward.FutureTime:
 			e.field, e.msg = s.codec.TimeField(), fmt.Sprintf("event time %d is too far ahead of the newest event time or of the server clock", re.Time)
 		case tallyward.BadValue:
-			e.field, e.msg = re.Feature, "the value for feature "+re.Feature+" is NaN or infinite"
+			e.field, e.msg = re.Feature, "the value is NaN or infinite"
 		default:
 			e.msg = re.Error()
 		}
@@ -147,6 +147,9 @@ func (s *Server[E]) refusal(err error, batch bool, n int) *apiError {
 		reason, e.code, e.msg = "flushed", http.StatusConflict, "the pipeline was flushed and takes no more events"
 	default:
 		e.msg = be.Err.Error()
+	}
+	if e.field != "" {
+		e.msg = fmt.Sprintf("field %q: %s", e.field, e.msg)
 	}
 	if batch {
 		e.msg = fmt.Sprintf("event %d: %s", be.Index, e.msg)
