@@ -67,7 +67,7 @@ Example:
 			fs.Int64Var(&o.MaxBodyBytes, "max-body", 1<<20, "largest request body, bytes")
 			fs.IntVar(&o.MaxBatch, "max-batch", 1000, "most events in one request")
 			fs.IntVar(&o.QueueDepth, "queue", 256, "most requests admitted at once (waiting or being served)")
-			fs.DurationVar(&o.CommitInterval, "commit-interval", time.Second, "period of automatic commits; negative: only on request, erasure and shutdown")
+			fs.DurationVar(&o.CommitInterval, "commit-interval", time.Second, "period of automatic commits; 0: only on request, erasure and shutdown")
 			fs.DurationVar(&o.DrainTimeout, "drain-timeout", 30*time.Second, "longest wait for requests in flight at shutdown")
 			logFormat := fs.String("log-format", "json", "log format: json or text (to stderr)")
 			logLevel := fs.String("log-level", "info", "least level logged: debug, info, warn, error")
@@ -82,6 +82,9 @@ Example:
 					return exitUsage
 				}
 				o.Logger = log
+				if o.CommitInterval <= 0 {
+					o.CommitInterval = -1
+				}
 				if o.Token, err = readToken(*tokenFile, *tokenEnv); err != nil {
 					e.errorf("%v", err)
 					return exitUsage
