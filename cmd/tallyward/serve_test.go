@@ -3,9 +3,18 @@ package main
 import (
 	"bufio"
 	"bytes"
+	"crypto/ecdsa"
+	"crypto/elliptic"
+	"crypto/rand"
+	"crypto/tls"
+	"crypto/x509"
+	"crypto/x509/pkix"
 	"encoding/json"
+	"encoding/pem"
 	"fmt"
 	"io"
+	"math/big"
+	"net"
 	"net/http"
 	"os"
 	"os/exec"
@@ -172,7 +181,7 @@ func (s *server) raw(method, path, body string, hdr ...string) (int, []byte, htt
 // base time of the test events: a whole minute, half an hour ago, so no
 // event is "in the future" for the server's clock.
 func baseMillis() int64 {
-	return time.Now().Add(-30*time.Minute).Truncate(time.Minute).UnixMilli()
+	return time.Now().Add(-30 * time.Minute).Truncate(time.Minute).UnixMilli()
 }
 
 func ev(ts int64, account, device string, amount float64, ok bool) string {
@@ -666,5 +675,43 @@ func TestServeMetricsMatchEventsSent(t *testing.T) {
 	require.Equal(t, float64(ts)/1e3, val("tallyward_newest_event_time_seconds"))
 	require.Equal(t, 5.0, val("tallyward_watermark_lag_seconds"), "max_disorder of the spec")
 	require.Greater(t, val("go_goroutines"), 0.0)
+	require.Equal(t, 0, s.stop(syscall.SIGTERM))
+}
+
+// With -tls-cert and -tls-key the service speaks HTTPS only.
+func TestServeTLS(t *testing.T) {
+	dir := t.TempDir()
+	certFile, keyFile := filepath.Join(dir, "cert.pem"), filepath.Join(dir, "key.pem")
+	key, err := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
+	require.NoError(t, err)
+	tmpl := &x509.Certificate{
+		SerialNumber: big.NewInt(1), Subject: pkix.Name{CommonName: "localhost"},
+		NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour),
+		IPAddresses: []net.IP{net.IPv4(127, 0, 0, 1)}, KeyUsage: x509.KeyUsageDigitalSignature,
+		ExtKeyUsage: []x509.ExtKeyUsage{x509.ExtKeyUsageServerAuth},
+	}
+	der, err := x509.CreateCertificate(rand.Reader, tmpl, tmpl, &key.PublicKey, key)
+	require.NoError(t, err)
+	kb, err := x509.MarshalECPrivateKey(key)
+	require.NoError(t, err)
+	require.NoError(t, os.WriteFile(certFile, pem.EncodeToMemory(&pem.Block{Type: "CERTIFICATE", Bytes: der}), 0o600))
+	require.NoError(t, os.WriteFile(keyFile, pem.EncodeToMemory(&pem.Block{Type: "EC PRIVATE KEY", Bytes: kb}), 0o600))
+
+	s := startServe(t, t.TempDir(), "-tls-cert", certFile, "-tls-key", keyFile)
+	cert, err := x509.ParseCertificate(der)
+	require.NoError(t, err)
+	pool := x509.NewCertPool()
+	pool.AddCert(cert)
+	tlsClient := &http.Client{Timeout: 10 * time.Second, Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: pool}}}
+	https := strings.Replace(s.base, "http://", "https://", 1)
+	resp, err := tlsClient.Post(https+"/v1/score", "application/json", strings.NewReader(ev(baseMillis(), "a", "d", 1, true)))
+	require.NoError(t, err)
+	resp.Body.Close()
+	require.Equal(t, 200, resp.StatusCode)
+	resp, err = client.Get(s.base + "/healthz") // plain HTTP to a TLS port
+	if err == nil {
+		resp.Body.Close()
+		require.Equal(t, http.StatusBadRequest, resp.StatusCode)
+	}
 	require.Equal(t, 0, s.stop(syscall.SIGTERM))
 }
