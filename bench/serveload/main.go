@@ -217,6 +217,9 @@ func run(dur time.Duration, clients, batch int, specPath, bin string, queue int)
 	}
 	fmt.Printf("\nserver resident memory: %.0f MiB at the first sample, %.0f MiB at most, %.0f MiB at the last (%d samples, 1 per second)\n",
 		mem.first/(1<<20), mem.max/(1<<20), mem.last/(1<<20), mem.samples)
+	fmt.Printf("of which at most: Go heap in use %.0f MiB, entity records cached %.0f MiB (bounded by the cache size, 256 MiB by default);\n",
+		mem.heapMax/(1<<20), mem.stateMax/(1<<20))
+	fmt.Printf("requests in flight are bounded by -queue × -max-body = %d × 1 MiB\n", queue)
 	for _, r := range results {
 		if r.errors > 0 {
 			return fmt.Errorf("%s: %d errors, the first: %s", r.name, r.errors, r.firstErr)
@@ -359,6 +362,8 @@ func livePhase(name string, live *tallyward.Live[specfile.Event], schema *specfi
 // memWatch samples the server's resident memory from its /metrics.
 type memWatch struct {
 	first, max, last float64
+	stateMax         float64 // the pipeline's record cache at most
+	heapMax          float64 // Go heap in use at most
 	samples          int
 }
 
@@ -388,6 +393,14 @@ func (m *memWatch) watch(hc *http.Client, base string) (stop func()) {
 					}
 					m.samples++
 					m.max, m.last = max(m.max, f), f
+				}
+				if v, ok := strings.CutPrefix(sc.Text(), "tallyward_state_memory_bytes "); ok {
+					f, _ := strconv.ParseFloat(v, 64)
+					m.stateMax = max(m.stateMax, f)
+				}
+				if v, ok := strings.CutPrefix(sc.Text(), "go_memstats_heap_inuse_bytes "); ok {
+					f, _ := strconv.ParseFloat(v, 64)
+					m.heapMax = max(m.heapMax, f)
 				}
 			}
 			resp.Body.Close()
