@@ -64,4 +64,3 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 	}
 	return dst, exact, nil
 }
-
