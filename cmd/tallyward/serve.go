@@ -31,6 +31,7 @@ Serves one pipeline (Eager mode) over HTTP/JSON:
 
   POST   /v1/events                   apply one event (object) or a batch (array)
   POST   /v1/score                    apply and return the features
+         ...?durable=true             answer once a commit covers the events
   GET    /v1/entities/ENTITY/KEY      features as of now, or ?at=TIME (applies nothing)
   DELETE /v1/entities/ENTITY/KEY      erase the key, durably
   POST   /v1/commit                   commit now
@@ -51,7 +52,8 @@ shutdown: SIGTERM or SIGINT stops accepting, drains the requests in
 flight, commits and exits 0. After a crash the service resumes from the
 last commit; /v1/status reports committed_seq, and a client that sends
 again every event numbered at or above it gets each applied at least
-once.
+once. With ?durable=true an answer waits for a commit that covers its
+events (waiting requests share one), so acknowledged means durable.
 
 Example:
   tallyward serve -spec market.yaml -state ./state

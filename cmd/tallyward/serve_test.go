@@ -715,3 +715,54 @@ func TestServeTLS(t *testing.T) {
 	}
 	require.Equal(t, 0, s.stop(syscall.SIGTERM))
 }
+
+// With ?durable=true an acknowledgement means the events are committed:
+// a SIGKILL right after loses none of them, with automatic commits off.
+func TestServeDurableAcknowledgementSurvivesSIGKILL(t *testing.T) {
+	state := t.TempDir()
+	s := startServe(t, state, "-commit-interval", "0")
+	b := baseMillis()
+	n := 40
+	var wg sync.WaitGroup
+	for c := range 4 { // concurrent waiters share commits
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := c; i < n; i += 4 {
+				path := "/v1/events?durable=true"
+				if i%2 == 1 {
+					path = "/v1/score?durable=true"
+				}
+				code, m, _ := s.do("POST", path, ev(b+int64(i), fmt.Sprintf("acct-%d", i), "d", 1, true))
+				if code != 200 {
+					t.Errorf("%d %v", code, m)
+				}
+			}
+		}()
+	}
+	wg.Wait()
+	code, m, _ := s.do("POST", "/v1/events?durable=maybe", ev(b+int64(n), "x", "d", 1, true))
+	require.Equal(t, 400, code, "%v", m)
+	require.Equal(t, -int(syscall.SIGKILL), s.stop(syscall.SIGKILL))
+
+	s2 := startServe(t, state)
+	code, st, _ := s2.do("GET", "/v1/status", "")
+	require.Equal(t, 200, code)
+	require.Equal(t, float64(n), st["committed_seq"])
+	for i := range n {
+		code, m, _ := s2.do("GET", fmt.Sprintf("/v1/entities/account/acct-%d", i), "")
+		require.Equal(t, 200, code)
+		require.Equal(t, 1.0, m["features"].(map[string]any)["events_1h"], "acct-%d", i)
+	}
+	commits, secs := 0, 0.0
+	for _, l := range s.logs() {
+		if l["msg"] == "commit" && l["why"] == "durable request" {
+			commits++
+			secs += l["seconds"].(float64)
+		}
+	}
+	require.Positive(t, commits)
+	require.LessOrEqual(t, commits, n)
+	t.Logf("%d durable requests, %d commits taking %.3f s in all", n, commits, secs)
+	require.Equal(t, 0, s2.stop(syscall.SIGTERM))
+}

@@ -9,6 +9,7 @@ import (
 	"math"
 	"net/http"
 	"strconv"
+	"strings"
 	"sync"
 	"time"
 
@@ -162,6 +163,13 @@ func (s *Server[E]) refusal(err error, batch bool, n int) *apiError {
 func (s *Server[E]) handleIngest(score bool) func(http.ResponseWriter, *http.Request) *apiError {
 	pool := sync.Pool{New: func() any { return new(scratch[E]) }}
 	return func(w http.ResponseWriter, r *http.Request) *apiError {
+		durable := false
+		for k, v := range r.URL.Query() {
+			if k != "durable" || len(v) != 1 || (v[0] != "true" && v[0] != "false") {
+				return &apiError{code: http.StatusBadRequest, msg: "unknown query parameter or value: " + k + "=" + strings.Join(v, ","), field: k, index: -1}
+			}
+			durable = v[0] == "true"
+		}
 		sc := pool.Get().(*scratch[E])
 		defer func() {
 			clear(sc.events)
@@ -183,6 +191,13 @@ func (s *Server[E]) handleIngest(score bool) func(http.ResponseWriter, *http.Req
 		sc.vals = vals
 		if err != nil {
 			return s.refusal(err, batch, len(evs))
+		}
+		if durable {
+			if err := s.waitCommitted(r.Context(), first+uint64(len(evs))); err != nil {
+				// Applied but not known durable: the client must treat
+				// the events as unacknowledged.
+				return &apiError{code: http.StatusServiceUnavailable, msg: "applied, but no commit covered it before the request ended: " + err.Error(), index: -1}
+			}
 		}
 		out := sc.out[:0]
 		switch {
@@ -308,8 +323,7 @@ func (s *Server[E]) handleErase(w http.ResponseWriter, r *http.Request) *apiErro
 		}
 		return s.storageFailure(err)
 	}
-	s.committed.Store(s.live.ResumeSeq())
-	s.log.Info("commit", "why", "erase", "committed_seq", s.committed.Load())
+	s.log.Info("commit", "why", "erase", "committed_seq", s.noteCommitted())
 	writeJSON(w, http.StatusOK, []byte(`{"erased":true}`+"\n"))
 	return nil
 }

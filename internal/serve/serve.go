@@ -5,6 +5,7 @@
 //
 //	POST   /v1/events                   apply one event (a JSON object) or a batch (an array)
 //	POST   /v1/score                    apply and return the features, Eager
+//	       ...?durable=true             answer once a commit covers the events
 //	GET    /v1/entities/{entity}/{key}  an entity key's features as of now, or ?at=
 //	DELETE /v1/entities/{entity}/{key}  erase the key (durable on return)
 //	POST   /v1/commit                   commit now
@@ -28,7 +29,10 @@
 // sent since the last commit and sends again every event numbered at or
 // above committed_seq after a restart gets each event applied at least
 // once (exactly once when it resends them in order and nothing else
-// arrives first).
+// arrives first). A client that cannot keep them asks for ?durable=true:
+// the answer then waits for a commit that covers its events (requests
+// waiting together share one commit), so an acknowledged event survives
+// a crash too.
 //
 // # Safety
 //
@@ -201,6 +205,11 @@ type Server[E any] struct {
 
 	commitMu  sync.Mutex // one commit at a time, so their log lines are ordered
 	committed atomic.Uint64
+	// durable: requests waiting for a commit. commitNow nudges the
+	// committer; committedCh is closed (and replaced) after each commit.
+	commitNow   chan struct{}
+	waitMu      sync.Mutex
+	committedCh chan struct{}
 
 	reg      *prometheus.Registry
 	requests *prometheus.CounterVec
@@ -221,7 +230,8 @@ func New[E any](live *tallyward.Live[E], codec Codec[E], opts Options) (*Server[
 		return nil, err
 	}
 	s := &Server[E]{live: live, codec: codec, opts: opts, log: opts.Logger,
-		admit: make(chan struct{}, opts.QueueDepth), fail: make(chan struct{}), ents: map[string]entityInfo{}}
+		admit: make(chan struct{}, opts.QueueDepth), fail: make(chan struct{}), ents: map[string]entityInfo{},
+		commitNow: make(chan struct{}, 1), committedCh: make(chan struct{})}
 	for _, n := range live.Names() {
 		s.quoted = append(s.quoted, strconv.AppendQuote(nil, n))
 	}
@@ -438,9 +448,46 @@ func (s *Server[E]) Commit(ctx context.Context, why string) error {
 		}
 		return err
 	}
-	seq := s.live.ResumeSeq()
-	s.committed.Store(seq)
+	seq := s.noteCommitted()
 	s.log.Info("commit", "why", why, "committed_seq", seq, "events", seq-before, "seconds", time.Since(began).Seconds())
+	return nil
+}
+
+// noteCommitted records the position of the last commit and wakes the
+// requests waiting for one.
+func (s *Server[E]) noteCommitted() uint64 {
+	seq := s.live.ResumeSeq()
+	for old := s.committed.Load(); old < seq && !s.committed.CompareAndSwap(old, seq); old = s.committed.Load() {
+	}
+	s.waitMu.Lock()
+	close(s.committedCh)
+	s.committedCh = make(chan struct{})
+	s.waitMu.Unlock()
+	return seq
+}
+
+// waitCommitted waits until a commit covers every event numbered below
+// end, asking the committer for one.
+func (s *Server[E]) waitCommitted(ctx context.Context, end uint64) error {
+	for s.committed.Load() < end {
+		s.waitMu.Lock()
+		ch := s.committedCh
+		s.waitMu.Unlock()
+		if s.committed.Load() >= end {
+			return nil
+		}
+		select {
+		case s.commitNow <- struct{}{}:
+		default: // a nudge is already pending
+		}
+		select {
+		case <-ch:
+		case <-s.fail:
+			return *s.failed.Load()
+		case <-ctx.Done():
+			return ctx.Err()
+		}
+	}
 	return nil
 }
 
@@ -471,21 +518,24 @@ func (s *Server[E]) Run(ctx context.Context, ln net.Listener) error {
 	stopCommitter := make(chan struct{})
 	go func() {
 		defer close(committerDone)
-		if s.opts.CommitInterval < 0 {
-			<-stopCommitter
-			return
+		var tick <-chan time.Time
+		if s.opts.CommitInterval > 0 {
+			t := time.NewTicker(s.opts.CommitInterval)
+			defer t.Stop()
+			tick = t.C
 		}
-		t := time.NewTicker(s.opts.CommitInterval)
-		defer t.Stop()
 		for {
+			why := "period"
 			select {
 			case <-stopCommitter:
 				return
-			case <-t.C:
-				if s.live.Stats().NextSeq != s.committed.Load() {
-					if s.Commit(context.Background(), "period") != nil {
-						return
-					}
+			case <-tick:
+			case <-s.commitNow:
+				why = "durable request"
+			}
+			if s.live.Stats().NextSeq != s.committed.Load() {
+				if s.Commit(context.Background(), why) != nil {
+					return
 				}
 			}
 		}
