@@ -102,10 +102,6 @@ func (in *inputs) clone() inputs {
 // Open validates spec and opts, opens the store and checks that the stored
 // feature definitions match spec. The source must restart at ResumeSeq().
 func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
-	so := store.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold}
-	if opts.Logger != nil {
-		so.Logger = store.SlogLogger(opts.Logger)
-	}
 	opts.EnsureDefaults()
 	// One nanosecond more than the allowed disorder keeps as-of answers
 	// exact for BeforeEvent features, which ask at the event's time − 1.
@@ -120,7 +116,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	st, err := store.Open(so)
+	st, err := openStore(opts)
 	if err != nil {
 		return nil, err
 	}
@@ -147,6 +143,10 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		st.Close()
 		return nil, err
 	}
+	if err := p.checkStored(); err != nil {
+		st.Close()
+		return nil, err
+	}
 	if err := p.checkDefinitions(); err != nil {
 		st.Close()
 		return nil, err
@@ -154,13 +154,17 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	for _, n := range p.notices {
 		opts.Logger.Warn(n)
 	}
-	if len(p.notices) > 0 {
-		// Make the reset durable before any event is processed.
-		if err := p.store.Commit(st.Mark()); err != nil {
+	if len(p.notices) > 0 && !opts.ReadOnly {
+		// Make the reset durable before any event is processed, with the
+		// progress it changed (records of dropped entities).
+		m := st.Mark()
+		m.Extra = p.progress().append(nil)
+		if err := p.store.Commit(m); err != nil {
 			st.Close()
 			return nil, err
 		}
 	}
+	p.notices = append(p.notices, st.Notices()...)
 	return p, nil
 }
 
@@ -276,7 +280,8 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 // autoCommit commits if Options.CommitEvery events came since the last
 // commit (and no batch is in progress).
 func (p *Pipeline[E]) autoCommit() error {
-	if p.err == nil && !p.inBatch && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
+	if p.err == nil && !p.inBatch && !p.opts.ReadOnly &&
+		(p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
 		return p.Commit(nil)
 	}
 	return nil
@@ -378,7 +383,7 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 			}
 			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
 			p.c.live++
-		} else if es.expired(sl.Value, p.expiryClock()) {
+		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			sl.Value.aggs = es.fresh()
 		}
 		rec := sl.Value
@@ -417,7 +422,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			aggs = recs[i].aggs
 		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		} else if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
+		} else if sl != nil && !es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			aggs = sl.Value.aggs
 		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
 			for j := range es.kinds {
@@ -486,6 +491,15 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
 
+// expiryClockAt is the expiry clock for an event at t. A Settled event
+// is applied and answered once the watermark has passed it, possibly far
+// past it after a quiet spell; judged by the current clock, its entity
+// could read as expired although nothing within reach of t had aged out.
+// Judging it at t at the latest keeps its answer as of its own time, and
+// agrees with every sweep: held events are never below the data watermark
+// a commit sweeps by. For Eager events t is at least the clock.
+func (p *Pipeline[E]) expiryClockAt(t int64) int64 { return min(p.expiryClock(), t) }
+
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below
 // the new watermark become late.
@@ -513,6 +527,9 @@ func (p *Pipeline[E]) Flush() error {
 func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if err := p.usable(); err != nil {
 		return err
+	}
+	if p.opts.ReadOnly {
+		return ErrReadOnly
 	}
 	began := p.opts.MetricsClock.Now()
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
@@ -554,7 +571,7 @@ func (p *Pipeline[E]) Close() error {
 		return nil
 	}
 	var err error
-	if p.err == nil {
+	if p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
 	p.closed = true

@@ -171,6 +171,9 @@ type Stats struct {
 	// bound.
 	CommitCounts [len(CommitBuckets) + 1]uint64
 	DiskBytes    uint64 // Pebble's estimate of the store's size
+	// RolledBack: Open found the store's newest log damaged and resumed
+	// from the last commit before the damage (Notices says where).
+	RolledBack bool
 }
 
 // CommitBuckets are the upper bounds of Stats.CommitCounts, from a synced
@@ -207,6 +210,7 @@ func (p *Pipeline[E]) Stats() Stats {
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
 		LastCommitDuration: time.Duration(p.lastCommitNanos), TotalCommitDuration: time.Duration(p.commitNanos),
 		CommitCounts: p.commitHist,
+		RolledBack: p.store.RolledBack(),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n

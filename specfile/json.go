@@ -240,7 +240,8 @@ func number(sc *jsonScanner) ([]byte, error) {
 		}
 		return n
 	}
-	if digits() == 0 {
+	intStart := sc.i
+	if n := digits(); n == 0 || n > 1 && b[intStart] == '0' {
 		return nil, syntaxErr("bad number at byte %d", start)
 	}
 	if sc.i < len(b) && b[sc.i] == '.' {

@@ -1,9 +1,9 @@
 package main
 
 import (
+	"errors"
 	"flag"
 	"fmt"
-	"math"
 	"time"
 
 	"github.com/tallyward/tallyward"
@@ -56,74 +56,36 @@ Example:
 	})
 }
 
-// inspect scores a probe event that names the key and updates nothing
-// (every feature's filter refuses it), on a copy of the state.
+// inspect reads the key's features with Pipeline.Peek, on a copy of the
+// state (closing a pipeline commits, and a commit may sweep expired
+// records).
 func inspect(e *env, f *specfile.File, dir, entity, key string, t int64) int {
-	spec := f.Spec
-	spec.Emit = nil
-	var keyField int = -1
-	spec.Entities = nil
-	for _, ent := range f.Spec.Entities {
-		feats := make([]tallyward.Feature[specfile.Event], len(ent.Features))
-		for i, ft := range ent.Features {
-			ft.Where = func(specfile.Event) bool { return false }
-			feats[i] = ft
-		}
-		ent.Features = feats
-		spec.Entities = append(spec.Entities, ent)
-	}
-	probe := f.Schema.NewEvent()
-	for _, ent := range f.Spec.Entities {
-		if ent.Name == entity {
-			// Find the key field by asking the key function which field
-			// it reads: set each string field to the key in turn.
-			for i := range f.Schema.Fields {
-				ev := f.Schema.NewEvent()
-				ev.Fields[i].Str = key
-				if ent.Key(ev) == key {
-					keyField = i
-					break
-				}
-			}
-		}
-	}
-	if keyField < 0 {
-		e.errorf("no entity %q in %s", entity, f.Name)
-		return exitUsage
-	}
-	probe.Fields[keyField].Str = key
-	opts := f.Options
-	opts.Dir = dir
-	opts.Mode = tallyward.Eager
-	opts.Lateness = tallyward.ApplyLate
-	opts.FutureSkew = math.MaxInt64
-	p, err := tallyward.Open(spec, opts)
-	if err != nil {
-		e.errorf("%v", err)
-		return exitFailure
+	p, code, ok := openPipeline(e, f, dir, f.Options)
+	if !ok {
+		return code
 	}
 	defer p.Close()
 	if t == 0 {
-		t = p.Stats().Newest
-		if t == 0 {
+		if t = p.Stats().Newest; t == 0 {
 			e.errorf("the state holds no events; give -at")
 			return exitUsage
 		}
 	}
-	probe.Time = t
-	vals, err := p.Score(probe, nil)
+	vals, err := p.Peek(entity, key, t, nil)
 	if err != nil {
 		e.errorf("%v", err)
+		if errors.Is(err, tallyward.ErrUnknownEntity) {
+			return exitUsage
+		}
 		return exitFailure
 	}
 	fmt.Fprintf(e.stdout, "%s %q as of %s\n", entity, key, specfile.FormatTime(t))
-	idx := 0 // rows hold every entity's features, in spec order
 	for _, ent := range f.Spec.Entities {
-		for _, ft := range ent.Features {
-			if ent.Name == entity {
-				fmt.Fprintf(e.stdout, "  %-28s %v\t%s\n", ft.Name, vals[idx], ft.Kind.Describe())
-			}
-			idx++
+		if ent.Name != entity {
+			continue
+		}
+		for i, ft := range ent.Features {
+			fmt.Fprintf(e.stdout, "  %-28s %v\t%s\n", ft.Name, vals[i], ft.Kind.Describe())
 		}
 	}
 	return exitOK

@@ -48,8 +48,8 @@ func TestMain(m *testing.M) {
 	os.Exit(code)
 }
 
-// binary builds the command once per test run.
-func binary(t *testing.T) string {
+// builtBinary builds the command once per test run.
+func builtBinary(t *testing.T) string {
 	t.Helper()
 	buildOnce.Do(func() {
 		dir, err := os.MkdirTemp("", "tallyward-bin-")
@@ -85,7 +85,7 @@ type server struct {
 func startServe(t *testing.T, state string, extra ...string) *server {
 	t.Helper()
 	args := append([]string{"serve", "-spec", serveSpec, "-state", state, "-addr", "127.0.0.1:0"}, extra...)
-	cmd := exec.Command(binary(t), args...)
+	cmd := exec.Command(builtBinary(t), args...)
 	cmd.Env = append(os.Environ(), "TALLYWARD_TOKEN=")
 	stderr, err := cmd.StderrPipe()
 	require.NoError(t, err)
@@ -353,7 +353,7 @@ func TestServeRefusesBadRequests(t *testing.T) {
 // Off loopback a token is required before anything is bound; with a
 // token, every endpoint but health and readiness needs it.
 func TestServeToken(t *testing.T) {
-	cmd := exec.Command(binary(t), "serve", "-spec", serveSpec, "-state", t.TempDir(), "-addr", "0.0.0.0:0")
+	cmd := exec.Command(builtBinary(t), "serve", "-spec", serveSpec, "-state", t.TempDir(), "-addr", "0.0.0.0:0")
 	cmd.Env = append(os.Environ(), "TALLYWARD_TOKEN=")
 	out, err := cmd.CombinedOutput()
 	require.Error(t, err)

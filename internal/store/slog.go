@@ -8,11 +8,10 @@ import (
 	"github.com/cockroachdb/pebble/v2"
 )
 
-// SlogLogger returns a pebble.Logger that sends Pebble's informational and
-// error messages to l (with the attribute component=pebble). Fatalf is
-// logged and then handled like the default logger's: it panics with the
-// error the Store turns into a sticky ErrFailed, rather than exiting the
-// process.
+// SlogLogger returns a pebble.Logger that sends Pebble's messages to l
+// (with the attribute component=pebble), for Options.Logger. The store
+// handles fatal messages itself and passes them on as errors; a Fatalf
+// called directly is logged as an error too.
 func SlogLogger(l *slog.Logger) pebble.Logger {
 	return slogLogger{l: l.With("component", "pebble")}
 }
@@ -29,5 +28,4 @@ func (s slogLogger) Errorf(format string, args ...any) {
 
 func (s slogLogger) Fatalf(format string, args ...any) {
 	s.l.Log(context.Background(), slog.LevelError, "fatal: "+fmt.Sprintf(format, args...))
-	quietLogger{}.Fatalf(format, args...)
 }
