@@ -210,7 +210,7 @@ func (p *Pipeline[E]) Stats() Stats {
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
 		LastCommitDuration: time.Duration(p.lastCommitNanos), TotalCommitDuration: time.Duration(p.commitNanos),
 		CommitCounts: p.commitHist,
-		RolledBack: p.store.RolledBack(),
+		RolledBack:   p.store.RolledBack(),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n
