@@ -220,6 +220,11 @@ func run(dur time.Duration, clients, batch int, specPath, bin string, queue int)
 	fmt.Printf("of which at most: Go heap in use %.0f MiB, entity records cached %.0f MiB (bounded by the cache size, 256 MiB by default);\n",
 		mem.heapMax/(1<<20), mem.stateMax/(1<<20))
 	fmt.Printf("requests in flight are bounded by -queue × -max-body = %d × 1 MiB\n", queue)
+	fmt.Print("resident memory every 5 s (MiB):")
+	for _, v := range mem.series {
+		fmt.Printf(" %.0f", v/(1<<20))
+	}
+	fmt.Println()
 	for _, r := range results {
 		if r.errors > 0 {
 			return fmt.Errorf("%s: %d errors, the first: %s", r.name, r.errors, r.firstErr)
@@ -365,6 +370,7 @@ type memWatch struct {
 	stateMax         float64 // the pipeline's record cache at most
 	heapMax          float64 // Go heap in use at most
 	samples          int
+	series           []float64 // resident memory, one sample in five
 }
 
 func (m *memWatch) watch(hc *http.Client, base string) (stop func()) {
@@ -390,6 +396,9 @@ func (m *memWatch) watch(hc *http.Client, base string) (stop func()) {
 					f, _ := strconv.ParseFloat(v, 64)
 					if m.samples == 0 {
 						m.first = f
+					}
+					if m.samples%5 == 0 {
+						m.series = append(m.series, f)
 					}
 					m.samples++
 					m.max, m.last = max(m.max, f), f
