@@ -131,15 +131,15 @@ func (s *Server[E]) refusal(err error, batch bool, n int) *apiError {
 	switch {
 	case errors.As(be.Err, &re):
 		reason = re.Reason.String()
-		switch re.Reason {
-		case tallyward.ZeroTime:
+		switch {
+		case re.Reason == tallyward.ZeroTime:
 			e.field, e.msg = s.codec.TimeField(), "event time is zero"
-		case tallyward.FutureTime:
+		case re.Reason == tallyward.FutureTime:
 			e.field, e.msg = s.codec.TimeField(), fmt.Sprintf("event time %d is too far ahead of the newest event time or of the server clock", re.Time)
-		case tallyward.BadValue:
-			e.field, e.msg = re.Feature, "the value is NaN or infinite"
-		default:
-			e.msg = re.Error()
+		case re.Feature != "":
+			e.field, e.msg = re.Feature, "the value for this feature is refused: "+re.Reason.String()
+		default: // any other reason is about the event's time
+			e.field, e.msg = s.codec.TimeField(), re.Error()
 		}
 	case errors.As(be.Err, &le):
 		reason = "late"
