@@ -127,8 +127,10 @@ func TestCountersMatchEventsSent(t *testing.T) {
 	require.InDelta(t, hits/(hits+misses), value(m["tallyward_cache_hit_ratio"][0]), 1e-12)
 }
 
-// Names and help texts pass Prometheus's own linter (base units, _total
-// on counters, no reserved suffixes on gauges).
+// Names and help texts pass Prometheus's own linter (client_golang's
+// testutil/promlint), which checks the published naming conventions
+// (prometheus.io, "Metric and label naming": base units, _total on
+// counters, no reserved suffixes on gauges).
 func TestMetricNamesPassPromlint(t *testing.T) {
 	live := open(t, tallyward.Options{})
 	require.NoError(t, live.Submit(context.Background(), payment{T: t0, Card: "c", Amount: 1}))
