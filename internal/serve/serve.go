@@ -208,6 +208,7 @@ type Server[E any] struct {
 	// durable: requests waiting for a commit. commitNow nudges the
 	// committer; committedCh is closed (and replaced) after each commit.
 	commitNow   chan struct{}
+	committing  atomic.Bool // Run's committer is there to answer commitNow
 	waitMu      sync.Mutex
 	committedCh chan struct{}
 
@@ -476,6 +477,12 @@ func (s *Server[E]) waitCommitted(ctx context.Context, end uint64) error {
 		if s.committed.Load() >= end {
 			return nil
 		}
+		if !s.committing.Load() { // served through Handler alone
+			if err := s.Commit(ctx, "durable request"); err != nil {
+				return err
+			}
+			continue
+		}
 		select {
 		case s.commitNow <- struct{}{}:
 		default: // a nudge is already pending
@@ -516,8 +523,10 @@ func (s *Server[E]) Run(ctx context.Context, ln net.Listener) error {
 	}()
 	committerDone := make(chan struct{})
 	stopCommitter := make(chan struct{})
+	s.committing.Store(true)
 	go func() {
 		defer close(committerDone)
+		defer s.committing.Store(false)
 		var tick <-chan time.Time
 		if s.opts.CommitInterval > 0 {
 			t := time.NewTicker(s.opts.CommitInterval)

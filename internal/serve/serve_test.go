@@ -252,3 +252,15 @@ func (l lockedWriter) Write(b []byte) (int, error) {
 func newSyncLogger(w io.Writer, mu *sync.Mutex) *slog.Logger {
 	return slog.New(slog.NewJSONHandler(lockedWriter{mu: mu, w: w}, nil))
 }
+
+// ?durable=true through the handler alone (no Run, so no committer):
+// the request commits itself before answering.
+func TestDurableWithoutRun(t *testing.T) {
+	s, live := newTestServer(t, Options{})
+	code, out := post(t, s.Handler(), "/v1/events?durable=true", `{"t":1800000000000000000,"account":"a"}`)
+	require.Equal(t, 200, code, out)
+	require.Equal(t, uint64(1), live.ResumeSeq())
+	code, out = post(t, s.Handler(), "/v1/events?durable=1", `{"t":1800000000000000000,"account":"a"}`)
+	require.Equal(t, 400, code, out)
+	require.Contains(t, out, `"field":"durable"`)
+}
