@@ -2,6 +2,7 @@ package tallyward_test
 
 import (
 	"math"
+	"slices"
 	"testing"
 	"time"
 
@@ -194,6 +195,25 @@ func TestBuiltinKindsPassHarness(t *testing.T) {
 					best = max(best, counts[e.Item])
 				}
 				return float64(best) / float64(len(past))
+			},
+		}},
+		{"Quantile", kindtest.Config{
+			// A relative-error quantile summary answers within α of the
+			// exact value of its rank (Masson, Rim and Lee, "DDSketch",
+			// VLDB 2019); the rank is ⌊q·(n−1)⌋ of the sorted values, the
+			// convention package sketch states.
+			Kind:      tallyward.Quantile{Q: 0.9, RelativeAccuracy: 0.01},
+			Tolerance: 0.01,
+			Reference: func(past []kindtest.Event, _ int64, _ kindtest.Event) float64 {
+				if len(past) == 0 {
+					return math.NaN()
+				}
+				vs := make([]float64, len(past))
+				for i, e := range past {
+					vs[i] = e.Value
+				}
+				slices.Sort(vs)
+				return vs[int(0.9*float64(len(vs)-1))]
 			},
 		}},
 	}

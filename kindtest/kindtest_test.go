@@ -26,6 +26,8 @@ const (
 	trailingOK          // the decoder accepts trailing bytes
 	refusesLate         // Add refuses events older than the newest
 	encodeEffect        // encoding has a side effect on answers (commit timing leaks in)
+	shortReach          // claims a reach of 1 s but counts all history
+	anyVersion          // the decoder ignores the version byte
 )
 
 // encodes counts AppendBinary calls of encodeEffect aggregates: commits
@@ -36,10 +38,15 @@ var encodes int
 // rawCount counts events at or before t, keeping every event time.
 type rawCount struct{ bug defect }
 
-func (k rawCount) Describe() string                               { return fmt.Sprintf("test-raw-count bug=%d", k.bug) }
-func (rawCount) Validate() error                                  { return nil }
-func (rawCount) Inputs() tallyward.Inputs                         { return 0 }
-func (rawCount) Reach() time.Duration                             { return 0 }
+func (k rawCount) Describe() string       { return fmt.Sprintf("test-raw-count bug=%d", k.bug) }
+func (rawCount) Validate() error          { return nil }
+func (rawCount) Inputs() tallyward.Inputs { return 0 }
+func (k rawCount) Reach() time.Duration {
+	if k.bug == shortReach {
+		return time.Second
+	}
+	return 0
+}
 func (k rawCount) NewAggregate(time.Duration) tallyward.Aggregate { return &rawAgg{bug: k.bug} }
 
 type rawAgg struct {
@@ -95,7 +102,7 @@ func (a *rawAgg) AppendBinary(dst []byte) ([]byte, error) {
 var errBad = errors.New("bad raw count encoding")
 
 func (a *rawAgg) UnmarshalBinary(b []byte) error {
-	if len(b) == 0 || b[0] != 1 {
+	if len(b) == 0 || b[0] != 1 && a.bug != anyVersion {
 		return errBad
 	}
 	b = b[1:]
@@ -164,6 +171,8 @@ func TestHarnessCatchesDefects(t *testing.T) {
 		{trailingOK, []string{"encoding"}, "trailing"},
 		{refusesLate, []string{"asof", "encoding"}, "refused"},
 		{encodeEffect, []string{"asof", "shuffle"}, "arrival order"},
+		{shortReach, []string{"asof"}, ""},
+		{anyVersion, []string{"encoding"}, "unknown version"},
 	}
 	for _, c := range cases {
 		for _, name := range c.must {

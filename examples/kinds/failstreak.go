@@ -48,6 +48,11 @@ import (
 // state; an entity idle that long then reads as new, with no streak).
 type FailStreak struct{}
 
+var (
+	_ tallyward.Kind      = FailStreak{}
+	_ tallyward.Aggregate = (*FailStreakState)(nil)
+)
+
 // Describe implements tallyward.Kind. The kind has no parameters; the
 // name is its identity in stored state.
 func (FailStreak) Describe() string { return "example.fail-streak" }
@@ -70,8 +75,8 @@ func (FailStreak) NewAggregate(horizon time.Duration) tallyward.Aggregate {
 //
 // Invariants: tail is sorted by time (events at one time in the order
 // added); if any event was added, the newest is the last of tail; every
-// tail event is newer than newest − horizon and than folded.upTo; the
-// folded events are all at or before folded.upTo.
+// tail event is newer than folded.upTo, the newest folded time. Events
+// leave the tail when a newer event moves newest − horizon past them.
 type FailStreakState struct {
 	horizon int64
 	has     bool

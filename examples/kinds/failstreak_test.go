@@ -167,3 +167,32 @@ func FuzzFailStreakDecode(f *testing.F) {
 		a.Add(a.newest+1, 1, 0)
 	})
 }
+
+// Beyond the horizon an event is refused rather than folded out of order,
+// and nothing changes.
+func TestFailStreakRefusesTooOld(t *testing.T) {
+	a := FailStreak{}.NewAggregate(5 * time.Second)
+	base := int64(1_700_000_000) * sec
+	for _, tt := range []int64{0, 10, 11} {
+		if !a.Add(base+tt*sec, 1, 0) {
+			t.Fatalf("refused the event at %d s", tt)
+		}
+	}
+	before, _ := a.AppendBinary(nil)
+	if a.Add(base+6*sec, 0, 0) {
+		t.Fatal("accepted a success 5 s behind the newest with a 5 s horizon")
+	}
+	after, _ := a.AppendBinary(nil)
+	if !bytes.Equal(before, after) {
+		t.Fatal("a refused event changed the state")
+	}
+	if got := a.At(base+11*sec, 0); got != 3 {
+		t.Fatalf("streak %v, want 3", got)
+	}
+	if !a.Add(base+7*sec, 0, 0) {
+		t.Fatal("refused a success 4 s behind the newest")
+	}
+	if got := a.At(base+11*sec, 0); got != 2 {
+		t.Fatalf("streak after a success at 7 s: %v, want 2 (10 s and 11 s)", got)
+	}
+}
