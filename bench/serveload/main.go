@@ -212,6 +212,10 @@ func run(dur time.Duration, clients, batch int, specPath, bin string, queue int)
 		r.print()
 		results = append(results, r)
 	}
+	st := live.Stats()
+	var ms runtime.MemStats
+	runtime.GC()
+	runtime.ReadMemStats(&ms)
 	if err := live.Close(); err != nil {
 		return err
 	}
@@ -219,7 +223,10 @@ func run(dur time.Duration, clients, batch int, specPath, bin string, queue int)
 		mem.first/(1<<20), mem.max/(1<<20), mem.last/(1<<20), mem.samples)
 	fmt.Printf("of which at most: Go heap in use %.0f MiB, entity records cached %.0f MiB (bounded by the cache size, 256 MiB by default);\n",
 		mem.heapMax/(1<<20), mem.stateMax/(1<<20))
-	fmt.Printf("requests in flight are bounded by -queue × -max-body = %d × 1 MiB\n", queue)
+	fmt.Printf("requests admitted at once: at most %.0f sampled (bound: -queue %d; memory for them: -queue × -max-body = %d MiB)\n",
+		mem.admittedMax, queue, queue)
+	fmt.Printf("in-process baseline after its phases: %d entities, records cached %.0f MiB, Go heap in use %.0f MiB after a GC\n",
+		st.LiveEntities, float64(st.CachedBytes)/(1<<20), float64(ms.HeapInuse)/(1<<20))
 	fmt.Print("resident memory every 5 s (MiB):")
 	for _, v := range mem.series {
 		fmt.Printf(" %.0f", v/(1<<20))
@@ -369,6 +376,7 @@ type memWatch struct {
 	first, max, last float64
 	stateMax         float64 // the pipeline's record cache at most
 	heapMax          float64 // Go heap in use at most
+	admittedMax      float64 // requests admitted at once, at most
 	samples          int
 	series           []float64 // resident memory, one sample in five
 }
@@ -406,6 +414,10 @@ func (m *memWatch) watch(hc *http.Client, base string) (stop func()) {
 				if v, ok := strings.CutPrefix(sc.Text(), "tallyward_state_memory_bytes "); ok {
 					f, _ := strconv.ParseFloat(v, 64)
 					m.stateMax = max(m.stateMax, f)
+				}
+				if v, ok := strings.CutPrefix(sc.Text(), "tallyward_http_admitted_requests "); ok {
+					f, _ := strconv.ParseFloat(v, 64)
+					m.admittedMax = max(m.admittedMax, f)
 				}
 				if v, ok := strings.CutPrefix(sc.Text(), "go_memstats_heap_inuse_bytes "); ok {
 					f, _ := strconv.ParseFloat(v, 64)
