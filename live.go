@@ -323,6 +323,26 @@ func (l *Live[E]) Erase(ctx context.Context, entity, key string) error {
 	return l.p.Erase(entity, key)
 }
 
+// LiftErasure lifts an erasure; see Pipeline.LiftErasure. It runs between
+// two submissions.
+func (l *Live[E]) LiftErasure(ctx context.Context, entity, key string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.LiftErasure(entity, key)
+}
+
+// Snapshot writes a consistent copy of the state to dir; see
+// Pipeline.Snapshot. Submissions wait while it runs.
+func (l *Live[E]) Snapshot(ctx context.Context, dir string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Snapshot(dir)
+}
+
 // Entities returns the entity names and, for each, its features' names
 // (without the entity prefix), in row order.
 func (l *Live[E]) Entities() (names []string, features [][]string) {
