@@ -161,7 +161,7 @@ func TestLiveMaintenanceDuringSubmissions(t *testing.T) {
 	require.NoError(t, err)
 	require.Equal(t, 2000.0, vals[1], "addr.all_1m saw every event")
 
-	q, err := Open(loginSpec(nil), Options{Dir: dir + "/snap", MaxDisorder: time.Hour})
+	q, err := Open(loginSpec(nil), Options{Dir: dir + "/snap", MaxDisorder: time.Hour, ItemKey: testItemKey})
 	require.NoError(t, err)
 	defer q.Close()
 	n := q.ResumeSeq()
