@@ -6,6 +6,7 @@ import (
 	"slices"
 
 	"github.com/google/btree"
+	"github.com/tallyward/tallyward/internal/attach"
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/store"
 )
@@ -116,6 +117,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		return nil, err
 	}
 	p := &Pipeline[E]{opts: opts, spec: spec, store: st, wm: math.MinInt64, held: btree.NewG(16, heldLess[E])}
+	attach.Register(p, st)
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
@@ -135,16 +137,19 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	p.vals = make([]float64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
 	if err := p.restore(st.Mark()); err != nil {
+		attach.Unregister(p)
 		st.Close()
 		return nil, err
 	}
 	if err := p.checkDefinitions(); err != nil {
+		attach.Unregister(p)
 		st.Close()
 		return nil, err
 	}
 	if len(p.notices) > 0 {
 		// Make the reset durable before any event is processed.
 		if err := p.store.Commit(st.Mark()); err != nil {
+			attach.Unregister(p)
 			st.Close()
 			return nil, err
 		}
@@ -448,6 +453,9 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		}
 		clear(p.batch)
 	}
+	if p.err == nil && p.spec.OnWatermark != nil {
+		p.spec.OnWatermark(p.wm)
+	}
 }
 
 // expiryClock is the time records expire by: the watermark as the data
@@ -529,6 +537,7 @@ func (p *Pipeline[E]) Close() error {
 		err = p.Commit(nil)
 	}
 	p.closed = true
+	attach.Unregister(p)
 	return errors.Join(err, p.store.Close())
 }
 
