@@ -97,6 +97,13 @@ func (j *JSONLines) Write(r *TrainingRow) error {
 	b = appendObject(append(b, `,"labels":`...), j.labels, r.Labels)
 	b = append(b, "}\n"...)
 	j.buf = b
+	// Only whole lines reach the file, so a process killed between two
+	// flushes never leaves half a line behind.
+	if j.w.Available() < len(b) && j.w.Buffered() > 0 {
+		if err := j.w.Flush(); err != nil {
+			return err
+		}
+	}
 	_, err := j.w.Write(b)
 	return err
 }
