@@ -143,7 +143,7 @@ func renderAttached(a Attached[act]) (string, string) {
 // funcSink adapts a function to RowSink.
 type funcSink func(r *TrainingRow) error
 
-func (funcSink) Begin(_, _ []string) error      { return nil }
+func (funcSink) Begin(_, _ []string) error    { return nil }
 func (f funcSink) Write(r *TrainingRow) error { return f(r) }
 func (funcSink) Flush() error                 { return nil }
 

@@ -137,7 +137,7 @@ type ivEvent[E any] struct {
 	release int64
 	enc     []byte
 	ev      E
-	vals    []float64  // left only
+	vals    []float64     // left only
 	rights  []*ivEvent[E] // left only, Settled: rights found so far
 }
 

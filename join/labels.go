@@ -150,8 +150,8 @@ type heldEvent struct {
 	t, due int64
 	vals   []float64
 	labels []float64
-	set    uint64    // bit i: labels[i] was set by an outcome
-	at     []int64   // time of the outcome that set labels[i]
+	set    uint64  // bit i: labels[i] was set by an outcome
+	at     []int64 // time of the outcome that set labels[i]
 }
 
 func (h *heldEvent) size() int { return 96 + len(h.id) + 8*len(h.vals) + 16*len(h.labels) }
