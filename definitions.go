@@ -22,7 +22,7 @@ func ttlFor[E any](features []Feature[E], opts Options) int64 {
 	}
 	var longest int64
 	for _, f := range features {
-		r := f.Kind.reach()
+		r := reachNanos(f.Kind)
 		if r == 0 {
 			return 0
 		}
@@ -210,11 +210,7 @@ type rawRecord struct {
 }
 
 func (r rawRecord) append(dst []byte) []byte {
-	rec := record{last: r.last}
-	for _, b := range r.blobs {
-		rec.aggs = append(rec.aggs, rawAgg(b))
-	}
-	dst, _ = rec.AppendBinary(dst)
+	dst, _ = appendRecord(dst, r.last, len(r.blobs), func(i int, dst []byte) ([]byte, error) { return append(dst, r.blobs[i]...), nil })
 	return dst
 }
 
@@ -234,15 +230,6 @@ func splitRecord(b []byte) (last int64, blobs [][]byte, err error) {
 	}
 	return last, blobs, nil
 }
-
-// rawAgg is an already-encoded feature, re-emitted verbatim.
-type rawAgg []byte
-
-func (r rawAgg) add(int64, float64, uint64) bool         { return false }
-func (r rawAgg) at(int64, uint64) float64                { return 0 }
-func (r rawAgg) AppendBinary(dst []byte) ([]byte, error) { return append(dst, r...), nil }
-func (r rawAgg) UnmarshalBinary([]byte) error            { return errors.New("raw") }
-func (r rawAgg) SizeBytes() int                          { return len(r) }
 
 func newDropTable[E any](p *Pipeline[E], ent string) *store.Table[*record] {
 	return store.NewTable(p.store, ent, 0, func([]byte) (*record, error) {

@@ -39,11 +39,21 @@
 //
 // [Pipeline.Commit] writes changed state, the source position and the
 // watermark in one synced batch (automatically every Options.CommitEvery
-// events). After a crash, [Open] reports in [Pipeline.Resume] where the
+// events). After a crash, [Open] reports in [Pipeline.ResumeSeq] where the
 // source must restart; re-feeding from there reproduces the uninterrupted
 // run. Rows emitted after the last commit are emitted again (at-least-once;
 // Row.Seq identifies them), so a sink should make rows durable before the
 // commit that covers their events.
+//
+// # Kinds of your own
+//
+// Every built-in kind is an implementation of the public [Kind] and
+// [Aggregate] interfaces; a kind of your own goes through the same seam
+// and is stored, expired, replayed and erased like the built-ins. Its
+// Describe text and its versioned encoding are its identity in stored
+// state: see [Kind] for the contract. Package kindtest checks a kind
+// against a brute-force reference with the invariant tests the built-ins
+// pass; examples/kinds holds one worked kind.
 //
 // # What it is not
 //

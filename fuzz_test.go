@@ -11,23 +11,23 @@ import (
 
 // richRecord builds a record of every kind of richSpec's account entity
 // after a few events, for fuzz seeds.
-func richRecord(t testing.TB) (*record, func() []aggregate) {
+func richRecord(t testing.TB) (*record, func() []Aggregate) {
 	spec := richSpec(nil)
 	var kinds []Kind
 	for _, f := range spec.Entities[1].Features {
 		kinds = append(kinds, f.Kind)
 	}
-	fresh := func() []aggregate {
-		out := make([]aggregate, len(kinds))
+	fresh := func() []Aggregate {
+		out := make([]Aggregate, len(kinds))
 		for i, k := range kinds {
-			out[i] = k.newAggregate(int64(time.Second))
+			out[i] = k.NewAggregate(time.Second)
 		}
 		return out
 	}
 	r := &record{aggs: fresh()}
 	for i, e := range genLogins(5, 40, 3, 3, 0) {
 		for _, a := range r.aggs {
-			a.add(e.T, e.Amount, uint64(i%3))
+			a.Add(e.T, e.Amount, uint64(i%3))
 		}
 		r.last = e.T
 	}

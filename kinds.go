@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"fmt"
 	"time"
 
@@ -23,7 +24,7 @@ type Sliding struct {
 }
 
 func (k Sliding) spec(horizon int64) window.SlidingSpec {
-	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)), Horizon: horizon}
+	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(cmp.Or(k.Resolution, k.Window/60)), Horizon: horizon}
 }
 
 func (k Sliding) describe(name string) string {
@@ -33,11 +34,11 @@ func (k Sliding) describe(name string) string {
 
 func (k Sliding) validate() error { return k.spec(0).Validate() }
 
-func (k SlidingCount) reach() int64 { return int64(k.Window) }
-func (k SlidingSum) reach() int64   { return int64(k.Window) }
-func (k SlidingMin) reach() int64   { return int64(k.Window) }
-func (k SlidingMax) reach() int64   { return int64(k.Window) }
-func (k SlidingMean) reach() int64  { return int64(k.Window) }
+func (k SlidingCount) Reach() time.Duration { return k.Window }
+func (k SlidingSum) Reach() time.Duration   { return k.Window }
+func (k SlidingMin) Reach() time.Duration   { return k.Window }
+func (k SlidingMax) Reach() time.Duration   { return k.Window }
+func (k SlidingMean) Reach() time.Duration  { return k.Window }
 
 // SlidingCount counts an entity's events in a sliding window.
 type SlidingCount Sliding
@@ -66,66 +67,72 @@ func (k SlidingMin) Validate() error   { return Sliding(k).validate() }
 func (k SlidingMax) Validate() error   { return Sliding(k).validate() }
 func (k SlidingMean) Validate() error  { return Sliding(k).validate() }
 
-func (SlidingCount) input() inputKind { return inputNone }
-func (SlidingSum) input() inputKind   { return inputValue }
-func (SlidingMin) input() inputKind   { return inputValue }
-func (SlidingMax) input() inputKind   { return inputValue }
-func (SlidingMean) input() inputKind  { return inputValue }
+func (SlidingCount) Inputs() Inputs { return 0 }
+func (SlidingSum) Inputs() Inputs   { return TakesValue }
+func (SlidingMin) Inputs() Inputs   { return TakesValue }
+func (SlidingMax) Inputs() Inputs   { return TakesValue }
+func (SlidingMean) Inputs() Inputs  { return TakesValue }
 
 // The adapters below embed each window aggregate and map the pipeline's
 // add/at onto it: one small type per kind rather than closures, so a new
 // entity costs fewer allocations and an event fewer indirect calls.
 
-func (k SlidingCount) newAggregate(h int64) aggregate {
-	return countAgg{window.NewSlidingCount(Sliding(k).spec(h))}
+func (k SlidingCount) NewAggregate(horizon time.Duration) Aggregate {
+	return countAgg{window.NewSlidingCount(Sliding(k).spec(int64(horizon)))}
 }
 
-func (k SlidingSum) newAggregate(h int64) aggregate {
-	return sumAgg{window.NewSlidingSum(Sliding(k).spec(h))}
+func (k SlidingSum) NewAggregate(horizon time.Duration) Aggregate {
+	return sumAgg{window.NewSlidingSum(Sliding(k).spec(int64(horizon)))}
 }
 
-func (k SlidingMin) newAggregate(h int64) aggregate {
-	return minAgg{window.NewSlidingMin(Sliding(k).spec(h))}
+func (k SlidingMin) NewAggregate(horizon time.Duration) Aggregate {
+	return minAgg{window.NewSlidingMin(Sliding(k).spec(int64(horizon)))}
 }
 
-func (k SlidingMax) newAggregate(h int64) aggregate {
-	return maxAgg{window.NewSlidingMax(Sliding(k).spec(h))}
+func (k SlidingMax) NewAggregate(horizon time.Duration) Aggregate {
+	return maxAgg{window.NewSlidingMax(Sliding(k).spec(int64(horizon)))}
 }
 
-func (k SlidingMean) newAggregate(h int64) aggregate {
-	return meanAgg{window.NewSlidingMean(Sliding(k).spec(h))}
+func (k SlidingMean) NewAggregate(horizon time.Duration) Aggregate {
+	return meanAgg{window.NewSlidingMean(Sliding(k).spec(int64(horizon)))}
 }
 
 type countAgg struct{ *window.SlidingCount }
 
-func (a countAgg) add(t int64, _ float64, _ uint64) bool { return a.Add(t) }
-func (a countAgg) at(t int64, _ uint64) float64          { return float64(a.CountAt(t)) }
+func (a countAgg) Add(t int64, _ float64, _ uint64) bool { return a.SlidingCount.Add(t) }
+func (a countAgg) At(t int64, _ uint64) float64          { return float64(a.CountAt(t)) }
 
 type sumAgg struct{ *window.SlidingSum }
 
-func (a sumAgg) add(t int64, v float64, _ uint64) bool { return a.Add(t, v) }
-func (a sumAgg) at(t int64, _ uint64) float64          { return a.SumAt(t) }
+func (a sumAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingSum.Add(t, v) }
+func (a sumAgg) At(t int64, _ uint64) float64          { return a.SumAt(t) }
 
 type minAgg struct{ *window.SlidingMin }
 
-func (a minAgg) add(t int64, v float64, _ uint64) bool { return a.Add(t, v) }
-func (a minAgg) at(t int64, _ uint64) float64          { return a.MinAt(t) }
+func (a minAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMin.Add(t, v) }
+func (a minAgg) At(t int64, _ uint64) float64          { return a.MinAt(t) }
 
 type maxAgg struct{ *window.SlidingMax }
 
-func (a maxAgg) add(t int64, v float64, _ uint64) bool { return a.Add(t, v) }
-func (a maxAgg) at(t int64, _ uint64) float64          { return a.MaxAt(t) }
+func (a maxAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMax.Add(t, v) }
+func (a maxAgg) At(t int64, _ uint64) float64          { return a.MaxAt(t) }
 
 type meanAgg struct{ *window.SlidingMean }
 
-func (a meanAgg) add(t int64, v float64, _ uint64) bool { return a.Add(t, v) }
-func (a meanAgg) at(t int64, _ uint64) float64          { return a.MeanAt(t) }
+func (a meanAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMean.Add(t, v) }
+func (a meanAgg) At(t int64, _ uint64) float64          { return a.MeanAt(t) }
 
-// codec is what every stored aggregate of packages window and sketch has.
-type codec interface {
+// encoded is what every stored summary of packages window and sketch has.
+type encoded interface {
 	AppendBinary(dst []byte) ([]byte, error)
 	UnmarshalBinary(b []byte) error
 	SizeBytes() int
+}
+
+// codec is an encoded aggregate that knows its newest event time.
+type codec interface {
+	encoded
+	Newest() (t int64, ok bool)
 }
 
 // valueAgg adapts an aggregate taking (time, value) to the pipeline.
@@ -139,5 +146,5 @@ func adapt(c codec, add func(int64, float64) bool, at func(int64) float64) *valu
 	return &valueAgg{codec: c, addFn: add, atFn: at}
 }
 
-func (a *valueAgg) add(t int64, v float64, _ uint64) bool { return a.addFn(t, v) }
-func (a *valueAgg) at(t int64, _ uint64) float64          { return a.atFn(t) }
+func (a *valueAgg) Add(t int64, v float64, _ uint64) bool { return a.addFn(t, v) }
+func (a *valueAgg) At(t int64, _ uint64) float64          { return a.atFn(t) }

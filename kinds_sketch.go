@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"encoding/binary"
 	"errors"
 	"fmt"
@@ -27,8 +28,8 @@ type Distinct struct {
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(orDefault(k.Resolution, k.Window/60)),
-		Horizon: h, Precision: orDefault(k.Precision, 12)} // 12: the sketch package's default
+	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(cmp.Or(k.Resolution, k.Window/60)),
+		Horizon: h, Precision: cmp.Or(k.Precision, 12)} // 12: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -38,11 +39,11 @@ func (k Distinct) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Distinct) Validate() error { return k.spec(0).Validate() }
-func (Distinct) input() inputKind  { return inputItem }
-func (k Distinct) reach() int64    { return int64(k.Window) }
-func (k Distinct) newAggregate(h int64) aggregate {
-	d, err := sketch.NewDistinct(k.spec(h))
+func (k Distinct) Validate() error      { return k.spec(0).Validate() }
+func (Distinct) Inputs() Inputs         { return TakesItem }
+func (k Distinct) Reach() time.Duration { return k.Window }
+func (k Distinct) NewAggregate(horizon time.Duration) Aggregate {
+	d, err := sketch.NewDistinct(k.spec(int64(horizon)))
 	if err != nil {
 		// Unreachable: Open validates every kind with its horizon first.
 		panic(err)
@@ -52,12 +53,12 @@ func (k Distinct) newAggregate(h int64) aggregate {
 
 // validateWith checks the spec with the pipeline's horizon, which counts
 // against the pane limit.
-func (k Distinct) validateWith(h int64) error { return k.spec(h).Validate() }
+func (k Distinct) CheckHorizon(horizon time.Duration) error { return k.spec(int64(horizon)).Validate() }
 
 type distinctAgg struct{ *sketch.Distinct }
 
-func (a *distinctAgg) add(t int64, _ float64, h uint64) bool { return a.Add(t, h) }
-func (a *distinctAgg) at(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
+func (a *distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
+func (a *distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
 
 // Frequency estimates how many of an entity's events carried the asking
 // event's item (a card seen at this merchant, say), over the entity's
@@ -73,7 +74,7 @@ type Frequency struct {
 }
 
 func (k Frequency) params() sketch.CountMinParams {
-	return sketch.CountMinParams{Epsilon: orDefault(k.Epsilon, 0.01), Delta: orDefault(k.Delta, 0.01)}
+	return sketch.CountMinParams{Epsilon: cmp.Or(k.Epsilon, 0.01), Delta: cmp.Or(k.Delta, 0.01)}
 }
 
 // orDefault is v, or def when v is the zero value. Kinds spell their
@@ -94,15 +95,15 @@ func (k Frequency) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Frequency) Validate() error { return k.params().Validate() }
-func (Frequency) input() inputKind  { return inputItem }
-func (Frequency) reach() int64      { return 0 }
-func (k Frequency) newAggregate(h int64) aggregate {
+func (k Frequency) Validate() error    { return k.params().Validate() }
+func (Frequency) Inputs() Inputs       { return TakesItem }
+func (Frequency) Reach() time.Duration { return 0 }
+func (k Frequency) NewAggregate(horizon time.Duration) Aggregate {
 	cm, err := sketch.NewCountMin(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &frequencySummary{cm})
+	return newTailed(int64(horizon), &frequencySummary{cm})
 }
 
 // TopShare is the share of an entity's events that carried its most
@@ -115,7 +116,7 @@ type TopShare struct {
 }
 
 func (k TopShare) params() sketch.TopKParams {
-	return sketch.TopKParams{Capacity: orDefault(k.Capacity, 32)} // 32: the sketch package's default
+	return sketch.TopKParams{Capacity: cmp.Or(k.Capacity, 32)} // 32: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -124,15 +125,15 @@ func (k TopShare) Describe() string {
 }
 
 // Validate implements Kind.
-func (k TopShare) Validate() error { return k.params().Validate() }
-func (TopShare) input() inputKind  { return inputItem }
-func (TopShare) reach() int64      { return 0 }
-func (k TopShare) newAggregate(h int64) aggregate {
+func (k TopShare) Validate() error    { return k.params().Validate() }
+func (TopShare) Inputs() Inputs       { return TakesItem }
+func (TopShare) Reach() time.Duration { return 0 }
+func (k TopShare) NewAggregate(horizon time.Duration) Aggregate {
 	tk, err := sketch.NewTopK(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &topShareSummary{tk: tk})
+	return newTailed(int64(horizon), &topShareSummary{tk: tk})
 }
 
 // Quantile is the Q-quantile of an entity's values over its lifetime (is
@@ -146,7 +147,7 @@ type Quantile struct {
 }
 
 func (k Quantile) params() sketch.QuantileParams {
-	return sketch.QuantileParams{RelativeAccuracy: orDefault(k.RelativeAccuracy, 0.01)}
+	return sketch.QuantileParams{RelativeAccuracy: cmp.Or(k.RelativeAccuracy, 0.01)}
 }
 
 // Describe implements Kind.
@@ -162,19 +163,19 @@ func (k Quantile) Validate() error {
 	}
 	return errors.Join(append(errs, k.params().Validate())...)
 }
-func (Quantile) input() inputKind { return inputValue }
-func (Quantile) reach() int64     { return 0 }
-func (k Quantile) newAggregate(h int64) aggregate {
+func (Quantile) Inputs() Inputs       { return TakesValue }
+func (Quantile) Reach() time.Duration { return 0 }
+func (k Quantile) NewAggregate(horizon time.Duration) Aggregate {
 	q, err := sketch.NewQuantiles(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
-	return newLifetime(h, &quantileSummary{q: q, quantile: k.Q})
+	return newTailed(int64(horizon), &quantileSummary{q: q, quantile: k.Q})
 }
 
-// summary is a time-free sketch that a lifetime wraps.
+// summary is a time-free sketch that a tailedSummary wraps.
 type summary interface {
-	codec
+	encoded
 	fold(v float64, h uint64)
 	// answer reports the summary plus the extra events (all as of the
 	// asked time), for the asking event's item.
@@ -187,7 +188,7 @@ type tailEvent struct {
 	h uint64
 }
 
-// lifetime gives a time-free summary exact as-of answers: events within
+// tailedSummary gives a time-free summary exact as-of answers: events within
 // horizon of the newest time are kept raw, in time order, and folded into
 // the summary once older. An answer as of t >= newest − horizon is the
 // summary (all of whose events are at or before that) plus the raw events
@@ -196,7 +197,7 @@ type tailEvent struct {
 // includes the summary's events between t and newest − horizon.
 //
 // Invariant: raw is sorted by t and every raw t > newest − horizon.
-type lifetime struct {
+type tailedSummary struct {
 	sum     summary
 	raw     []tailEvent
 	newest  int64
@@ -204,11 +205,11 @@ type lifetime struct {
 	horizon int64
 }
 
-func newLifetime(horizon int64, s summary) *lifetime {
-	return &lifetime{sum: s, horizon: horizon}
+func newTailed(horizon int64, s summary) *tailedSummary {
+	return &tailedSummary{sum: s, horizon: horizon}
 }
 
-func (l *lifetime) add(t int64, v float64, h uint64) bool {
+func (l *tailedSummary) Add(t int64, v float64, h uint64) bool {
 	if !l.has || t > l.newest {
 		l.newest, l.has = t, true
 		cut := sat.Sub(l.newest, l.horizon)
@@ -233,7 +234,7 @@ func (l *lifetime) add(t int64, v float64, h uint64) bool {
 	return true
 }
 
-func (l *lifetime) at(t int64, item uint64) float64 {
+func (l *tailedSummary) At(t int64, item uint64) float64 {
 	n, _ := slices.BinarySearchFunc(l.raw, t, func(e tailEvent, t int64) int {
 		if e.t <= t {
 			return -1
@@ -243,9 +244,12 @@ func (l *lifetime) at(t int64, item uint64) float64 {
 	return l.sum.answer(l.raw[:n], item)
 }
 
-func (l *lifetime) SizeBytes() int { return 64 + 24*cap(l.raw) + l.sum.SizeBytes() }
+// Newest implements Aggregate.
+func (l *tailedSummary) Newest() (t int64, ok bool) { return l.newest, l.has }
 
-const lifetimeVersion1 = 1
+func (l *tailedSummary) SizeBytes() int { return 64 + 24*cap(l.raw) + l.sum.SizeBytes() }
+
+const tailedVersion1 = 1
 
 // AppendBinary encodes l:
 //
@@ -256,8 +260,8 @@ const lifetimeVersion1 = 1
 //	n times: uvarint newest − t, 8 bytes value (IEEE 754, little endian),
 //	         8 bytes item hash (little endian)
 //	rest     the summary's own versioned encoding (package sketch)
-func (l *lifetime) AppendBinary(dst []byte) ([]byte, error) {
-	dst = append(dst, lifetimeVersion1)
+func (l *tailedSummary) AppendBinary(dst []byte) ([]byte, error) {
+	dst = append(dst, tailedVersion1)
 	if l.has {
 		dst = append(dst, 1)
 	} else {
@@ -273,20 +277,20 @@ func (l *lifetime) AppendBinary(dst []byte) ([]byte, error) {
 	return l.sum.AppendBinary(dst)
 }
 
-var errLifetime = errors.New("lifetime summary")
+var errTailed = errors.New("tailed summary")
 
 // UnmarshalBinary decodes the format of AppendBinary; l is unchanged on
 // error.
-func (l *lifetime) UnmarshalBinary(b []byte) error {
+func (l *tailedSummary) UnmarshalBinary(b []byte) error {
 	d := wire.Decoder{B: b}
-	if v := d.Byte(); d.Err == nil && v != lifetimeVersion1 {
-		return fmt.Errorf("%w: unknown version %d", errLifetime, v)
+	if v := d.Byte(); d.Err == nil && v != tailedVersion1 {
+		return fmt.Errorf("%w: unknown version %d", errTailed, v)
 	}
 	has := d.Byte()
 	newest := d.Varint()
 	n := d.Uvarint()
 	if d.Err == nil && (has > 1 || n > uint64(len(d.B))/17) {
-		return fmt.Errorf("%w: bad header", errLifetime)
+		return fmt.Errorf("%w: bad header", errTailed)
 	}
 	raw := make([]tailEvent, 0, n)
 	for range n {
@@ -297,15 +301,15 @@ func (l *lifetime) UnmarshalBinary(b []byte) error {
 		}
 		t := newest - int64(back)
 		if back > math.MaxInt64 || t > newest || (len(raw) > 0 && t < raw[len(raw)-1].t) {
-			return fmt.Errorf("%w: raw events out of order", errLifetime)
+			return fmt.Errorf("%w: raw events out of order", errTailed)
 		}
 		raw = append(raw, tailEvent{t, math.Float64frombits(binary.LittleEndian.Uint64(bits)), binary.LittleEndian.Uint64(bits[8:])})
 	}
 	if d.Err != nil {
-		return fmt.Errorf("%w: %w", errLifetime, d.Err)
+		return fmt.Errorf("%w: %w", errTailed, d.Err)
 	}
 	if err := l.sum.UnmarshalBinary(d.B); err != nil {
-		return fmt.Errorf("%w: %w", errLifetime, err)
+		return fmt.Errorf("%w: %w", errTailed, err)
 	}
 	l.raw, l.newest, l.has = raw, newest, has == 1
 	return nil
@@ -323,7 +327,7 @@ func (s *frequencySummary) UnmarshalBinary(b []byte) error {
 		return err
 	}
 	if got := cm.Params(); got != want {
-		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errLifetime, got, want)
+		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errTailed, got, want)
 	}
 	*s.CountMin = cm
 	return nil

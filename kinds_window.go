@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"math"
@@ -66,18 +67,21 @@ func (k Decayed) Validate() error {
 	return errors.Join(append(errs, k.spec(0).Validate())...)
 }
 
-func (k Decayed) input() inputKind {
+// Inputs implements Kind.
+func (k Decayed) Inputs() Inputs {
 	if k.Stat == DecayedCount {
-		return inputNone
+		return 0
 	}
-	return inputValue
+	return TakesValue
 }
 
 // reach: after 64 half-lives a weight is below 2^-64 of its start.
-func (k Decayed) reach() int64 { return sat.Add(0, 64*int64(k.HalfLife)) }
+//
+// Reach implements Kind.
+func (k Decayed) Reach() time.Duration { return time.Duration(sat.Add(0, 64*int64(k.HalfLife))) }
 
-func (k Decayed) newAggregate(h int64) aggregate {
-	d := window.NewDecayed(k.spec(h))
+func (k Decayed) NewAggregate(horizon time.Duration) Aggregate {
+	d := window.NewDecayed(k.spec(int64(horizon)))
 	at := [...]func(int64) float64{d.CountAt, d.SumAt, d.MeanAt, d.VarianceAt}[k.Stat]
 	if k.Stat == DecayedCount {
 		return adapt(d, func(t int64, _ float64) bool { return d.Add(t, 1) }, at)
@@ -103,8 +107,8 @@ type Velocity struct {
 }
 
 func (k Velocity) spec(h int64) window.VelocitySpec {
-	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(orDefault(k.Resolution, k.Short/10)),
-		Horizon: h, Smoothing: orDefault(k.Smoothing, 1)} // 1: the window package's default
+	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(cmp.Or(k.Resolution, k.Short/10)),
+		Horizon: h, Smoothing: cmp.Or(k.Smoothing, 1)} // 1: the window package's default
 }
 
 // Describe implements Kind.
@@ -116,11 +120,11 @@ func (k Velocity) Describe() string {
 // Validate implements Kind.
 func (k Velocity) Validate() error { return k.spec(0).Validate() }
 
-func (Velocity) input() inputKind { return inputNone }
-func (k Velocity) reach() int64   { return int64(k.Long) }
+func (Velocity) Inputs() Inputs         { return 0 }
+func (k Velocity) Reach() time.Duration { return k.Long }
 
-func (k Velocity) newAggregate(h int64) aggregate {
-	v := window.NewVelocity(k.spec(h))
+func (k Velocity) NewAggregate(horizon time.Duration) Aggregate {
+	v := window.NewVelocity(k.spec(int64(horizon)))
 	return adapt(v, func(t int64, _ float64) bool { return v.Add(t) }, v.RatioAt)
 }
 
@@ -164,7 +168,7 @@ type Recency struct {
 }
 
 func (k Recency) spec(h int64) window.RecencySpec {
-	return window.RecencySpec{Gap: int64(orDefault(k.Gap, 30*time.Minute)), Horizon: h}
+	return window.RecencySpec{Gap: int64(cmp.Or(k.Gap, 30*time.Minute)), Horizon: h}
 }
 
 // Describe implements Kind.
@@ -181,17 +185,18 @@ func (k Recency) Validate() error {
 	return errors.Join(append(errs, k.spec(0).Validate())...)
 }
 
-func (Recency) input() inputKind { return inputNone }
+func (Recency) Inputs() Inputs { return 0 }
 
-func (k Recency) reach() int64 {
+// Reach implements Kind.
+func (k Recency) Reach() time.Duration {
 	if k.Stat == SessionEvents {
-		return k.spec(0).Gap
+		return time.Duration(k.spec(0).Gap)
 	}
 	return 0
 }
 
-func (k Recency) newAggregate(h int64) aggregate {
-	r := window.NewRecency(k.spec(h))
+func (k Recency) NewAggregate(horizon time.Duration) Aggregate {
+	r := window.NewRecency(k.spec(int64(horizon)))
 	seconds := func(d int64, ok bool) float64 {
 		if !ok {
 			return math.NaN()

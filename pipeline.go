@@ -4,6 +4,7 @@ import (
 	"errors"
 	"math"
 	"slices"
+	"time"
 
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/attach"
@@ -61,7 +62,7 @@ type entityState[E any] struct {
 	table   *store.Table[*record]
 	kinds   []Kind
 	first   int         // index of the entity's first feature in a row
-	zero    []aggregate // empty aggregates, to answer for unseen keys
+	zero    []Aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
 	ttl     int64 // records idle this long (by the watermark) expire; 0 never
 }
@@ -73,10 +74,10 @@ func (es *entityState[E]) expired(rec *record, w int64) bool {
 	return es.ttl > 0 && sat.Add(rec.last, es.ttl) <= w
 }
 
-func (es *entityState[E]) fresh() []aggregate {
-	aggs := make([]aggregate, len(es.kinds))
+func (es *entityState[E]) fresh() []Aggregate {
+	aggs := make([]Aggregate, len(es.kinds))
 	for i, k := range es.kinds {
-		aggs[i] = k.newAggregate(es.horizon)
+		aggs[i] = k.NewAggregate(time.Duration(es.horizon))
 	}
 	return aggs
 }
@@ -322,8 +323,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 			if !on {
 				continue
 			}
-			switch f.Kind.input() {
-			case inputValue:
+			if f.Kind.Inputs()&TakesValue != 0 {
 				v := 1.0
 				if f.Value != nil {
 					v = f.Value(e)
@@ -364,7 +364,7 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 		rec := sl.Value
 		for j, a := range rec.aggs {
 			fi := es.first + j
-			if in.on[fi] && !a.add(in.t, in.v[fi], in.item[fi]) {
+			if in.on[fi] && !a.Add(in.t, in.v[fi], in.item[fi]) {
 				p.c.tooOld++
 			}
 		}
@@ -410,7 +410,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			if es.ent.Features[j].BeforeEvent {
 				t--
 			}
-			out[es.first+j] = a.at(t, in.item[es.first+j])
+			out[es.first+j] = a.At(t, in.item[es.first+j])
 		}
 	}
 }

@@ -15,7 +15,7 @@ type record struct {
 	last int64
 	// aggs holds one aggregate per feature of the entity, in definition
 	// order. Invariant: len(aggs) == len(entity.Features).
-	aggs []aggregate
+	aggs []Aggregate
 }
 
 const recordVersion1 = 1
@@ -31,16 +31,22 @@ var errRecord = errors.New("entity record")
 //	n times: uvarint length, then that many bytes of the feature's own
 //	         versioned encoding (package window or sketch)
 func (r *record) AppendBinary(dst []byte) ([]byte, error) {
+	return appendRecord(dst, r.last, len(r.aggs), func(i int, dst []byte) ([]byte, error) { return r.aggs[i].AppendBinary(dst) })
+}
+
+// appendRecord writes the record layout of AppendBinary with n features,
+// the i-th encoded by feature(i, dst).
+func appendRecord(dst []byte, last int64, n int, feature func(i int, dst []byte) ([]byte, error)) ([]byte, error) {
 	dst = append(dst, recordVersion1)
-	dst = binary.AppendVarint(dst, r.last)
-	dst = binary.AppendUvarint(dst, uint64(len(r.aggs)))
-	for _, a := range r.aggs {
+	dst = binary.AppendVarint(dst, last)
+	dst = binary.AppendUvarint(dst, uint64(n))
+	for i := range n {
 		// Encode after a one-byte length guess and shift if the length
 		// needs more bytes, so no scratch buffer is needed.
 		at := len(dst)
 		dst = append(dst, 0)
 		var err error
-		dst, err = a.AppendBinary(dst)
+		dst, err = feature(i, dst)
 		if err != nil {
 			return dst, err
 		}
@@ -86,7 +92,7 @@ func peekLast(b []byte) (int64, error) {
 
 // decodeRecord decodes b into fresh aggregates made by fresh. It returns an
 // error, never panics, on any malformed input.
-func decodeRecord(b []byte, fresh func() []aggregate) (*record, error) {
+func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != recordVersion1 {
 		return nil, fmt.Errorf("%w: unknown version %d", errRecord, v)

@@ -81,48 +81,99 @@ type Row[E any] struct {
 	Values []float64 // one per feature in Names order; valid only during Emit
 }
 
-// Kind is an aggregate definition. The kinds are the types of this package
-// (SlidingCount, ...); each maps onto an aggregate of package window or
-// sketch.
+// Kind is an aggregate definition: what one feature keeps per entity key
+// and how it answers. The built-in kinds (SlidingCount, Decayed, Distinct,
+// ...) are implemented through this interface like any other; a user may
+// implement it for an aggregate of their own (see examples/kinds for one,
+// persisted, replayed and checked against brute force).
+//
+// # The contract of a kind
+//
+// Describe is the kind's identity in stored state: the canonical text of
+// every parameter that shapes what an aggregate stores or answers, spelled
+// out including defaults (so writing a default explicitly is not a change).
+// It is fingerprinted with the state; a different text on reopen is a
+// definition change (Open fails with ErrDefinitionChanged unless the
+// feature is listed in Options.ResetFeatures). Start it with a name no
+// other kind uses.
+//
+// NewAggregate returns an empty aggregate. horizon is how far behind its
+// newest event an aggregate must still answer as-of queries exactly and
+// accept events (the pipeline's MaxDisorder plus 1 ns); events older than
+// that may be folded coarsely or refused.
+//
+// # The encoding contract
+//
+// AppendBinary/UnmarshalBinary are the aggregate's persisted format. The
+// first byte must be a format version. Once a store holds a version, every
+// later build of the kind must keep decoding it: a new layout is a new
+// version number, never an edit of an old one; retired numbers are never
+// reused. UnmarshalBinary is given bytes written by an aggregate of the
+// same Describe text; it must reject unknown versions, truncated input and
+// trailing bytes with an error (never panic) and leave the receiver
+// unchanged on error. Changing what a stored state means without a new
+// Describe text is a silent wrong answer: change the Describe text, which
+// makes users reset the feature and backfill.
 type Kind interface {
-	// Describe is the canonical text of every parameter that shapes stored
-	// state. It is stored with the state and compared on open: a change
-	// is a definition change.
+	// Describe is the canonical text of every parameter that shapes
+	// stored state (see above).
 	Describe() string
 	// Validate reports every problem with the parameters.
 	Validate() error
-
-	newAggregate(horizon int64) aggregate
-	input() inputKind
-	// reach is how long after an entity's newest event this feature's
-	// state can still change an answer, in ns; 0 means unbounded.
-	reach() int64
+	// Inputs says what the kind reads from an event besides its time.
+	Inputs() Inputs
+	// Reach is how long after an entity's newest event this feature's
+	// state can still change an answer; 0 means unbounded. The default
+	// TTL of an entity is its features' longest reach plus MaxDisorder.
+	Reach() time.Duration
+	// NewAggregate returns an empty aggregate (see above). It is called
+	// only after Validate returned nil.
+	NewAggregate(horizon time.Duration) Aggregate
 }
 
-type inputKind uint8
+// HorizonChecker is implemented by a Kind whose validity depends on the
+// pipeline's horizon (MaxDisorder plus 1 ns), e.g. a window whose pane
+// count grows with it. Open calls it after Validate.
+type HorizonChecker interface {
+	CheckHorizon(horizon time.Duration) error
+}
+
+// Inputs is a set of what a kind reads from an event.
+type Inputs uint8
 
 const (
-	inputNone  inputKind = iota // the event itself is the input
-	inputValue                  // a float64 value
-	inputItem                   // a hashed item
+	// TakesValue: the kind aggregates Feature.Value (1 when nil). NaN and
+	// infinite values reject the whole event before any state changes.
+	TakesValue Inputs = 1 << iota
+	// TakesItem: the kind counts Feature.Item, which the pipeline hashes
+	// to 64 bits before Add and At see it.
+	TakesItem
 )
 
-// aggregate is one feature's state for one entity key.
-type aggregate interface {
-	add(t int64, v float64, item uint64) bool
-	// at answers as of t; item is the asking event's item, for kinds that
-	// answer about it (frequency).
-	at(t int64, item uint64) float64
+// Aggregate is one feature's state for one entity key. The pipeline calls
+// it from one goroutine at a time.
+type Aggregate interface {
+	// Add applies one event at time t with its value (0 unless the kind
+	// takes values) and item hash (0 unless it takes items). It returns
+	// false if the event is older than the aggregate keeps (counted in
+	// Stats.TooOld).
+	Add(t int64, value float64, item uint64) bool
+	// At answers as of time t: no event newer than t may count. item is
+	// the asking event's item hash, for kinds that answer about it.
+	At(t int64, item uint64) float64
+	// Newest returns the newest event time added; ok is false if none.
+	Newest() (t int64, ok bool)
+	// AppendBinary appends the versioned encoding (see Kind).
 	AppendBinary(dst []byte) ([]byte, error)
+	// UnmarshalBinary replaces the state with a decoded encoding.
 	UnmarshalBinary(b []byte) error
+	// SizeBytes estimates the heap the aggregate holds, for the cache's
+	// memory bound.
 	SizeBytes() int
 }
 
-// horizonValidator is a Kind whose validity depends on the pipeline's
-// horizon (its allowed disorder).
-type horizonValidator interface {
-	validateWith(horizon int64) error
-}
+// reachNanos is a kind's reach in ns, saturated (0: unbounded).
+func reachNanos(k Kind) int64 { return max(int64(k.Reach()), 0) }
 
 func (s *Spec[E]) validate(horizon int64) error {
 	var errs []error
@@ -163,15 +214,15 @@ func (s *Spec[E]) validate(horizon int64) error {
 			}
 			if err := f.Kind.Validate(); err != nil {
 				errs = append(errs, fmt.Errorf("%s: %w", where, err))
-			} else if hv, ok := f.Kind.(horizonValidator); ok {
-				if err := hv.validateWith(horizon); err != nil {
+			} else if hc, ok := f.Kind.(HorizonChecker); ok {
+				if err := hc.CheckHorizon(time.Duration(horizon)); err != nil {
 					errs = append(errs, fmt.Errorf("%s with MaxDisorder %v: %w", where, time.Duration(horizon), err))
 				}
 			}
-			if f.Kind.input() != inputItem && f.Item != nil {
+			if f.Kind.Inputs()&TakesItem == 0 && f.Item != nil {
 				errs = append(errs, fmt.Errorf("%s: Item is set but %s does not count items", where, f.Kind.Describe()))
 			}
-			if f.Kind.input() != inputValue && f.Value != nil {
+			if f.Kind.Inputs()&TakesValue == 0 && f.Value != nil {
 				errs = append(errs, fmt.Errorf("%s: Value is set but %s takes no value", where, f.Kind.Describe()))
 			}
 		}

@@ -144,8 +144,8 @@ func (d *Decayed) Reset() {
 	d.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (d *Decayed) Newest() int64 { return d.maxT }
+// Newest returns the largest time added; ok is false (and t 0) if none.
+func (d *Decayed) Newest() (t int64, ok bool) { return d.maxT, d.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (d *Decayed) SizeBytes() int {

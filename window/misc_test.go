@@ -106,7 +106,7 @@ func TestSlidingWrappers(t *testing.T) {
 	if !math.IsNaN(me.MeanAt(-100)) || sum.SumAt(-100) != 0 {
 		t.Error("empty window should give NaN mean and 0 sum")
 	}
-	if sum.Newest() != 20 || sum.SizeBytes() <= 0 || sum.Spec() != spec {
+	if n, ok := sum.Newest(); n != 20 || !ok || sum.SizeBytes() <= 0 || sum.Spec() != spec {
 		t.Error("accessors")
 	}
 }
@@ -185,7 +185,7 @@ func TestDecayedExtremeValues(t *testing.T) {
 	if err := NewDecayed(d.spec).UnmarshalBinary(b); err != nil {
 		t.Fatalf("state from in-range values does not decode: %v", err)
 	}
-	if v := d.VarianceAt(d.Newest()); math.IsNaN(v) || math.IsInf(v, 0) {
+	if v := d.VarianceAt(d.maxT); math.IsNaN(v) || math.IsInf(v, 0) {
 		t.Fatalf("variance %v", v)
 	}
 }

@@ -91,8 +91,8 @@ func (r *Recency) Reset() {
 	r.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (r *Recency) Newest() int64 { return r.maxT }
+// Newest returns the largest time added; ok is false (and t 0) if none.
+func (r *Recency) Newest() (t int64, ok bool) { return r.maxT, r.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (r *Recency) SizeBytes() int {

@@ -131,8 +131,8 @@ func (g *ring) Reset() {
 	g.raw.clear()
 }
 
-// Newest returns the largest time added, or 0 if none.
-func (g *ring) Newest() int64 { return g.maxT }
+// Newest returns the largest time added; ok is false (and t 0) if none.
+func (g *ring) Newest() (t int64, ok bool) { return g.maxT, g.seen }
 
 // Len returns the number of events retained (folded into panes or raw).
 func (g *ring) Len() uint64 { return g.total }

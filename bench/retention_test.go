@@ -14,7 +14,7 @@ import (
 	"github.com/tallyward/tallyward/internal/store"
 )
 
-// Benchmarks of the lifetime of state: what a commit costs per dirty
+// Benchmarks of the retention of state: what a commit costs per dirty
 // entity, how long a large store takes to reopen and serve its first
 // event, and what an expiry sweep costs per expired entity. All on disk
 // (b.TempDir), inputs built before the timer with fixed seeds.
@@ -147,7 +147,7 @@ type levent struct {
 	Key string
 }
 
-func lifetimeSpec() tallyward.Spec[levent] {
+func retentionSpec() tallyward.Spec[levent] {
 	return tallyward.Spec[levent]{
 		Time: func(e levent) int64 { return e.T },
 		Entities: []tallyward.Entity[levent]{{
@@ -177,7 +177,7 @@ func BenchmarkRecovery(b *testing.B) {
 		keys := entityKeys(n, 2)
 		opts := tallyward.Options{Dir: dir, CacheBytes: 16 << 20, CommitEvery: 1_000_000, TTL: -1}
 		buildStart := time.Now()
-		p, err := tallyward.Open(lifetimeSpec(), opts)
+		p, err := tallyward.Open(retentionSpec(), opts)
 		if err != nil {
 			b.Fatal(err)
 		}
@@ -198,7 +198,7 @@ func BenchmarkRecovery(b *testing.B) {
 			var out []float64
 			for i := 0; i < b.N; i++ {
 				startOpen := time.Now()
-				p, err := tallyward.Open(lifetimeSpec(), opts)
+				p, err := tallyward.Open(retentionSpec(), opts)
 				if err != nil {
 					b.Fatal(err)
 				}
