@@ -186,7 +186,7 @@ func OpenAsOf[E any](spec tallyward.Spec[E], opts tallyward.Options, as AsOfSpec
 // Attach loads the join's committed state from p's store and registers it
 // with p's commits. Call it once, before any event.
 func (j *AsOf[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "asof."+j.spec.Name, j, j.load); err != nil {
+	if err := attachPart(p, "asof."+j.spec.Name, asofPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true
@@ -355,11 +355,16 @@ func (j *AsOf[E]) OnWatermark(w int64) {
 //	                         bytes event | floats row
 const asofVersion1 = 1
 
-// Pending implements store.Part.
-func (j *AsOf[E]) Pending() int { return len(j.dirtyK) + len(j.dirtyQ) + 1 }
+// The join as a store.Part, kept off the public method set.
+type asofPart[E any] struct{ j *AsOf[E] }
 
-// Stage implements store.Part.
-func (j *AsOf[E]) Stage(w *store.PartWriter) error {
+func (p asofPart[E]) Pending() int                    { return p.j.pending() }
+func (p asofPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
+
+func (j *AsOf[E]) pending() int { return len(j.dirtyK) + len(j.dirtyQ) + 1 }
+
+// stage writes what changed since the last commit.
+func (j *AsOf[E]) stage(w *store.PartWriter) error {
 	if j.err != nil {
 		return j.err
 	}

@@ -33,7 +33,8 @@
 //     The Eager variants trade that for latency.
 //   - Durable. A join's state (held events, kept values, counters and the
 //     next output Seq) lives in the pipeline's store under the join's name
-//     (a part under key tag 0x06; layouts on each type's Stage method), is
+//     (a part under key tag 0x06; each layout is documented beside its
+//     version constant in labels.go, interval.go and asof.go), is
 //     written by every commit of the pipeline, in the same atomic batch as
 //     the records and the source position, and expires by the watermark.
 //     After a crash the join resumes from the last commit: outputs from it

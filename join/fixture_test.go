@@ -158,8 +158,8 @@ type joined struct {
 const maturity = 14 * 24 * time.Hour
 
 // openJoined opens a pipeline over richSpec with a label join (maturity
-// 14 days), a Settled interval join (payouts within 30 minutes after a
-// reset) and an as-of join (verification level at each payment).
+// 14 days), a Settled interval join (payouts from 10 minutes before to 30
+// minutes after a reset) and an as-of join (verification level at each payment).
 func openJoined(t testing.TB, opts tallyward.Options, sink RowSink, onMatch func(Match[act]), onAttach func(Attached[act])) *joined {
 	t.Helper()
 	lj, err := NewLabels(actLabels(maturity, sink))
@@ -167,7 +167,7 @@ func openJoined(t testing.TB, opts tallyward.Options, sink RowSink, onMatch func
 	iv, err := NewInterval(IntervalSpec[act]{
 		Name: "reset-payout", Key: func(e act) string { return e.Acct },
 		Left: func(e act) bool { return e.Kind == "reset" }, Right: func(e act) bool { return e.Kind == "payout" },
-		Hi: 30 * time.Minute, Emit: onMatch,
+		Lo: -10 * time.Minute, Hi: 30 * time.Minute, Emit: onMatch,
 	})
 	require.NoError(t, err)
 	ao, err := NewAsOf(AsOfSpec[act]{

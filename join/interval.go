@@ -193,7 +193,7 @@ func OpenInterval[E any](spec tallyward.Spec[E], opts tallyward.Options, is Inte
 // Attach loads the join's committed state from p's store and registers it
 // with p's commits. Call it once, before any event.
 func (j *Interval[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "interval."+j.spec.Name, j, j.load); err != nil {
+	if err := attachPart(p, "interval."+j.spec.Name, intervalPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true
@@ -360,11 +360,16 @@ func (j *Interval[E]) drop(e *ivEvent[E], idx map[string][]*ivEvent[E]) {
 // bytes: uvarint length then the bytes; floats as in the label join.
 const intervalVersion1 = 1
 
-// Pending implements store.Part.
-func (j *Interval[E]) Pending() int { return len(j.dirty) + 1 }
+// The join as a store.Part, kept off the public method set.
+type intervalPart[E any] struct{ j *Interval[E] }
 
-// Stage implements store.Part.
-func (j *Interval[E]) Stage(w *store.PartWriter) error {
+func (p intervalPart[E]) Pending() int                    { return p.j.pending() }
+func (p intervalPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
+
+func (j *Interval[E]) pending() int { return len(j.dirty) + 1 }
+
+// stage writes what changed since the last commit.
+func (j *Interval[E]) stage(w *store.PartWriter) error {
 	if j.err != nil {
 		return j.err
 	}

@@ -215,7 +215,7 @@ func chainWatermark(a, b func(int64)) func(int64) {
 // with p's commits and tells the sink the columns. Call it once, right
 // after tallyward.Open and before any event.
 func (j *Labels[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "label."+j.spec.Name, j, j.load); err != nil {
+	if err := attachPart(p, "label."+j.spec.Name, labelPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true
@@ -343,12 +343,17 @@ func (j *Labels[E]) OnWatermark(w int64) {
 // floats: uvarint count, then 8 bytes little-endian IEEE 754 bits each.
 const labelVersion1 = 1
 
-// Pending implements store.Part.
-func (j *Labels[E]) Pending() int { return len(j.dirty) + 1 }
+// The join as a store.Part, kept off the public method set.
+type labelPart[E any] struct{ j *Labels[E] }
 
-// Stage implements store.Part: it flushes the sink, then writes what
-// changed since the last commit.
-func (j *Labels[E]) Stage(w *store.PartWriter) error {
+func (p labelPart[E]) Pending() int                    { return p.j.pending() }
+func (p labelPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
+
+func (j *Labels[E]) pending() int { return len(j.dirty) + 1 }
+
+// stage flushes the sink (rows a commit covers must be durable first),
+// then writes what changed since the last commit.
+func (j *Labels[E]) stage(w *store.PartWriter) error {
 	if j.err != nil {
 		return j.err
 	}
