@@ -161,19 +161,25 @@ const maturity = 14 * 24 * time.Hour
 // 14 days), a Settled interval join (payouts from 10 minutes before to 30
 // minutes after a reset) and an as-of join (verification level at each payment).
 func openJoined(t testing.TB, opts tallyward.Options, sink RowSink, onMatch func(Match[act]), onAttach func(Attached[act])) *joined {
+	return openJoinedVariant(t, opts, false, sink, onMatch, onAttach)
+}
+
+// openJoinedVariant is openJoined with the Eager variants of the interval
+// and as-of joins when eager is set.
+func openJoinedVariant(t testing.TB, opts tallyward.Options, eager bool, sink RowSink, onMatch func(Match[act]), onAttach func(Attached[act])) *joined {
 	t.Helper()
 	lj, err := NewLabels(actLabels(maturity, sink))
 	require.NoError(t, err)
 	iv, err := NewInterval(IntervalSpec[act]{
 		Name: "reset-payout", Key: func(e act) string { return e.Acct },
 		Left: func(e act) bool { return e.Kind == "reset" }, Right: func(e act) bool { return e.Kind == "payout" },
-		Lo: -10 * time.Minute, Hi: 30 * time.Minute, Emit: onMatch,
+		Lo: -10 * time.Minute, Hi: 30 * time.Minute, Emit: onMatch, Eager: eager,
 	})
 	require.NoError(t, err)
 	ao, err := NewAsOf(AsOfSpec[act]{
 		Name: "verification", Key: func(e act) string { return e.Acct },
 		Left: func(e act) bool { return e.Kind == "pay" }, Right: func(e act) bool { return e.Kind == "verify" },
-		Value: func(e act) float64 { return e.V }, Emit: onAttach,
+		Value: func(e act) float64 { return e.V }, Emit: onAttach, Eager: eager,
 	})
 	require.NoError(t, err)
 	spec := richSpec()
@@ -189,7 +195,11 @@ func openJoined(t testing.TB, opts tallyward.Options, sink RowSink, onMatch func
 
 // collect opens a joined pipeline whose outputs all go to o.
 func collect(t testing.TB, opts tallyward.Options, o *outputs) *joined {
-	return openJoined(t, opts,
+	return collectVariant(t, opts, false, o)
+}
+
+func collectVariant(t testing.TB, opts tallyward.Options, eager bool, o *outputs) *joined {
+	return openJoinedVariant(t, opts, eager,
 		funcSink(func(r *TrainingRow) error { k, l := renderRow(r); o.add(t, k, l); return nil }),
 		func(m Match[act]) { k, l := renderMatch(m); o.add(t, k, l) },
 		func(a Attached[act]) { k, l := renderAttached(a); o.add(t, k, l) })

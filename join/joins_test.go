@@ -64,8 +64,16 @@ type fakeClock struct{ now int64 }
 func (c *fakeClock) Now() int64 { return c.now }
 
 // Replay equals live (invariant 1): the same sequence through Replay and
-// through Live from 4 goroutines (fake clock) gives the same join outputs.
+// through Live from 4 goroutines (fake clock) gives the same join outputs,
+// for the Settled joins on a Settled pipeline and for the Eager variants
+// on an Eager pipeline.
 func TestJoinsReplayEqualsLive(t *testing.T) {
+	for _, eager := range []bool{false, true} {
+		t.Run(fmt.Sprintf("eager=%v", eager), func(t *testing.T) { replayEqualsLive(t, eager) })
+	}
+}
+
+func replayEqualsLive(t *testing.T, eager bool) {
 	n := 30_000
 	if testing.Short() {
 		n = 6_000
@@ -74,13 +82,17 @@ func TestJoinsReplayEqualsLive(t *testing.T) {
 	disorder := 5 * minute
 	evs := shuffleWithin(rand.New(rand.NewPCG(3, 3)), h.evs, disorder)
 
+	opts := settled(disorder)
+	if eager {
+		opts.Mode = tallyward.Eager
+	}
 	want := newOutputs()
-	j := collect(t, settled(disorder), want)
+	j := collectVariant(t, opts, eager, want)
 	require.NoError(t, j.p.Replay(context.Background(), source(evs)))
 	require.NoError(t, j.p.Close())
 
 	got := newOutputs()
-	j = collect(t, settled(disorder), got)
+	j = collectVariant(t, opts, eager, got)
 	l := tallyward.NewLive(j.p, &fakeClock{now: h.end + hour})
 	var wg sync.WaitGroup
 	errs := make([]error, 4)
@@ -99,6 +111,7 @@ func TestJoinsReplayEqualsLive(t *testing.T) {
 	require.Equal(t, make([]error, 4), errs)
 	require.NoError(t, l.Flush())
 	require.NoError(t, l.Close())
+	require.NotEmpty(t, want.lines)
 	require.Equal(t, want.lines, got.lines)
 }
 

@@ -34,7 +34,13 @@ func TestNoLeakageAgainstBruteForce(t *testing.T) {
 	arrival := shuffleWithin(rand.New(rand.NewPCG(1, 2)), h.evs, disorder)
 
 	sink := &MemorySink{}
-	p, lj, err := OpenLabels(richSpec(), tallyward.Options{Mode: tallyward.Settled, MaxDisorder: time.Duration(disorder)}, actLabels(maturity, sink))
+	ls := actLabels(maturity, sink)
+	var reported uint64
+	ls.OnUnmatched = func(e act) {
+		require.NotEmpty(t, e.Ref)
+		reported++
+	}
+	p, lj, err := OpenLabels(richSpec(), tallyward.Options{Mode: tallyward.Settled, MaxDisorder: time.Duration(disorder)}, ls)
 	require.NoError(t, err)
 	defer p.Close()
 	require.NoError(t, p.Replay(context.Background(), source(arrival)))
@@ -136,6 +142,7 @@ func TestNoLeakageAgainstBruteForce(t *testing.T) {
 	st := lj.Stats()
 	require.Zero(t, mismatches)
 	require.Equal(t, unmatched, st.Unmatched, "outcomes after maturity are counted")
+	require.Equal(t, unmatched, reported, "and reported")
 	require.Equal(t, len(byID)-matured, st.Held, "unmatured payments are held, not written")
 	labelled := 0
 	for _, r := range sink.Rows {
