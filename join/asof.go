@@ -186,7 +186,8 @@ func OpenAsOf[E any](spec tallyward.Spec[E], opts tallyward.Options, as AsOfSpec
 // Attach loads the join's committed state from p's store and registers it
 // with p's commits. Call it once, before any event.
 func (j *AsOf[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "asof."+j.spec.Name, asofPart[E]{j}, j.load); err != nil {
+	desc := fmt.Sprintf("asof v1 ttl=%d eager=%v", int64(j.spec.TTL), j.spec.Eager)
+	if err := attachPart(p, "asof."+j.spec.Name, desc, asofPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true

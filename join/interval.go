@@ -193,7 +193,8 @@ func OpenInterval[E any](spec tallyward.Spec[E], opts tallyward.Options, is Inte
 // Attach loads the join's committed state from p's store and registers it
 // with p's commits. Call it once, before any event.
 func (j *Interval[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "interval."+j.spec.Name, intervalPart[E]{j}, j.load); err != nil {
+	desc := fmt.Sprintf("interval v1 lo=%d hi=%d eager=%v", j.lo, j.hi, j.spec.Eager)
+	if err := attachPart(p, "interval."+j.spec.Name, desc, intervalPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true

@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"math"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/google/btree"
@@ -215,7 +216,8 @@ func chainWatermark(a, b func(int64)) func(int64) {
 // with p's commits and tells the sink the columns. Call it once, right
 // after tallyward.Open and before any event.
 func (j *Labels[E]) Attach(p *tallyward.Pipeline[E]) error {
-	if err := attachPart(p, "label."+j.spec.Name, labelPart[E]{j}, j.load); err != nil {
+	desc := fmt.Sprintf("label v1 maturity=%d features=%s labels=%s", j.maturity, strings.Join(p.Names(), ","), strings.Join(j.labels, ","))
+	if err := attachPart(p, "label."+j.spec.Name, desc, labelPart[E]{j}, j.load); err != nil {
 		return err
 	}
 	j.attached = true

@@ -21,6 +21,9 @@ var (
 	ErrNotOpen = errors.New("join: pipeline is not open")
 	// ErrCorrupt wraps every error decoding stored join state.
 	ErrCorrupt = errors.New("join: corrupt stored state")
+	// ErrDefinitionChanged: the store holds state of a join of the same
+	// name with another definition. Use a new name (or a new store).
+	ErrDefinitionChanged = errors.New("join: definition changed")
 	// ErrNotAttached: an event reached a join before Attach.
 	ErrNotAttached = errors.New("join: Attach was not called before the first event")
 )
@@ -61,13 +64,25 @@ func validName(s string) bool {
 }
 
 // attachPart loads part name's committed keys from p's store through load
-// and registers part, so every commit of p stages it.
-func attachPart[E any](p *tallyward.Pipeline[E], name string, part store.Part, load func(k, v []byte) error) error {
+// and registers part, so every commit of p stages it. desc is the join's
+// definition in canonical text: it is stored under key "d" with the first
+// commit, and a stored one that differs makes attachPart fail with
+// ErrDefinitionChanged, since held state shaped by another definition
+// (another maturity, window or feature list) would be misread.
+func attachPart[E any](p *tallyward.Pipeline[E], name, desc string, part store.Part, load func(k, v []byte) error) error {
 	st, ok := attach.Store(p)
 	if !ok {
 		return ErrNotOpen
 	}
+	dp := &describedPart{Part: part, desc: desc}
 	if err := st.ScanPart(name, func(k, v []byte) error {
+		if string(k) == "d" {
+			dp.written = true
+			if string(v) != desc {
+				return fmt.Errorf("%w: join %q was stored as %q, is now %q", ErrDefinitionChanged, name, v, desc)
+			}
+			return nil
+		}
 		if err := load(k, v); err != nil {
 			return fmt.Errorf("%w: %w", ErrCorrupt, err)
 		}
@@ -75,7 +90,24 @@ func attachPart[E any](p *tallyward.Pipeline[E], name string, part store.Part, l
 	}); err != nil {
 		return err
 	}
-	return st.AddPart(name, part)
+	return st.AddPart(name, dp)
+}
+
+// describedPart writes the join's definition with the first commit.
+type describedPart struct {
+	store.Part
+	desc    string
+	written bool
+}
+
+func (p *describedPart) Stage(w *store.PartWriter) error {
+	if !p.written {
+		if err := w.Set([]byte("d"), []byte(p.desc)); err != nil {
+			return err
+		}
+		p.written = true
+	}
+	return p.Part.Stage(w)
 }
 
 // Persisted encodings share these pieces: floats as 8 raw bytes

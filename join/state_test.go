@@ -11,6 +11,7 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/stretchr/testify/require"
 	"github.com/tallyward/tallyward"
@@ -127,7 +128,37 @@ func loaders(t testing.TB) map[string]func(k, v []byte) error {
 	ao, err := NewAsOf(AsOfSpec[act]{Name: "x", Key: func(act) string { return "" }, Left: func(act) bool { return true },
 		Right: func(act) bool { return true }, Value: func(act) float64 { return 0 }, Emit: func(Attached[act]) {}})
 	require.NoError(t, err)
-	return map[string]func(k, v []byte) error{"label.training": lj.load, "interval.reset-payout": iv.load, "asof.verification": ao.load}
+	skipDef := func(load func(k, v []byte) error) func(k, v []byte) error {
+		return func(k, v []byte) error {
+			if string(k) == "d" { // the definition, checked by attachPart
+				return nil
+			}
+			return load(k, v)
+		}
+	}
+	return map[string]func(k, v []byte) error{"label.training": skipDef(lj.load), "interval.reset-payout": skipDef(iv.load), "asof.verification": skipDef(ao.load)}
+}
+
+// A join reopened with another definition refuses to load state shaped by
+// the old one, and names both.
+func TestJoinDefinitionChecked(t *testing.T) {
+	dir := t.TempDir()
+	opts := settled(0)
+	opts.Dir = dir
+	open := func(m time.Duration) error {
+		p, _, err := OpenLabels(actSpec(), opts, actLabels(m, &MemorySink{}))
+		if err != nil {
+			return err
+		}
+		require.NoError(t, p.Process(act{T: base + sec, Kind: "pay", Acct: "a", ID: "p1"}))
+		return p.Close()
+	}
+	require.NoError(t, open(time.Hour))
+	require.NoError(t, open(time.Hour))
+	err := open(2 * time.Hour)
+	require.ErrorIs(t, err, ErrDefinitionChanged)
+	require.ErrorContains(t, err, "maturity=3600000000000")
+	require.ErrorContains(t, err, "maturity=7200000000000")
 }
 
 // Golden blobs of each stored join encoding (version 1), kept for good: a
