@@ -348,6 +348,7 @@ func (j *AsOf[E]) OnWatermark(w int64) {
 
 // Stored layout under part "asof.<name>" (tag 0x06, see internal/store):
 //
+//	"d"        -> the join's definition as text (see attachPart)
 //	"m"                   -> byte version (1) | varint watermark |
 //	                         uvarint next ord | uvarint emitted | uvarint found
 //	"k" | key             -> byte version (1) | uvarint n |

@@ -351,6 +351,7 @@ func (j *Interval[E]) drop(e *ivEvent[E], idx map[string][]*ivEvent[E]) {
 // Stored layout under part "interval.<name>" (tag 0x06, see
 // internal/store):
 //
+//	"d"        -> the join's definition as text (see attachPart)
 //	"m"                    -> byte version (1) | uvarint next ord |
 //	                          uvarint matches | uvarint pairs
 //	"e" | 8-byte BE ord    -> byte version (1) | byte side (1 left,

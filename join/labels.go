@@ -336,6 +336,7 @@ func (j *Labels[E]) OnWatermark(w int64) {
 
 // Stored layout under part "label.<name>" (tag 0x06, see internal/store):
 //
+//	"d"        -> the join's definition as text (see attachPart)
 //	"m"        -> byte version (1) | varint newest | uvarint rows,
 //	              attached, unmatched, duplicates
 //	"e" | id   -> byte version (1) | varint time | varint due |
