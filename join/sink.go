@@ -2,8 +2,13 @@ package join
 
 import (
 	"bufio"
+	"bytes"
+	"errors"
+	"fmt"
 	"io"
+	"io/fs"
 	"math"
+	"os"
 	"slices"
 	"strconv"
 )
@@ -138,4 +143,50 @@ func (j *JSONLines) Flush() error {
 		return j.sync.Sync()
 	}
 	return nil
+}
+
+// TrimJSONLines makes a JSON lines file written by JSONLines exactly-once
+// across a restart: it cuts the file after the last whole line whose seq
+// is below next, dropping rows that the join will write again (and a torn
+// last line). Call it after the join is attached, with
+// LabelStats.Rows, and before the first event; a missing file is fine.
+//
+// It relies on the join writing rows in Seq order, which it does.
+func TrimJSONLines(path string, next uint64) error {
+	f, err := os.OpenFile(path, os.O_RDWR, 0)
+	if errors.Is(err, fs.ErrNotExist) {
+		return nil
+	}
+	if err != nil {
+		return err
+	}
+	defer f.Close()
+	r := bufio.NewReaderSize(f, 64<<10)
+	var keep int64
+	for {
+		line, err := r.ReadBytes('\n')
+		if err == io.EOF {
+			break // a line without its newline is torn: cut it
+		}
+		if err != nil {
+			return err
+		}
+		rest, ok := bytes.CutPrefix(line, []byte(`{"seq":`))
+		if !ok {
+			return fmt.Errorf("join: %s: line at byte %d is not a row", path, keep)
+		}
+		num, _, _ := bytes.Cut(rest, []byte(","))
+		seq, err := strconv.ParseUint(string(num), 10, 64)
+		if err != nil {
+			return fmt.Errorf("join: %s: line at byte %d: %w", path, keep, err)
+		}
+		if seq >= next {
+			break
+		}
+		keep += int64(len(line))
+	}
+	if err := f.Truncate(keep); err != nil {
+		return err
+	}
+	return f.Sync()
 }
