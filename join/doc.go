@@ -40,7 +40,9 @@
 //     After a crash the join resumes from the last commit: outputs from it
 //     on are emitted again with the same Seq and content (at-least-once;
 //     keep the highest Seq made durable to make it exactly-once). Training
-//     rows are flushed to their sink before each commit.
+//     rows are flushed to their sink before each commit; TrimJSONLines
+//     cuts a JSON lines file back to the committed rows on restart, so the
+//     file holds each row exactly once.
 //   - Bounded. A label join holds the events of the last M (plus the
 //     disorder); an interval join the events of the last Hi − Lo; an as-of
 //     join one value per key plus the disorder window (TTL bounds the keys).
