@@ -27,8 +27,8 @@ func (p *Pipeline[E]) entity(name string) (int, *entityState[E], error) {
 // The erasure is remembered by a tombstone holding only a salted hash of
 // the key: later events naming the key, including a replay of older
 // history, do not recreate it (they are counted in Stats.ErasedSkips and
-// read NaN) until LiftErasure. After a compaction no byte sequence of the key
-// remains in the store.
+// read NaN) until LiftErasure. After Compact and Close no file of the
+// store holds a byte sequence of the key, recycled logs included.
 func (p *Pipeline[E]) Erase(entity, key string) error {
 	if err := p.usable(); err != nil {
 		return err

@@ -94,9 +94,29 @@ type Options struct {
 	// fresh in-memory one otherwise.
 	FS vfs.FS
 
-	// CacheBytes bounds the approximate memory of decoded entity records.
-	// Default: 256 MiB.
+	// CacheBytes bounds the approximate memory of entity records: decoded
+	// ones in the cache, and changed ones evicted before the next commit.
+	// When changes waiting for a commit would exceed half of it, the
+	// pipeline commits early (as an automatic commit, also when
+	// CommitEvery is negative). The process's memory is about CacheBytes
+	// + BlockCacheBytes + 4 × MemTableBytes, times Go's garbage collector
+	// overhead (see DEVELOPERS.md for measurements). Default: 256 MiB.
 	CacheBytes int64
+
+	// BlockCacheBytes is the storage engine's cache of table blocks read
+	// from disk. Default: 32 MiB.
+	BlockCacheBytes int64
+
+	// MemTableBytes is the size of one of the storage engine's in-memory
+	// write buffers; up to four exist at once. Default: 64 MiB.
+	MemTableBytes int64
+
+	// ReadOnly opens an existing store for inspection or salvage: events
+	// can be processed, but nothing is written (Commit returns
+	// ErrReadOnly, Close does not commit), and damage that Open would
+	// refuse with ErrStoreDamaged is reported by Notices instead.
+	// Default: false.
+	ReadOnly bool
 
 	// IngestThreshold: a commit of at least this many writes goes to
 	// Pebble as one ingested table rather than a batch (cheaper for large
@@ -166,6 +186,12 @@ func (o *Options) Validate() error {
 	}
 	if o.CacheBytes < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: CacheBytes %d < 0", o.CacheBytes))
+	}
+	if o.BlockCacheBytes < 0 {
+		errs = append(errs, fmt.Errorf("tallyward: BlockCacheBytes %d < 0", o.BlockCacheBytes))
+	}
+	if o.MemTableBytes < 0 || o.MemTableBytes >= 4<<30 {
+		errs = append(errs, fmt.Errorf("tallyward: MemTableBytes %d outside [0, 4 GiB)", o.MemTableBytes))
 	}
 	if o.IdleAdvance < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: IdleAdvance %v < 0", o.IdleAdvance))

@@ -55,6 +55,8 @@ type Pipeline[E any] struct {
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
+	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
+	beforeCommit func(CommitPoint) ([]byte, error)
 }
 
 type entityState[E any] struct {
@@ -113,12 +115,11 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err != nil {
 		return nil, err
 	}
-	st, err := store.Open(store.Options{Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold})
+	st, err := openStore(opts)
 	if err != nil {
 		return nil, err
 	}
 	p := &Pipeline[E]{opts: opts, spec: spec, store: st, wm: math.MinInt64, held: btree.NewG(16, heldLess[E])}
-	attach.Register(p, st)
 	for _, ent := range spec.Entities {
 		es := &entityState[E]{ent: ent, first: p.nfeat, horizon: horizon}
 		for _, f := range ent.Features {
@@ -138,23 +139,29 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	p.vals = make([]float64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
 	if err := p.restore(st.Mark()); err != nil {
-		attach.Unregister(p)
+		st.Close()
+		return nil, err
+	}
+	if err := p.checkStored(); err != nil {
 		st.Close()
 		return nil, err
 	}
 	if err := p.checkDefinitions(); err != nil {
-		attach.Unregister(p)
 		st.Close()
 		return nil, err
 	}
-	if len(p.notices) > 0 {
-		// Make the reset durable before any event is processed.
-		if err := p.store.Commit(st.Mark()); err != nil {
-			attach.Unregister(p)
-			st.Close()
+	if len(p.notices) > 0 && !opts.ReadOnly {
+		// Make the reset durable before any event is processed, with the
+		// progress it changed (records of dropped entities).
+		m := st.Mark()
+		m.Extra = p.progress().append(nil)
+		if err := p.store.Commit(m); err != nil {
+				st.Close()
 			return nil, err
 		}
 	}
+	p.notices = append(p.notices, st.Notices()...)
+	attach.Register(p, st)
 	return p, nil
 }
 
@@ -261,7 +268,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
-	if p.err == nil && p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) {
+	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
 		if err := p.Commit(nil); err != nil {
 			return dst, err
 		}
@@ -358,7 +365,7 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 			}
 			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
 			p.c.live++
-		} else if es.expired(sl.Value, p.expiryClock()) {
+		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			sl.Value.aggs = es.fresh()
 		}
 		rec := sl.Value
@@ -397,7 +404,7 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 			aggs = recs[i].aggs
 		} else if sl, err := es.table.Get(key); err != nil {
 			p.err = err
-		} else if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
+		} else if sl != nil && !es.expired(sl.Value, p.expiryClockAt(in.t)) {
 			aggs = sl.Value.aggs
 		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
 			for j := range es.kinds {
@@ -469,6 +476,15 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
 
+// expiryClockAt is the expiry clock for an event at t. A Settled event
+// is applied and answered once the watermark has passed it, possibly far
+// past it after a quiet spell; judged by the current clock, its entity
+// could read as expired although nothing within reach of t had aged out.
+// Judging it at t at the latest keeps its answer as of its own time, and
+// agrees with every sweep: held events are never below the data watermark
+// a commit sweeps by. For Eager events t is at least the clock.
+func (p *Pipeline[E]) expiryClockAt(t int64) int64 { return min(p.expiryClock(), t) }
+
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below
 // the new watermark become late.
@@ -497,6 +513,9 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	if p.opts.ReadOnly {
+		return ErrReadOnly
+	}
 	began := p.opts.MetricsClock.Now()
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
@@ -509,6 +528,9 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	// Only rejections at or after the resume point can be re-read.
 	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
 	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	if err := p.runCommitHook(&m); err != nil {
+		return err
+	}
 	n, err := p.store.Sweep(p.expiryClock())
 	if err != nil {
 		p.err = err
@@ -533,7 +555,7 @@ func (p *Pipeline[E]) Close() error {
 		return nil
 	}
 	var err error
-	if p.err == nil {
+	if p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
 	p.closed = true

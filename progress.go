@@ -166,6 +166,9 @@ type Stats struct {
 	LastCommitDuration  time.Duration
 	TotalCommitDuration time.Duration
 	DiskBytes           uint64 // Pebble's estimate of the store's size
+	// RolledBack: Open found the store's newest log damaged and resumed
+	// from the last commit before the damage (Notices says where).
+	RolledBack bool
 }
 
 // HitRate is the share of record lookups served by the cache (NaN before
@@ -183,6 +186,7 @@ func (p *Pipeline[E]) Stats() Stats {
 		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, NextSeq: p.seen,
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
 		LastCommitDuration: time.Duration(p.lastCommitNanos), TotalCommitDuration: time.Duration(p.commitNanos),
+		RolledBack: p.store.RolledBack(),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n

@@ -153,7 +153,10 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 	n := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead
 	t.store.budget.used += int64(n - sl.size)
 	sl.size = n
-	for t.store.budget.used > t.store.budget.limit && len(t.slots) > 1 {
+	// Records evicted dirty wait in the pending batch and count against
+	// the same budget: eviction makes room for them too, and past half
+	// the budget OverBudget asks the caller to commit.
+	for t.store.budget.used+t.store.pendingBytes() > t.store.budget.limit && len(t.slots) > 1 {
 		if t.hand >= len(t.slots) {
 			t.hand = 0
 		}

@@ -323,8 +323,8 @@ func prefixEnd(p []byte) []byte {
 
 // ensureSalt loads or creates the store's tombstone salt and loads the
 // tombstones into memory (erasures are rare; the set is small).
-func (s *Store) ensureSalt() error {
-	found, err := s.getRaw(metaKey(metaSalt), func(v []byte) error {
+func (s *Store) ensureSalt() (found bool, err error) {
+	found, err = s.getRaw(metaKey(metaSalt), func(v []byte) error {
 		if len(v) != 32 {
 			return fmt.Errorf("%w: salt of %d bytes", ErrCorrupt, len(v))
 		}
@@ -332,30 +332,30 @@ func (s *Store) ensureSalt() error {
 		return nil
 	})
 	if err != nil {
-		return err
+		return found, err
 	}
 	if !found {
 		s.salt = make([]byte, 32)
 		rand.Read(s.salt)
 		if err := s.pending.Set(metaKey(metaSalt), s.salt, nil); err != nil {
-			return s.fail(err)
+			return found, s.fail(err)
 		}
 	}
 	s.tombstones = map[[16]byte]struct{}{}
 	it, err := s.pending.NewIter(&pebble.IterOptions{LowerBound: []byte{tagTombstone}, UpperBound: []byte{tagTombstone + 1}})
 	if err != nil {
-		return s.fail(err)
+		return found, s.fail(err)
 	}
 	for ok := it.First(); ok; ok = it.Next() {
 		var h [16]byte
 		if len(it.Key()) != 17 {
 			it.Close()
-			return fmt.Errorf("%w: tombstone key %q", ErrCorrupt, it.Key())
+			return found, fmt.Errorf("%w: tombstone key %q", ErrCorrupt, it.Key())
 		}
 		copy(h[:], it.Key()[1:])
 		s.tombstones[h] = struct{}{}
 	}
-	return it.Close()
+	return found, it.Close()
 }
 
 func (s *Store) tombstoneHash(table, entity string) [16]byte {

@@ -2,10 +2,18 @@ package store
 
 import (
 	"bytes"
+	"context"
 	"encoding/binary"
 	"errors"
 	"fmt"
 	"io"
+	"os"
+	"runtime"
+	"slices"
+	"strconv"
+	"strings"
+	"sync/atomic"
+	"syscall"
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/bloom"
@@ -53,11 +61,18 @@ type Options struct {
 	FS vfs.FS
 
 	// CacheBytes bounds the approximate memory of decoded records held by
-	// all caches of the store together. Default: 256 MiB.
+	// all caches of the store together, dirty ones included; records
+	// evicted dirty wait for the next commit in a batch whose size
+	// OverBudget reports against the same bound. Default: 256 MiB.
 	CacheBytes int64
 
 	// BlockCacheBytes is Pebble's block cache size. Default: 32 MiB.
 	BlockCacheBytes int64
+
+	// MemTableBytes is the size of one Pebble memtable; Pebble keeps up to
+	// four (one being written, three being flushed) before it stalls
+	// writes. Default: 64 MiB.
+	MemTableBytes int64
 
 	// IngestThreshold is the number of staged writes from which Commit
 	// writes one sorted table and ingests it instead of applying a batch.
@@ -69,9 +84,14 @@ type Options struct {
 	// Default: DefaultIngestThreshold.
 	IngestThreshold int
 
-	// Logger receives Pebble's messages. Default: a logger that discards
-	// informational messages and keeps the last error for Stats; Pebble's
-	// own default would print on every open and exit the process on Fatalf.
+	// ReadOnly opens an existing store for inspection or salvage: nothing
+	// is written (Commit returns ErrReadOnly), and damage that Open would
+	// refuse (ErrDamaged) is reported by Notices instead. Default: false.
+	ReadOnly bool
+
+	// Logger receives Pebble's informational and error messages. Pebble's
+	// fatal messages are handled by the store whatever the logger (see
+	// Store.Close). Default: a logger that discards them.
 	Logger pebble.Logger
 }
 
@@ -83,15 +103,15 @@ func (o *Options) EnsureDefaults() {
 	if o.BlockCacheBytes == 0 {
 		o.BlockCacheBytes = 32 << 20
 	}
+	if o.MemTableBytes == 0 {
+		o.MemTableBytes = 64 << 20
+	}
 	if o.FS == nil {
 		if o.Dir == "" {
 			o.FS = vfs.NewMem()
 		} else {
 			o.FS = vfs.Default
 		}
-	}
-	if o.Logger == nil {
-		o.Logger = quietLogger{}
 	}
 	if o.IngestThreshold == 0 {
 		o.IngestThreshold = DefaultIngestThreshold
@@ -107,33 +127,107 @@ func (o *Options) Validate() error {
 	if o.BlockCacheBytes < 0 {
 		errs = append(errs, fmt.Errorf("state: BlockCacheBytes %d < 0", o.BlockCacheBytes))
 	}
+	if o.MemTableBytes < 0 || o.MemTableBytes >= 4<<30 {
+		errs = append(errs, fmt.Errorf("state: MemTableBytes %d outside [0, 4 GiB)", o.MemTableBytes))
+	}
 	return errors.Join(errs...)
 }
 
-// quietLogger drops Pebble's chatter. Fatalf panics with a fatalError
-// instead of exiting the process: Pebble calls it when a write to the log
-// fails inside a commit, and the Store recovers that panic on its own
-// goroutine and turns it into a sticky ErrFailed. (A Fatalf on one of
-// Pebble's background goroutines still ends the process, as Pebble's own
-// logger would.)
-type quietLogger struct{}
+// logger is the Pebble logger of one store. Pebble calls Fatalf where it
+// cannot continue (a failed write of its MANIFEST, a failed log write
+// inside a commit) and expects the process to end there.
+//
+// On a goroutine inside a call into the Store, Fatalf panics with a
+// fatalError that the call's guard recovers into the store's sticky
+// error; the store then abandons the database (see Store.Close). On one of
+// Pebble's own goroutines nothing can recover the panic, so Fatalf prints
+// a readable message naming the store and ends the process with exit code
+// FatalExitCode, as Pebble's own logger would but legibly.
+//
+// Damage Pebble finds in a table is not fatal here: the store's
+// DataCorruption handler records it and the read that found it returns an
+// error naming the file.
+type logger struct {
+	dir  string
+	user pebble.Logger
+	// bg is the first error from Pebble's background work that stops the
+	// store (damage, a full disk); the store's next call returns it.
+	bg atomic.Pointer[error]
+}
 
-func (quietLogger) Infof(string, ...any)  {}
-func (quietLogger) Errorf(string, ...any) {}
-func (quietLogger) Fatalf(format string, args ...any) {
-	panic(fatalError{fmt.Errorf("pebble: "+format, args...)})
+// FatalExitCode is the exit code of a process ended by a fatal storage
+// error on one of Pebble's background goroutines.
+const FatalExitCode = 70
+
+func (l *logger) Infof(format string, args ...any) {
+	if l.user != nil {
+		l.user.Infof(format, args...)
+	}
+}
+
+func (l *logger) Errorf(format string, args ...any) {
+	if l.user != nil {
+		l.user.Errorf(format, args...)
+	}
+}
+
+func (l *logger) Fatalf(format string, args ...any) {
+	err := fmt.Errorf("pebble: "+format, args...)
+	if l.user != nil {
+		l.user.Errorf("fatal: %v", err)
+	}
+	if inStoreCall() {
+		panic(fatalError{err})
+	}
+	fmt.Fprintf(os.Stderr, "tallyward: fatal storage error in store %q on a background task the storage engine cannot continue; "+
+		"the process stops, and reopening the store resumes from its last commit: %v\n", l.dir, err)
+	os.Exit(FatalExitCode)
+}
+
+// stop records err as the error that stops the store, if none was.
+func (l *logger) stop(err error) { l.bg.CompareAndSwap(nil, &err) }
+
+func (l *logger) background(err error) {
+	l.Errorf("background: %v", err)
+	if pebble.IsCorruptionError(err) {
+		l.stop(fmt.Errorf("%w: %v", ErrDamaged, err))
+	} else if errors.Is(err, syscall.ENOSPC) {
+		l.stop(fmt.Errorf("%w: %v", ErrNoSpace, err))
+	}
+}
+
+func (l *logger) corruption(info pebble.DataCorruptionInfo) {
+	l.Errorf("%v", info)
+	l.stop(fmt.Errorf("%w: %s: %v", ErrDamaged, info.Path, info.Details))
+}
+
+// inStoreCall reports whether the current goroutine is inside a call of
+// this package (and so under a guard). Only Fatalf asks, which is rare.
+func inStoreCall() bool {
+	buf := make([]byte, 64<<10)
+	buf = buf[:runtime.Stack(buf, false)]
+	for line := range bytes.Lines(buf) {
+		if bytes.Contains(line, []byte("tallyward/internal/store.")) && !bytes.Contains(line, []byte("store.(*logger)")) &&
+			!bytes.HasPrefix(line, []byte("created by")) {
+			return true
+		}
+	}
+	return false
 }
 
 type fatalError struct{ err error }
 
 // guard turns a Pebble fatal panic raised on the caller's goroutine into
-// the store's sticky error. Use as: defer s.guard(&err).
+// the store's sticky error and abandons the database. Use as:
+// defer s.guard(&err).
 func (s *Store) guard(err *error) {
 	if r := recover(); r != nil {
 		f, ok := r.(fatalError)
 		if !ok {
 			panic(r)
 		}
+		s.abandoned = true
+		s.fs.fence()
 		*err = s.fail(f.err)
 	}
 }
@@ -147,11 +241,20 @@ type Store struct {
 	pending *pebble.Batch // indexed; reads see it; written by the next Commit
 	popts   *pebble.Options
 	dir     string
+	fs      *storeFS
+	lock    *pebble.Lock
+	log     *logger
 	mark    Mark
 	budget  *budget
 	tables  []flusher
 	err     error // sticky: set once a write fails
 	closed  bool
+	// abandoned: Pebble failed fatally inside a call; the database is
+	// never touched again (Close releases the lock, not the database).
+	abandoned bool
+
+	notices  []string
+	rollback bool
 
 	salt       []byte
 	tombstones map[[16]byte]struct{}
@@ -168,25 +271,66 @@ type flusher interface {
 
 // Open opens (creating if needed) the store described by opts and reads its
 // Mark. Use [Store.Mark] to learn where the source must resume.
-func Open(opts Options) (*Store, error) {
+//
+// Before Pebble opens the directory, Open refuses a directory of unrelated
+// files (ErrNotStore), one locked by another process (ErrLocked), a damaged
+// MANIFEST (ErrDamaged) and, when the log must be replayed, a disk without
+// room for it (ErrNoSpace); a write-ahead log that ends in damage means the
+// store resumes from an earlier commit, which Notices and RolledBack
+// report. After it opens, the Mark and the store's salt, written by the
+// same first commit, must both be readable or both absent. Callers check
+// more (record counts against their progress) with CountRecords.
+func Open(opts Options) (_ *Store, err error) {
 	opts.EnsureDefaults()
 	if err := opts.Validate(); err != nil {
 		return nil, err
 	}
+	dir := opts.Dir
+	if dir == "" {
+		dir = "tallyward"
+	}
+	fs := &storeFS{FS: opts.FS}
+	if !opts.ReadOnly {
+		if err := fs.MkdirAll(dir, 0o755); err != nil {
+			return nil, fmt.Errorf("state: open %q: %w", dir, err)
+		}
+	}
+	in, err := inspect(fs, dir, opts.ReadOnly)
+	if err != nil {
+		return nil, err
+	}
+	if opts.ReadOnly && !in.exists {
+		return nil, fmt.Errorf("state: open %q read-only: %w", dir, errors.New("no store there"))
+	}
+	log := &logger{dir: dir, user: opts.Logger}
 	cache := pebble.NewCache(opts.BlockCacheBytes)
 	popts := &pebble.Options{
-		FS:                 opts.FS,
+		FS:                 fs,
 		Cache:              cache,
 		FormatMajorVersion: FormatMajorVersion,
-		Logger:             opts.Logger,
+		Logger:             log,
+		Lock:               in.lock,
+		ReadOnly:           opts.ReadOnly,
+		EventListener: &pebble.EventListener{
+			BackgroundError: log.background,
+			DataCorruption:  log.corruption,
+		},
 		// A commit writes every dirty record in one batch; a memtable
 		// that holds several such batches keeps them from being flushed
 		// as oversized batches one by one, and the stop threshold leaves
 		// room for a flush to finish while the next commit is written.
-		MemTableSize:                64 << 20,
+		MemTableSize:                uint64(opts.MemTableBytes),
 		MemTableStopWritesThreshold: 4,
 		L0CompactionThreshold:       4,
 		L0StopWritesThreshold:       24,
+		// Table bounds are keys, and every MANIFEST edit keeps the bounds
+		// of the tables it adds until the MANIFEST is rewritten as a
+		// snapshot of the live tables. The smallest size threshold makes
+		// Pebble rewrite it whenever the edits since the last snapshot
+		// name more tables than the snapshot (or the store) holds, so a
+		// deleted key's bounds leave the MANIFEST soon after the tables
+		// holding it are compacted away (see Compact).
+		MaxManifestFileSize: 1,
 	}
 	// A lookup of an entity never seen before is common; bloom filters on
 	// every level make it cheap.
@@ -194,33 +338,126 @@ func Open(opts Options) (*Store, error) {
 		popts.Levels[i].FilterPolicy = bloom.FilterPolicy(10)
 	}
 	popts.EnsureDefaults()
-	dir := opts.Dir
-	if dir == "" {
-		dir = "tallyward"
+	if err := checkOptions(fs, dir, in.options, popts); err != nil {
+		if in.lock != nil {
+			in.lock.Close()
+		}
+		cache.Unref()
+		return nil, err
 	}
-	db, err := pebble.Open(dir, popts)
+	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes},
+		notices: in.notices, rollback: in.rollback}
+	defer func() {
+		if err != nil {
+			s.release(nil)
+		}
+	}()
+	s.db, err = s.openDB(cache)
 	cache.Unref()
 	if err != nil {
-		return nil, fmt.Errorf("state: open %q: %w", dir, err)
+		return nil, err
 	}
-	s := &Store{db: db, opts: opts, popts: popts, dir: dir, budget: &budget{limit: opts.CacheBytes}}
-	s.pending = db.NewIndexedBatch()
+	s.pending = s.db.NewIndexedBatch()
 	var m Mark
 	found, err := s.getRaw(metaKey(metaMark), func(v []byte) error { return m.UnmarshalBinary(v) })
 	if err != nil {
-		s.pending.Close()
-		db.Close()
 		return nil, err
 	}
 	if found {
 		s.mark = m
 	}
-	if err := s.ensureSalt(); err != nil {
-		s.pending.Close()
-		db.Close()
+	salted, err := s.ensureSalt()
+	if err != nil {
 		return nil, err
 	}
+	if found != salted {
+		what := map[bool]string{true: "the progress mark is readable but the salt is not", false: "the salt is readable but the progress mark is not"}[found]
+		if err := s.Damaged(fmt.Sprintf("%s, though the first commit wrote both", what)); err != nil {
+			return nil, err
+		}
+	}
 	return s, nil
+}
+
+// openDB opens Pebble, turning a fatal error during the open into an error.
+func (s *Store) openDB(cache *pebble.Cache) (db *pebble.DB, err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			f, ok := r.(fatalError)
+			if !ok {
+				panic(r)
+			}
+			s.abandoned = true
+			s.fs.fence()
+			err = fmt.Errorf("state: open %q: %w", s.dir, f.err)
+		}
+	}()
+	db, err = pebble.Open(s.dir, s.popts)
+	if err != nil {
+		if pebble.IsCorruptionError(err) {
+			return nil, fmt.Errorf("%w: open %q: %w", ErrDamaged, s.dir, err)
+		}
+		if errors.Is(err, syscall.ENOSPC) {
+			return nil, fmt.Errorf("%w: open %q: %w", ErrNoSpace, s.dir, err)
+		}
+		return nil, fmt.Errorf("state: open %q: %w", s.dir, err)
+	}
+	if e := s.log.bg.Load(); e != nil {
+		db.Close()
+		return nil, *e
+	}
+	return db, nil
+}
+
+// Damaged reports damage found by a check of the readable state: an error
+// wrapping ErrDamaged, or, for a store opened read-only, nil and a notice.
+func (s *Store) Damaged(what string) error {
+	err := fmt.Errorf("%w: %q: %s; open read-only to inspect or salvage", ErrDamaged, s.dir, what)
+	if s.opts.ReadOnly {
+		s.notices = append(s.notices, err.Error())
+		return nil
+	}
+	return err
+}
+
+// Notices returns the warnings Open raised: a rollback to an earlier
+// commit, and, for a store opened read-only, the damage it found.
+func (s *Store) Notices() []string { return slices.Clone(s.notices) }
+
+// RolledBack reports whether Open found the newest write-ahead log
+// damaged, so that the store resumed from a commit before the damage
+// rather than from the last one written.
+func (s *Store) RolledBack() bool { return s.rollback }
+
+// ReadOnly reports whether the store was opened read-only.
+func (s *Store) ReadOnly() bool { return s.opts.ReadOnly }
+
+// release frees what Open or Close holds: the database unless it was
+// abandoned, then the directory lock. after, if set, runs between the two
+// when the database closed without error.
+func (s *Store) release(after func() error) error {
+	var err error
+	if s.pending != nil {
+		s.pending.Close()
+		s.pending = nil
+	}
+	if s.db != nil && !s.abandoned {
+		err = s.db.Close()
+		if err == nil && after != nil {
+			err = after()
+		}
+	}
+	s.db = nil
+	if s.lock != nil {
+		if s.abandoned {
+			// The database holds a reference to the lock that its
+			// Close would have dropped; the files are fenced.
+			s.lock.Close()
+		}
+		s.lock.Close()
+		s.lock = nil
+	}
+	return err
 }
 
 func (s *Store) dirName() string { return s.dir }
@@ -238,6 +475,9 @@ func (s *Store) check() error {
 	}
 	if s.err != nil {
 		return s.err
+	}
+	if e := s.log.bg.Load(); e != nil {
+		return s.fail(*e)
 	}
 	return nil
 }
@@ -264,6 +504,9 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 		return false, nil
 	}
 	if err != nil {
+		if pebble.IsCorruptionError(err) {
+			err = fmt.Errorf("%w: %w", ErrDamaged, err)
+		}
 		return false, s.fail(fmt.Errorf("state: get %q: %w", key, err))
 	}
 	err = fn(v)
@@ -337,6 +580,9 @@ func (s *Store) Commit(m Mark) (err error) {
 	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return err
+	}
+	if s.opts.ReadOnly {
+		return ErrReadOnly
 	}
 	n := int(s.pending.Count())
 	for _, t := range s.tables {
@@ -413,18 +659,115 @@ func (s *Store) Sweep(w int64) (_ int, err error) {
 
 // Close discards anything not committed and closes the database. After a
 // failure it still releases what it can and returns the failure.
+//
+// After a fatal storage error inside a call (see logger), the database is
+// abandoned rather than closed: Pebble does not unwind such a failure, and
+// closing it would panic on the references it still holds. Its files are
+// fenced (nothing it still runs can change them), the directory lock is
+// released, and a later Open resumes from the last commit; the abandoned
+// database's memory and goroutines stay until the process ends.
+//
+// A healthy Close also removes the write-ahead logs Pebble keeps for
+// reuse: they hold old commits, erased keys included.
 func (s *Store) Close() (err error) {
 	if s.closed {
 		return nil
 	}
 	s.closed = true
 	defer s.guard(&err)
-	s.pending.Close()
-	err = s.db.Close()
+	var keep int64 = -1
+	if !s.abandoned && !s.opts.ReadOnly {
+		keep = s.db.Metrics().WAL.Files
+	}
+	err = s.release(func() error {
+		if keep < 0 || s.err != nil {
+			return nil
+		}
+		if err := removeSpareLogs(s.fs, s.dir, int(keep)); err != nil {
+			return err
+		}
+		if err := removeOldManifests(s.fs, s.dir); err != nil {
+			return err
+		}
+		return writeClosed(s.fs, s.dir)
+	})
 	if s.err != nil {
 		err = errors.Join(s.err, err)
 	}
 	return err
+}
+
+// removeOldManifests removes the MANIFEST files of a closed store but
+// the current one; Pebble keeps the previous one for debugging, and it
+// names keys.
+func removeOldManifests(fs vfs.FS, dir string) error {
+	desc, err := pebble.Peek(dir, fs)
+	if err != nil || !desc.Exists {
+		return err
+	}
+	ls, err := fs.List(dir)
+	if err != nil {
+		return err
+	}
+	for _, n := range ls {
+		if strings.HasPrefix(n, "MANIFEST-") && fs.PathJoin(dir, n) != desc.ManifestFilename {
+			if err := fs.Remove(fs.PathJoin(dir, n)); err != nil {
+				return err
+			}
+		}
+	}
+	return nil
+}
+
+// removeSpareLogs removes every write-ahead log of a closed store but the
+// newest keep, which hold its unflushed commits.
+func removeSpareLogs(fs vfs.FS, dir string, keep int) error {
+	ls, err := fs.List(dir)
+	if err != nil {
+		return err
+	}
+	var logs []uint64
+	for _, n := range ls {
+		if num, ok := strings.CutSuffix(n, ".log"); ok {
+			if v, err := strconv.ParseUint(num, 10, 64); err == nil {
+				logs = append(logs, v)
+			}
+		}
+	}
+	slices.Sort(logs)
+	for _, n := range logs[:max(len(logs)-keep, 0)] {
+		if err := fs.Remove(fs.PathJoin(dir, fmt.Sprintf("%06d.log", n))); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+// Compact flushes the memtable (starting a new write-ahead log) and
+// compacts every table into the last level, so that deleted records and
+// their deletion markers leave the store's files: with Close, which
+// removes the logs Pebble keeps for reuse, it is what makes a deletion
+// leave no trace of the key. It rewrites the whole store.
+func (s *Store) Compact() (err error) {
+	defer s.guard(&err)
+	if err := s.check(); err != nil {
+		return err
+	}
+	if s.opts.ReadOnly {
+		return ErrReadOnly
+	}
+	if err := s.db.Flush(); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
+	}
+	if err := s.db.Compact(context.Background(), []byte{0}, []byte{0xff, 0xff}, true); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
+	}
+	// One more MANIFEST edit after the compaction's: it starts a MANIFEST
+	// whose snapshot lists only the compacted tables.
+	if err := s.db.Flush(); err != nil {
+		return fmt.Errorf("state: compact: %w", err)
+	}
+	return nil
 }
 
 // DB exposes the underlying database for maintenance (compaction, raw
@@ -433,6 +776,25 @@ func (s *Store) DB() *pebble.DB { return s.db }
 
 // Commits returns the number of successful commits since Open.
 func (s *Store) Commits() uint64 { return s.commits }
+
+// pendingBytes approximates the memory of the pending batch: its
+// encoded writes plus the batch index, about a skiplist node per write.
+func (s *Store) pendingBytes() int64 {
+	return int64(s.pending.Len()) + int64(s.pending.Count())*pendingNodeBytes
+}
+
+// pendingNodeBytes approximates the index memory per write of an indexed
+// batch (a skiplist node with its tower, and arena slack).
+const pendingNodeBytes = 64
+
+// OverBudget reports whether the changes waiting for the next commit in
+// the pending batch (records evicted dirty, deletions, staged writes) hold
+// more than half of Options.CacheBytes. The cache then holds the rest, and
+// the caller must commit to keep memory within the budget: eviction can
+// only move dirty records into the batch, not out of memory.
+func (s *Store) OverBudget() bool {
+	return s.pending != nil && 2*s.pendingBytes() > s.budget.limit
+}
 
 // CachedBytes returns the approximate memory held by all record caches.
 func (s *Store) CachedBytes() int64 { return s.budget.used }

@@ -164,9 +164,10 @@ func TestCorruptStoredValuesNameTheKey(t *testing.T) {
 }
 
 func TestOptionsValidateReportsAll(t *testing.T) {
-	o := Options{CacheBytes: -1, BlockCacheBytes: -2}
+	o := Options{CacheBytes: -1, BlockCacheBytes: -2, MemTableBytes: -3}
 	err := o.Validate()
-	if err == nil || !strings.Contains(err.Error(), "CacheBytes -1") || !strings.Contains(err.Error(), "BlockCacheBytes -2") {
+	if err == nil || !strings.Contains(err.Error(), "CacheBytes -1") || !strings.Contains(err.Error(), "BlockCacheBytes -2") ||
+		!strings.Contains(err.Error(), "MemTableBytes -3") {
 		t.Fatalf("validate: %v", err)
 	}
 	if _, err := Open(o); err == nil {
@@ -174,7 +175,7 @@ func TestOptionsValidateReportsAll(t *testing.T) {
 	}
 	var z Options
 	z.EnsureDefaults()
-	if z.CacheBytes <= 0 || z.BlockCacheBytes <= 0 || z.FS == nil || z.Logger == nil || z.Validate() != nil {
+	if z.CacheBytes <= 0 || z.BlockCacheBytes <= 0 || z.MemTableBytes <= 0 || z.FS == nil || z.Validate() != nil {
 		t.Fatalf("defaults: %+v", z)
 	}
 }
