@@ -156,7 +156,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		m := st.Mark()
 		m.Extra = p.progress().append(nil)
 		if err := p.store.Commit(m); err != nil {
-				st.Close()
+			st.Close()
 			return nil, err
 		}
 	}
