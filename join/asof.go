@@ -482,3 +482,32 @@ func (j *AsOf[E]) load(k, v []byte) error {
 	}
 	return nil
 }
+
+// Forget drops the values and waiting left events the join holds for key
+// (say, with Pipeline.Erase of the entity the key names: call Forget
+// first, so the commit Erase makes removes both). Waiting left events of
+// the key are dropped, not answered. Later events naming the key are
+// joined again; a caller that must keep the key out filters them before
+// the pipeline.
+func (j *AsOf[E]) Forget(key string) {
+	if k := j.keys[key]; k != nil {
+		if j.spec.TTL > 0 {
+			j.expiry.Delete(k)
+		}
+		delete(j.keys, key)
+		j.bytes -= k.size()
+		j.dirtyK[key] = struct{}{}
+	}
+	var drop []*asofLeft[E]
+	for l := range j.waiting.Ascend {
+		if l.key == key {
+			drop = append(drop, l)
+		}
+	}
+	for _, l := range drop {
+		j.waiting.Delete(l)
+		delete(j.byOrd, l.ord)
+		j.bytes -= l.size()
+		j.dirtyQ[l.ord] = struct{}{}
+	}
+}

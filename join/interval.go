@@ -474,3 +474,23 @@ func (j *Interval[E]) load(k, v []byte) error {
 	delete(j.dirty, e.ord)
 	return nil
 }
+
+// Forget drops every event the join holds for key (say, with
+// Pipeline.Erase of the entity the key names: call Forget first, so the
+// commit Erase makes removes both). Matches not yet emitted for the key
+// are dropped, not emitted. Later events naming the key are joined again;
+// a caller that must keep the key out filters them before the pipeline.
+func (j *Interval[E]) Forget(key string) {
+	for _, idx := range []map[string][]*ivEvent[E]{j.lefts, j.rights} {
+		for _, e := range slices.Clone(idx[key]) {
+			if e.left {
+				j.lexp.Delete(e)
+			} else {
+				j.rexp.Delete(e)
+			}
+			j.drop(e, idx)
+		}
+	}
+	// Rights of other keys never hold this key's events: pairs are
+	// formed within one key only.
+}
