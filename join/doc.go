@@ -43,6 +43,9 @@
 //     rows are flushed to their sink before each commit; TrimJSONLines
 //     cuts a JSON lines file back to the committed rows on restart, so the
 //     file holds each row exactly once.
+//   - Erasure. Interval.Forget and AsOf.Forget drop what a join holds for
+//     a key; call them before Pipeline.Erase, whose commit then removes
+//     both. The joins keep no tombstone of their own.
 //   - Bounded. A label join holds the events of the last M (plus the
 //     disorder); an interval join the events of the last Hi − Lo; an as-of
 //     join one value per key plus the disorder window (TTL bounds the keys).
