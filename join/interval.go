@@ -100,7 +100,10 @@ type IntervalStats struct {
 // is emitted, in (left time, encoding) order; with a Settled pipeline the
 // output depends only on the events, not their arrival order within
 // MaxDisorder. Eager: each pair is emitted when found (lowest latency; the
-// order follows arrival).
+// order follows arrival). Flush, the end of a finite replay, releases
+// every left event, so the last ones carry the right events the history
+// holds even where their window reaches past its end (unlike the label
+// join, which holds what has not matured).
 //
 // Held events are encoded with Codec and kept in the pipeline's store
 // under the join's name, written by each commit; a restart resumes from
