@@ -35,3 +35,23 @@ func TestJSONLinesFormatAndTrim(t *testing.T) {
 	require.True(t, bytes.HasPrefix(buf.Bytes(), got))
 	require.NoError(t, TrimJSONLines(filepath.Join(t.TempDir(), "missing"), 0))
 }
+
+// TrimJSONLines on any file content: no panic, and the file is only ever
+// cut, never rewritten.
+func FuzzTrimJSONLines(f *testing.F) {
+	f.Add([]byte("{\"seq\":0,\"id\":\"a\"}\n{\"seq\":1,\"id\":\"b\"}\n"), uint64(1))
+	f.Add([]byte("{\"seq\":0,\"id\":\"a\"}\n{\"seq\":"), uint64(5))
+	f.Add([]byte("not a row\n"), uint64(0))
+	f.Fuzz(func(t *testing.T, content []byte, next uint64) {
+		path := filepath.Join(t.TempDir(), "rows.jsonl")
+		require.NoError(t, os.WriteFile(path, content, 0o644))
+		err := TrimJSONLines(path, next)
+		got, rerr := os.ReadFile(path)
+		require.NoError(t, rerr)
+		if err != nil {
+			require.Equal(t, content, got, "a refused file is left as it was")
+			return
+		}
+		require.True(t, bytes.HasPrefix(content, got))
+	})
+}
