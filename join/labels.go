@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"slices"
 	"strings"
 	"time"
 
@@ -259,8 +258,13 @@ func (j *Labels[E]) Emit(r tallyward.Row[E]) {
 		j.st.Duplicates++
 		return
 	}
-	h := &heldEvent{id: id, t: r.Time, due: sat.Add(r.Time, j.maturity), vals: slices.Clone(r.Values),
-		labels: make([]float64, len(j.spec.Labels)), at: make([]int64, len(j.spec.Labels))}
+	// One allocation for the row and the labels, which live and die
+	// together.
+	nv, nl := len(r.Values), len(j.spec.Labels)
+	buf := make([]float64, nv+nl)
+	copy(buf, r.Values)
+	h := &heldEvent{id: id, t: r.Time, due: sat.Add(r.Time, j.maturity), vals: buf[:nv:nv],
+		labels: buf[nv:], at: make([]int64, nl)}
 	for i, l := range j.spec.Labels {
 		h.labels[i] = l.Missing
 	}
