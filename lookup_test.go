@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"github.com/stretchr/testify/require"
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // Lookups answer exactly what a row answers (same as-of rule, same
@@ -59,7 +60,7 @@ func TestLookupMatchesRowsAndChangesNothing(t *testing.T) {
 		require.True(t, exact, "t >= watermark-1 is exact")
 		want, res := 0, int64(time.Minute)
 		for _, ti := range seen[e.Account] {
-			if ti <= q && floorDiv(ti, res) > floorDiv(q, res)-60 {
+			if ti <= q && sat.FloorDiv(ti, res) > sat.FloorDiv(q, res)-60 {
 				want++
 			}
 		}

@@ -78,6 +78,18 @@ func (pr progress) append(dst []byte) []byte {
 	return dst
 }
 
+// decode reads what append wrote; pr is unchanged on error. Layout,
+// version 1 (docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	byte     flags: 1 = has newest time, 2 = flushed
+//	varint   newest event time
+//	uvarint  events, applied, emitted, late, tooOld, live, expired,
+//	         erased, erasedSkips
+//	uvarint  number of reasons r, then r uvarint rejection counts (counts
+//	         of reasons this build does not know are read and dropped)
+//	uvarint  number of future-rejected seqs k, then k uvarint deltas
+//	then end of input
 func (pr *progress) decode(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != progressVersion1 {
@@ -159,10 +171,12 @@ type Stats struct {
 	CachedBytes  int64  // their approximate memory
 	CacheHits    uint64
 	CacheMisses  uint64
-	Commits      uint64 // commits since Open
-	// LastCommitDuration and TotalCommitDuration are the latency of the
-	// last commit and the total spent committing since Open (by
-	// Options.MetricsClock; for metrics only).
+	Commits      uint64 // commits since Open that are durable
+	// LastCommitDuration and TotalCommitDuration are the time the caller
+	// spent in the last commit and in all commits since Open (by
+	// Options.MetricsClock; for metrics only). An automatic commit is
+	// written in the background: its caller's time is the sweep, the cut,
+	// and any wait for the previous commit to land.
 	LastCommitDuration  time.Duration
 	TotalCommitDuration time.Duration
 	DiskBytes           uint64 // Pebble's estimate of the store's size

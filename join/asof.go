@@ -360,10 +360,7 @@ const asofVersion1 = 1
 // The join as a store.Part, kept off the public method set.
 type asofPart[E any] struct{ j *AsOf[E] }
 
-func (p asofPart[E]) Pending() int                    { return p.j.pending() }
 func (p asofPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
-
-func (j *AsOf[E]) pending() int { return len(j.dirtyK) + len(j.dirtyQ) + 1 }
 
 // stage writes what changed since the last commit.
 func (j *AsOf[E]) stage(w *store.PartWriter) error {

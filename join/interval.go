@@ -368,10 +368,7 @@ const intervalVersion1 = 1
 // The join as a store.Part, kept off the public method set.
 type intervalPart[E any] struct{ j *Interval[E] }
 
-func (p intervalPart[E]) Pending() int                    { return p.j.pending() }
 func (p intervalPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
-
-func (j *Interval[E]) pending() int { return len(j.dirty) + 1 }
 
 // stage writes what changed since the last commit.
 func (j *Interval[E]) stage(w *store.PartWriter) error {

@@ -353,10 +353,7 @@ const labelVersion1 = 1
 // The join as a store.Part, kept off the public method set.
 type labelPart[E any] struct{ j *Labels[E] }
 
-func (p labelPart[E]) Pending() int                    { return p.j.pending() }
 func (p labelPart[E]) Stage(w *store.PartWriter) error { return p.j.stage(w) }
-
-func (j *Labels[E]) pending() int { return len(j.dirty) + 1 }
 
 // stage flushes the sink (rows a commit covers must be durable first),
 // then writes what changed since the last commit.

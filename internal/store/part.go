@@ -18,15 +18,12 @@ import (
 const tagPart byte = 0x06
 
 // Part is the state of one such component. The store calls Stage during
-// every Commit, before the commit is written: the part writes every change
-// made since the last commit through w, and may make its own output
-// durable first (what it emitted must not be lost once the commit that
-// covers it is written).
+// every Commit, on the caller's goroutine, before the commit is written:
+// the part writes every change made since the last commit through w, and
+// may make its own output durable first (what it emitted must not be lost
+// once the commit that covers it is written).
 type Part interface {
 	Stage(w *PartWriter) error
-	// Pending is about how many writes the next Stage makes; it counts
-	// towards the ingest threshold.
-	Pending() int
 }
 
 // PartWriter writes one part's keys into the commit being built.
@@ -54,15 +51,18 @@ func partPrefix(name string) []byte {
 	return append(p, name...)
 }
 
-// partFlusher adapts a Part to the commit loop.
+// partFlusher adapts a Part to the commit's two halves: the part is not
+// safe for concurrent use, so all of its work happens in the freeze, on
+// the caller's goroutine, straight into the commit's collector; the half
+// on the commit goroutine has nothing left to do.
 type partFlusher struct {
 	name string
 	part Part
 	pw   PartWriter
 }
 
-func (f *partFlusher) flushDirty(b writer) error {
-	f.pw.w = b
+func (f *partFlusher) freezeDirty(c *collector) error {
+	f.pw.w = c
 	defer func() { f.pw.w = nil }()
 	if err := f.part.Stage(&f.pw); err != nil {
 		return fmt.Errorf("state: part %q: %w", f.name, err)
@@ -70,7 +70,11 @@ func (f *partFlusher) flushDirty(b writer) error {
 	return nil
 }
 
-func (f *partFlusher) dirtyCount() int { return f.part.Pending() }
+func (f *partFlusher) encodeFrozen(*collector) error { return nil }
+
+// frozenCount is 0: the part's writes are already in the collector, where
+// the ingest threshold counts them.
+func (f *partFlusher) frozenCount() int { return 0 }
 
 // AddPart registers p under name; every later Commit stages it. A name
 // may be registered once per Store.
@@ -87,10 +91,11 @@ func (s *Store) AddPart(name string, p Part) error {
 	return nil
 }
 
-// ScanPart calls fn with every committed (or staged) key of part name, in
-// key order, without the part prefix. fn must not retain its arguments.
+// ScanPart calls fn with every committed key of part name, in key order,
+// without the part prefix, after waiting for a commit in flight. fn must
+// not retain its arguments.
 func (s *Store) ScanPart(name string, fn func(key, value []byte) error) error {
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return err
 	}
 	prefix := partPrefix(name)

@@ -21,7 +21,6 @@ func newMapPart() *mapPart { return &mapPart{m: map[string]string{}, dirty: map[
 
 func (p *mapPart) set(k, v string) { p.m[k] = v; p.dirty[k] = true }
 func (p *mapPart) del(k string)    { delete(p.m, k); p.dirty[k] = true }
-func (p *mapPart) Pending() int    { return len(p.dirty) }
 
 func (p *mapPart) Stage(w *PartWriter) error {
 	for k := range p.dirty {
