@@ -31,7 +31,8 @@ type CommitPoint struct {
 //
 // If fn fails, the commit is not written and the pipeline fails: later
 // calls return the error. fn runs on the goroutine that called Commit (or
-// Process) and must not call back into the pipeline. nil removes the hook.
+// Process) and must not call back into the pipeline: such a call returns
+// ErrReentered. nil removes the hook.
 func (p *Pipeline[E]) SetCommitHook(fn func(CommitPoint) (cursor []byte, err error)) {
 	p.beforeCommit = fn
 }
@@ -40,7 +41,13 @@ func (p *Pipeline[E]) runCommitHook(m *store.Mark) error {
 	if p.beforeCommit == nil {
 		return nil
 	}
-	cursor, err := p.beforeCommit(CommitPoint{Resume: m.Resume, NextSeq: m.Seen, Watermark: m.Watermark, Emitted: p.c.emitted})
+	var cursor []byte
+	var err error
+	// A callback like Emit: a call back into the pipeline returns
+	// ErrReentered.
+	runCallback(&p.emitting, func() {
+		cursor, err = p.beforeCommit(CommitPoint{Resume: m.Resume, NextSeq: m.Seen, Watermark: m.Watermark, Emitted: p.c.emitted})
+	})
 	if err != nil {
 		p.err = err
 		return err

@@ -158,8 +158,14 @@ func TestSpecFileEqualsGoAPI(t *testing.T) {
 		}
 		fevs = append(fevs, fe)
 	}
+	// One item key for both runs: item hashes, and so the rows of item
+	// kinds, depend on it.
+	key := []byte("specfile test ke")
+	gopts.ItemKey = key
+	fopts := f.Options
+	fopts.ItemKey = key
 	want := runRows(t, gspec, gopts, evs)
-	got := runRows(t, f.Spec, f.Options, fevs)
+	got := runRows(t, f.Spec, fopts, fevs)
 	if len(got) != len(want) || len(got) == 0 {
 		t.Fatalf("%d rows from the spec file, %d from Go", len(got), len(want))
 	}
