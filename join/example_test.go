@@ -23,8 +23,12 @@ type Dispute struct {
 
 type Ev = join.Either[Payment, Dispute]
 
+// at is a time of the invented day, m minutes after 09:00 UTC.
+func at(m int64) int64 {
+	return time.Date(2026, 3, 2, 9, 0, 0, 0, time.UTC).UnixNano() + m*int64(time.Minute)
+}
+
 func Example_labels() {
-	min := int64(time.Minute)
 	spec := tallyward.Spec[Ev]{
 		Time: join.Both(func(p Payment) int64 { return p.At }, func(d Dispute) int64 { return d.At }),
 		Entities: []tallyward.Entity[Ev]{{Name: "card", Key: join.Both[Payment, Dispute](func(p Payment) string { return p.Card }, nil),
@@ -41,17 +45,17 @@ func Example_labels() {
 		panic(err)
 	}
 	for _, e := range []Ev{
-		join.OfA[Payment, Dispute](Payment{ID: "p1", Card: "c1", At: 1 * min}),
-		join.OfA[Payment, Dispute](Payment{ID: "p2", Card: "c1", At: 2 * min}),
-		join.OfB[Payment](Dispute{Payment: "p2", At: 20 * min}),
-		join.OfA[Payment, Dispute](Payment{ID: "p3", Card: "c2", At: 40 * min}),
+		join.OfA[Payment, Dispute](Payment{ID: "p1", Card: "c1", At: at(1)}),
+		join.OfA[Payment, Dispute](Payment{ID: "p2", Card: "c1", At: at(2)}),
+		join.OfB[Payment](Dispute{Payment: "p2", At: at(20)}),
+		join.OfA[Payment, Dispute](Payment{ID: "p3", Card: "c2", At: at(40)}),
 	} {
 		p.Process(e)
 	}
 	p.Close() // commits, which flushes the sink
 	// Output:
-	// {"seq":0,"id":"p1","time":60000000000,"features":{"card.pays_1h":1},"labels":{"disputed":0}}
-	// {"seq":1,"id":"p2","time":120000000000,"features":{"card.pays_1h":2},"labels":{"disputed":1}}
+	// {"seq":0,"id":"p1","time":1772442060000000000,"features":{"card.pays_1h":1},"labels":{"disputed":0}}
+	// {"seq":1,"id":"p2","time":1772442120000000000,"features":{"card.pays_1h":2},"labels":{"disputed":1}}
 }
 
 // Reset and Payout are two events of one type here: a kind field selects
@@ -62,7 +66,6 @@ type AccountEvent struct {
 }
 
 func ExampleInterval() {
-	min := int64(time.Minute)
 	spec := tallyward.Spec[AccountEvent]{
 		Time: func(e AccountEvent) int64 { return e.At },
 		Entities: []tallyward.Entity[AccountEvent]{{Name: "account", Key: func(e AccountEvent) string { return e.Account },
@@ -81,8 +84,8 @@ func ExampleInterval() {
 		panic(err)
 	}
 	for _, e := range []AccountEvent{
-		{"reset", "acct-1", "r1", 1 * min}, {"payout", "acct-1", "o1", 12 * min},
-		{"reset", "acct-2", "r2", 15 * min}, {"payout", "acct-2", "o2", 60 * min},
+		{"reset", "acct-1", "r1", at(1)}, {"payout", "acct-1", "o1", at(12)},
+		{"reset", "acct-2", "r2", at(15)}, {"payout", "acct-2", "o2", at(60)},
 	} {
 		p.Process(e)
 	}
@@ -94,7 +97,6 @@ func ExampleInterval() {
 }
 
 func ExampleAsOf() {
-	min := int64(time.Minute)
 	spec := tallyward.Spec[AccountEvent]{
 		Time: func(e AccountEvent) int64 { return e.At },
 		Entities: []tallyward.Entity[AccountEvent]{{Name: "account", Key: func(e AccountEvent) string { return e.Account },
@@ -114,8 +116,8 @@ func ExampleAsOf() {
 		panic(err)
 	}
 	for _, e := range []AccountEvent{
-		{"pay", "acct-1", "p1", 1 * min}, {"verify-email", "acct-1", "v1", 2 * min},
-		{"pay", "acct-1", "p2", 3 * min}, {"verify-id", "acct-1", "v2", 4 * min}, {"pay", "acct-1", "p3", 5 * min},
+		{"pay", "acct-1", "p1", at(1)}, {"verify-email", "acct-1", "v1", at(2)},
+		{"pay", "acct-1", "p2", at(3)}, {"verify-id", "acct-1", "v2", at(4)}, {"pay", "acct-1", "p3", at(5)},
 	} {
 		p.Process(e)
 	}

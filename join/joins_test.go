@@ -83,6 +83,7 @@ func replayEqualsLive(t *testing.T, eager bool) {
 	evs := shuffleWithin(rand.New(rand.NewPCG(3, 3)), h.evs, disorder)
 
 	opts := settled(disorder)
+	opts.PastSkew = 90 * 24 * time.Hour // the history spans 40 days behind the fake clock
 	if eager {
 		opts.Mode = tallyward.Eager
 	}
