@@ -29,6 +29,11 @@ type CommitPoint struct {
 // its output to what this commit covers and re-reads its input from
 // Resume. A nil cursor keeps the one given to Commit (or the stored one).
 //
+// Automatic commits may write the state in the background after fn
+// returns; a crash before that write lands resumes from the commit
+// before, whose cursor names a shorter committed length, so the order
+// (output durable first, state second) still holds.
+//
 // If fn fails, the commit is not written and the pipeline fails: later
 // calls return the error. fn runs on the goroutine that called Commit (or
 // Process) and must not call back into the pipeline: such a call returns

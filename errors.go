@@ -122,3 +122,30 @@ func (e *RejectError) Error() string {
 func (e *RejectError) Is(target error) bool {
 	return target == ErrRejected || (int(e.Reason) < len(reasonErr) && target == reasonErr[e.Reason])
 }
+
+// BatchError names the event that made Live.SubmitBatch refuse a whole
+// batch. It unwraps to that event's error.
+type BatchError struct {
+	Index int // position in the batch
+	Err   error
+}
+
+func (e *BatchError) Error() string {
+	return fmt.Sprintf("tallyward: batch event %d: %v", e.Index, e.Err)
+}
+
+// Unwrap returns the event's error.
+func (e *BatchError) Unwrap() error { return e.Err }
+
+// LateError describes an event refused as late: its time is below the
+// watermark. It matches ErrLate under errors.Is.
+type LateError struct {
+	Time, Watermark int64
+}
+
+func (e *LateError) Error() string {
+	return fmt.Sprintf("tallyward: event time %d is below the watermark %d (late)", e.Time, e.Watermark)
+}
+
+// Is reports whether target is ErrLate.
+func (e *LateError) Is(target error) bool { return target == ErrLate }

@@ -25,7 +25,7 @@ func TestLiveEraseAndSnapshotWhileSubmitting(t *testing.T) {
 		go func() {
 			defer wg.Done()
 			for i := w; i < len(evs); i += workers {
-				if err := live.SubmitInOrder(uint64(i), evs[i]); err != nil && !benign(err) {
+				if err := live.SubmitInOrder(t.Context(), uint64(i), evs[i]); err != nil && !benign(err) {
 					t.Error(err)
 					return
 				}
@@ -35,20 +35,20 @@ func TestLiveEraseAndSnapshotWhileSubmitting(t *testing.T) {
 	snaps := t.TempDir()
 	for i := range 6 {
 		acct := fmt.Sprintf("acct-%d", i+1)
-		require.NoError(t, live.Erase("account", acct))
-		require.NoError(t, live.Snapshot(fmt.Sprintf("%s/%d", snaps, i)))
+		require.NoError(t, live.Erase(t.Context(), "account", acct))
+		require.NoError(t, live.Snapshot(t.Context(), fmt.Sprintf("%s/%d", snaps, i)))
 		_ = live.Stats()
 		if i%2 == 0 {
-			require.NoError(t, live.LiftErasure("account", acct))
+			require.NoError(t, live.LiftErasure(t.Context(), "account", acct))
 		}
 	}
 	wg.Wait()
-	require.NoError(t, live.Commit(nil))
+	require.NoError(t, live.Commit(t.Context(), nil))
 	s := live.Stats()
 	require.Equal(t, uint64(len(evs)), s.Events)
 	require.Positive(t, s.Erased+s.ErasedSkips)
 	require.NoError(t, live.Close())
-	require.ErrorIs(t, live.Erase("account", "x"), ErrClosed)
+	require.ErrorIs(t, live.Erase(t.Context(), "account", "x"), ErrClosed)
 
 	// Each snapshot opens as a consistent store.
 	q, err := Open(loginSpec(nil), Options{Dir: snaps + "/5", ItemKey: testItemKey})
@@ -121,9 +121,9 @@ func TestLiveEmitReentryDoesNotDeadlock(t *testing.T) {
 	var errs []error
 	var stats []Stats
 	p := openTest(t, loginSpec(func(r Row[login]) {
-		errs = append(errs, live.Submit(login{T: r.Time, Account: "b", Addr: "z"}), live.SubmitInOrder(r.Seq+1, r.Event),
-			live.Commit(nil), live.Erase("account", "a"), live.Snapshot("never"), live.Tick(), live.Flush())
-		_, err := live.Score(r.Event, nil)
+		errs = append(errs, live.Submit(t.Context(), login{T: r.Time, Account: "b", Addr: "z"}), live.SubmitInOrder(t.Context(), r.Seq+1, r.Event),
+			live.Commit(t.Context(), nil), live.Erase(t.Context(), "account", "a"), live.Snapshot(t.Context(), "never"), live.Tick(t.Context()), live.Flush(t.Context()))
+		_, err := live.Score(t.Context(), r.Event, nil)
 		errs = append(errs, err)
 		stats = append(stats, live.Stats())
 	}), Options{IdleAdvance: time.Second, MaxDisorder: time.Hour})
@@ -132,14 +132,14 @@ func TestLiveEmitReentryDoesNotDeadlock(t *testing.T) {
 	go func() {
 		var err error
 		for i := range 20 {
-			if e := live.Submit(login{T: t0 + int64(i), Account: "a", Addr: "x"}); e != nil {
+			if e := live.Submit(t.Context(), login{T: t0 + int64(i), Account: "a", Addr: "x"}); e != nil {
 				err = e
 			}
 		}
 		done <- err
 	}()
 	for i := range 20 {
-		require.NoError(t, live.Submit(login{T: t0 + int64(i), Account: "c", Addr: "w"}))
+		require.NoError(t, live.Submit(t.Context(), login{T: t0 + int64(i), Account: "c", Addr: "w"}))
 	}
 	select {
 	case err := <-done:
@@ -161,9 +161,9 @@ func TestSubmitInOrderWokenByClose(t *testing.T) {
 	p := openTest(t, loginSpec(nil), Options{})
 	live := NewLive(p, &fakeClock{now: t0})
 	done := make(chan error, 1)
-	go func() { done <- live.SubmitInOrder(5, login{T: t0, Account: "a", Addr: "x"}) }()
-	require.NoError(t, live.Submit(login{T: t0, Account: "a", Addr: "x"}))
-	require.ErrorContains(t, live.SubmitInOrder(0, login{T: t0, Account: "a", Addr: "x"}), "already submitted")
+	go func() { done <- live.SubmitInOrder(t.Context(), 5, login{T: t0, Account: "a", Addr: "x"}) }()
+	require.NoError(t, live.Submit(t.Context(), login{T: t0, Account: "a", Addr: "x"}))
+	require.ErrorContains(t, live.SubmitInOrder(t.Context(), 0, login{T: t0, Account: "a", Addr: "x"}), "already submitted")
 	require.NoError(t, live.Close())
 	select {
 	case err := <-done:

@@ -64,16 +64,16 @@ func TestLiveClockBothDirections(t *testing.T) {
 	p := openTest(t, loginSpec(nil), Options{MaxDisorder: time.Second})
 	clock := &fakeClock{now: t0}
 	live := NewLive(p, clock)
-	err := live.Submit(login{T: t0 - int64(90*24*time.Hour), Account: "a", Addr: "x"})
+	err := live.Submit(t.Context(), login{T: t0 - int64(90*24*time.Hour), Account: "a", Addr: "x"})
 	require.ErrorIs(t, err, ErrPastTime)
-	err = live.Submit(login{T: t0 + int64(3*time.Hour), Account: "a", Addr: "x"})
+	err = live.Submit(t.Context(), login{T: t0 + int64(3*time.Hour), Account: "a", Addr: "x"})
 	require.ErrorIs(t, err, ErrFutureTime)
 	var re *RejectError
 	require.True(t, errors.As(err, &re))
 	require.False(t, re.FromNewest, "the clock, not the newest time, was the limit")
 	for i := range 10 {
 		clock.now = t0 + int64(i)*int64(time.Second)
-		require.NoError(t, live.Submit(login{T: clock.now, Account: "a", Addr: "x"}))
+		require.NoError(t, live.Submit(t.Context(), login{T: clock.now, Account: "a", Addr: "x"}))
 	}
 	s := live.Stats()
 	require.Equal(t, uint64(10), s.Applied)
@@ -82,7 +82,7 @@ func TestLiveClockBothDirections(t *testing.T) {
 
 	// Negative PastSkew disables the past check.
 	q := openTest(t, loginSpec(nil), Options{PastSkew: -1})
-	require.NoError(t, NewLive(q, clock).Submit(login{T: t0 - int64(90*24*time.Hour), Account: "a", Addr: "x"}))
+	require.NoError(t, NewLive(q, clock).Submit(t.Context(), login{T: t0 - int64(90*24*time.Hour), Account: "a", Addr: "x"}))
 }
 
 // A stray event inside the plausible range still moves the newest time:
@@ -201,7 +201,7 @@ func TestRestartSkipsEventsTheClockRejected(t *testing.T) {
 	p := openTest(t, loginSpec(rows.add), opts)
 	live := NewLive(p, &fakeClock{now: t0})
 	for i, e := range evs {
-		err := live.Submit(e)
+		err := live.Submit(t.Context(), e)
 		if i == 1 {
 			require.ErrorIs(t, err, ErrFutureTime)
 		} else {

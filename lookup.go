@@ -64,11 +64,3 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 	}
 	return dst, exact, nil
 }
-
-// Lookup is Pipeline.Lookup under Live's lock: safe to call from any
-// goroutine while others submit events.
-func (l *Live[E]) Lookup(entity, key string, t int64, dst []float64) ([]float64, bool, error) {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.p.Lookup(entity, key, t, dst)
-}

@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"context"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -182,9 +183,9 @@ func TestLiveLookupConcurrent(t *testing.T) {
 			defer wg.Done()
 			var dst []float64
 			for i := g; i < len(evs); i += 4 {
-				err := l.SubmitInOrder(uint64(i), evs[i])
+				err := l.SubmitInOrder(context.Background(), uint64(i), evs[i])
 				if err == nil {
-					dst, _, err = l.Lookup("account", evs[i].Account, evs[i].T, dst[:0])
+					dst, _, err = l.Lookup(context.Background(), "account", evs[i].Account, evs[i].T, dst[:0])
 				}
 				if err == nil && dst[0] < 1 {
 					err = fmt.Errorf("count %v < 1", dst[0])

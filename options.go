@@ -4,6 +4,7 @@ import (
 	"cmp"
 	"errors"
 	"fmt"
+	"log/slog"
 	"time"
 
 	"github.com/cockroachdb/pebble/v2/vfs"
@@ -189,6 +190,12 @@ type Options struct {
 	// never for any decision about data. Default: SystemClock.
 	MetricsClock Clock
 
+	// Logger receives what the pipeline has to say beyond its return
+	// values: features reset on Open, events the live driver's Run rejects
+	// (which it counts and does not return), and the storage engine's own
+	// messages (attribute component=pebble). Default: discard.
+	Logger *slog.Logger
+
 	// IdleAdvance, in live mode, raises the watermark to clock − MaxDisorder
 	// − IdleAdvance once no event has arrived for IdleAdvance of clock
 	// time, so Settled rows are not held forever on a quiet source. Zero
@@ -221,6 +228,9 @@ func (o *Options) EnsureDefaults() {
 	}
 	if o.MetricsClock == nil {
 		o.MetricsClock = SystemClock{}
+	}
+	if o.Logger == nil {
+		o.Logger = slog.New(slog.DiscardHandler)
 	}
 }
 

@@ -60,18 +60,21 @@ type Pipeline[E any] struct {
 	lastCommitSeen uint64
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
+	commitHist                   [len(CommitBuckets) + 1]uint64
 
 	items itemHashing // how Feature.Item values are hashed; set on Open
 	c     counters
 	in    inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
-	recs   []*record
-	vals   []float64
-	held   *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
-	batch  []*held[E]              // Settled: scratch for one timestamp's events
-	slab   holdSlab[E]             // Settled: where held events are carved from
-	closed bool
+	recs    []*record
+	vals    []float64
+	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
+	batch   []*held[E]              // Settled: scratch for one timestamp's events
+	slab    holdSlab[E]             // Settled: where held events are carved from
+	closed  bool
+	inBatch bool // Live.SubmitBatch: no automatic commit inside a batch
+	dryRun  bool // precheck: extract counts nothing
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
 	// the row being emitted. Atomic because Live reads it from goroutines
@@ -170,6 +173,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err := p.checkDefinitions(); err != nil {
 		st.Close()
 		return nil, err
+	}
+	for _, n := range p.notices {
+		opts.Logger.Warn(n)
 	}
 	if len(p.notices) > 0 && !opts.ReadOnly {
 		// Make the reset durable before any event is processed, with the
@@ -307,14 +313,22 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		p.held.ReplaceOrInsert(h)
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
-	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
-		// Off the caller's path: the write runs while processing goes
-		// on; only the next commit waits for it.
-		if err := p.commit(nil, true); err != nil {
-			return dst, err
-		}
+	if err := p.autoCommit(); err != nil {
+		return dst, err
 	}
 	return dst, p.err
+}
+
+// autoCommit commits if Options.CommitEvery events came since the last
+// commit (and no batch is in progress).
+func (p *Pipeline[E]) autoCommit() error {
+	if p.err == nil && !p.inBatch && !p.opts.ReadOnly &&
+		(p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
+		// Off the caller's path: the write runs while processing goes
+		// on; only the next commit waits for it.
+		return p.commit(nil, true)
+	}
+	return nil
 }
 
 // reconsume handles an event re-read after a restart (seq < reread): it
@@ -356,7 +370,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 	t := p.spec.Time(e)
 	p.in.t = t
 	reject := func(r Reason, feature string, limit int64, fromNewest bool) error {
-		if seq >= p.reread {
+		if seq >= p.reread && !p.dryRun {
 			p.c.rejected[r]++
 		}
 		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature, Limit: limit, FromNewest: fromNewest}
@@ -703,6 +717,7 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	p.lastCommitSeen = p.seen
 	p.lastCommitNanos = p.opts.MetricsClock.Now() - began
 	p.commitNanos += p.lastCommitNanos
+	p.commitHist[commitBucket(time.Duration(p.lastCommitNanos))]++
 	return nil
 }
 
@@ -760,4 +775,39 @@ func heldLess[E any](a, b *held[E]) bool {
 		return a.tie < b.tie
 	}
 	return a.seq < b.seq
+}
+
+// precheck reports the first of es, taken as the next events in order,
+// that process would refuse (rejected, late under a policy that does not
+// apply late events, or after Flush), as a *BatchError, without consuming
+// or counting anything: so a batch can be taken whole or not at all.
+func (p *Pipeline[E]) precheck(es []E, now int64) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	hasMax, maxT, wm := p.hasMax, p.maxT, p.wm
+	for i, e := range es {
+		seq := p.seen + uint64(i)
+		if seq < p.reread {
+			continue // a re-read is never refused
+		}
+		if p.flushed {
+			return &BatchError{Index: i, Err: ErrFlushed}
+		}
+		p.dryRun = true
+		err := p.extract(e, seq, now, newestTime{hasMax, maxT})
+		p.dryRun = false
+		if err != nil {
+			return &BatchError{Index: i, Err: err}
+		}
+		t := p.in.t
+		if t < wm && p.opts.Lateness != ApplyLate {
+			return &BatchError{Index: i, Err: &LateError{Time: t, Watermark: wm}}
+		}
+		if !hasMax || t > maxT {
+			hasMax, maxT = true, t
+		}
+		wm = max(wm, sat.Sub(maxT, int64(p.opts.MaxDisorder)))
+	}
+	return nil
 }

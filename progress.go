@@ -229,10 +229,33 @@ type Stats struct {
 	// and any wait for the previous commit to land.
 	LastCommitDuration  time.Duration
 	TotalCommitDuration time.Duration
-	DiskBytes           uint64 // Pebble's estimate of the store's size
+	// CommitCounts counts the commits since Open by latency:
+	// CommitCounts[i] those that took at most CommitBuckets[i] (and more
+	// than the bound before it), the last element those slower than every
+	// bound.
+	CommitCounts [len(CommitBuckets) + 1]uint64
+	DiskBytes    uint64 // Pebble's estimate of the store's size
 	// RolledBack: Open found the store's newest log damaged and resumed
 	// from the last commit before the damage (Notices says where).
 	RolledBack bool
+}
+
+// CommitBuckets are the upper bounds of Stats.CommitCounts, from a synced
+// write of a few records to a commit of a large working set.
+var CommitBuckets = [...]time.Duration{
+	500 * time.Microsecond, time.Millisecond, 2500 * time.Microsecond, 5 * time.Millisecond,
+	10 * time.Millisecond, 25 * time.Millisecond, 50 * time.Millisecond, 100 * time.Millisecond,
+	250 * time.Millisecond, 500 * time.Millisecond, time.Second, 2500 * time.Millisecond,
+	5 * time.Second, 10 * time.Second,
+}
+
+func commitBucket(d time.Duration) int {
+	for i, b := range CommitBuckets {
+		if d <= b {
+			return i
+		}
+	}
+	return len(CommitBuckets)
 }
 
 // HitRate is the share of record lookups served by the cache (NaN before
@@ -250,7 +273,8 @@ func (p *Pipeline[E]) Stats() Stats {
 		Rejected: map[Reason]uint64{}, Held: p.held.Len(), Watermark: p.wm, NextSeq: p.seen,
 		Commits: p.store.Commits(), CachedBytes: p.store.CachedBytes(), DiskBytes: p.store.DiskBytes(),
 		LastCommitDuration: time.Duration(p.lastCommitNanos), TotalCommitDuration: time.Duration(p.commitNanos),
-		RolledBack: p.store.RolledBack(),
+		CommitCounts: p.commitHist,
+		RolledBack:   p.store.RolledBack(),
 	}
 	for r, n := range p.c.rejected {
 		s.Rejected[Reason(r)] = n

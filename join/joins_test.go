@@ -102,7 +102,7 @@ func replayEqualsLive(t *testing.T, eager bool) {
 		go func() {
 			defer wg.Done()
 			for i := g; i < len(evs); i += 4 {
-				if err := l.SubmitInOrder(uint64(i), evs[i]); err != nil && errs[g] == nil {
+				if err := l.SubmitInOrder(context.Background(), uint64(i), evs[i]); err != nil && errs[g] == nil {
 					errs[g] = fmt.Errorf("event %d: %w", i, err)
 				}
 			}
@@ -110,7 +110,7 @@ func replayEqualsLive(t *testing.T, eager bool) {
 	}
 	wg.Wait()
 	require.Equal(t, make([]error, 4), errs)
-	require.NoError(t, l.Flush())
+	require.NoError(t, l.Flush(context.Background()))
 	require.NoError(t, l.Close())
 	require.NotEmpty(t, want.lines)
 	require.Equal(t, want.lines, got.lines)

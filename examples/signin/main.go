@@ -118,7 +118,7 @@ func run(n int, seed uint64) error {
 	if err := live.Run(context.Background(), ch, 0); err != nil {
 		return err
 	}
-	if err := live.Flush(); err != nil {
+	if err := live.Flush(context.Background()); err != nil {
 		return err
 	}
 	lived := time.Since(start)
