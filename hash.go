@@ -220,7 +220,9 @@ func fnvFold(h, v uint64) uint64 {
 // tieBreak hashes the event's extracted inputs. Events at one time are
 // applied in tie-break order in Settled mode; as the hash depends only on
 // what the event contributes to state, the order is free of arrival order.
-func (in *inputs) tieBreak() uint64 {
+// items are the features' unkeyed item hashes (see tieItemHashes), so the
+// order is also the same in every store.
+func (in *inputs) tieBreak(items []uint64) uint64 {
 	h := uint64(fnvOffset)
 	for _, k := range in.keys {
 		h = fnv1a(h, k)
@@ -233,7 +235,7 @@ func (in *inputs) tieBreak() uint64 {
 		}
 		h = fnvFold(h, 1)
 		h = fnvFold(h, math.Float64bits(in.v[i]))
-		h = fnvFold(h, in.item[i])
+		h = fnvFold(h, items[i])
 	}
 	return h
 }

@@ -11,6 +11,7 @@ import (
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/attach"
 	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/sketch"
 	"github.com/tallyward/tallyward/internal/store"
 )
 
@@ -74,6 +75,9 @@ type Pipeline[E any] struct {
 	slab    holdSlab[E]             // Settled: where held events are carved from
 	closed  bool
 	inBatch bool // Live.SubmitBatch: no automatic commit inside a batch
+	// tieItems holds, under a keyed item hash in Settled mode, each
+	// feature's unkeyed item hash for the canonical tie-break; scratch.
+	tieItems []uint64
 	dryRun  bool // precheck: extract counts nothing
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
@@ -161,6 +165,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	}
 	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
 	p.vals = make([]float64, p.nfeat)
+	p.tieItems = make([]uint64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
 	if err := p.restore(st.Mark()); err != nil {
 		st.Close()
@@ -308,7 +313,7 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		h := p.slab.hold(seq, p.in.tieBreak(), e, &p.in)
+		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
 		h.before = before
 		p.held.ReplaceOrInsert(h)
 	}
@@ -356,7 +361,7 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 		w = max(w, p.resetWm)
 	}
 	if p.opts.Mode == Settled && p.in.t >= w {
-		h := p.slab.hold(seq, p.in.tieBreak(), e, &p.in)
+		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
 		h.before = before
 		p.held.ReplaceOrInsert(h)
 	}
@@ -404,11 +409,18 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 			fi := es.first + j
 			on := key != "" && (f.Where == nil || f.Where(e))
 			p.in.on[fi] = on
-			p.in.v[fi], p.in.item[fi] = 0, 0
+			p.in.v[fi], p.in.item[fi], p.tieItems[fi] = 0, 0, 0
 			if key != "" && f.Item != nil {
 				// Extracted even when the event does not update the
 				// feature: a frequency answers about the asking item.
-				p.in.item[fi] = p.items.hash(f.Item(e))
+				s := f.Item(e)
+				p.in.item[fi] = p.items.hash(s)
+				if p.items.keyed && p.opts.Mode == Settled {
+					// The canonical order must not depend on the store's
+					// item key, or two stores (a backfill and the live
+					// one) would emit tied rows in different orders.
+					p.tieItems[fi] = sketch.HashString(s)
+				}
 			}
 			if !on {
 				continue
@@ -810,4 +822,14 @@ func (p *Pipeline[E]) precheck(es []E, now int64) error {
 		wm = max(wm, sat.Sub(maxT, int64(p.opts.MaxDisorder)))
 	}
 	return nil
+}
+
+// tieItemHashes is the item hash of each feature that the canonical
+// tie-break folds: the unkeyed one, whatever the store's item key, so the
+// order of tied events is the same in every store.
+func (p *Pipeline[E]) tieItemHashes() []uint64 {
+	if p.items.keyed {
+		return p.tieItems
+	}
+	return p.in.item
 }
