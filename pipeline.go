@@ -11,8 +11,8 @@ import (
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/attach"
 	"github.com/tallyward/tallyward/internal/sat"
-	"github.com/tallyward/tallyward/sketch"
 	"github.com/tallyward/tallyward/internal/store"
+	"github.com/tallyward/tallyward/sketch"
 )
 
 // Pipeline computes the features of a Spec over a sequence of events and
@@ -78,7 +78,7 @@ type Pipeline[E any] struct {
 	// tieItems holds, under a keyed item hash in Settled mode, each
 	// feature's unkeyed item hash for the canonical tie-break; scratch.
 	tieItems []uint64
-	dryRun  bool // precheck: extract counts nothing
+	dryRun   bool // precheck: extract counts nothing
 	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
 	// into the pipeline is refused (ErrReentered) rather than corrupting
 	// the row being emitted. Atomic because Live reads it from goroutines
