@@ -3,6 +3,7 @@ package main
 import (
 	"errors"
 	"flag"
+	"fmt"
 	"os"
 	"path/filepath"
 
@@ -96,3 +97,35 @@ func withEmit(spec tallyward.Spec[specfile.Event]) tallyward.Spec[specfile.Event
 	}
 	return spec
 }
+
+// changeState is the body of a command that opens an existing state
+// directory, makes one durable change (change returns what to print on
+// success) and closes it: args must hold nargs arguments, else the usage
+// error says takes ("erase takes ENTITY KEY").
+func changeState(e *env, specPath, state string, args []string, nargs int, takes string, change func(*tallyward.Pipeline[specfile.Event]) (string, error)) int {
+	if len(args) != nargs {
+		e.errorf("%s (got %d arguments)", takes, len(args))
+		return exitUsage
+	}
+	f, code, ok := loadSpec(e, specPath)
+	if !ok {
+		return code
+	}
+	p, code, ok := openExisting(e, f, state, f.Options)
+	if !ok {
+		return code
+	}
+	done, err := change(p)
+	if cerr := p.Close(); err == nil {
+		err = cerr
+	}
+	if err != nil {
+		e.errorf("%v", err)
+		return exitFailure
+	}
+	fmt.Fprintln(e.stdout, done)
+	return exitOK
+}
+
+// eventPipeline is a pipeline over the spec file's dynamic events.
+type eventPipeline = tallyward.Pipeline[specfile.Event]

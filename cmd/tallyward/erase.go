@@ -23,28 +23,9 @@ Example:
 		flags: func(fs *flag.FlagSet) func(*env, []string) int {
 			spec, state := specFlag(fs), stateFlag(fs)
 			return func(e *env, args []string) int {
-				if len(args) != 2 {
-					e.errorf("erase takes ENTITY KEY (got %d arguments)", len(args))
-					return exitUsage
-				}
-				f, code, ok := loadSpec(e, *spec)
-				if !ok {
-					return code
-				}
-				p, code, ok := openExisting(e, f, *state, f.Options)
-				if !ok {
-					return code
-				}
-				err := p.Erase(args[0], args[1])
-				if cerr := p.Close(); err == nil {
-					err = cerr
-				}
-				if err != nil {
-					e.errorf("%v", err)
-					return exitFailure
-				}
-				fmt.Fprintf(e.stdout, "erased %s %q\n", args[0], args[1])
-				return exitOK
+				return changeState(e, *spec, *state, args, 2, "erase takes ENTITY KEY", func(p *eventPipeline) (string, error) {
+					return fmt.Sprintf("erased %s %q", args[0], args[1]), p.Erase(args[0], args[1])
+				})
 			}
 		},
 	})

@@ -1,9 +1,6 @@
 package main
 
-import (
-	"flag"
-	"fmt"
-)
+import "flag"
 
 func init() {
 	register(&command{
@@ -22,28 +19,9 @@ Example:
 		flags: func(fs *flag.FlagSet) func(*env, []string) int {
 			spec, state := specFlag(fs), stateFlag(fs)
 			return func(e *env, args []string) int {
-				if len(args) != 1 {
-					e.errorf("snapshot takes DEST (got %d arguments)", len(args))
-					return exitUsage
-				}
-				f, code, ok := loadSpec(e, *spec)
-				if !ok {
-					return code
-				}
-				p, code, ok := openExisting(e, f, *state, f.Options)
-				if !ok {
-					return code
-				}
-				err := p.Snapshot(args[0])
-				if cerr := p.Close(); err == nil {
-					err = cerr
-				}
-				if err != nil {
-					e.errorf("%v", err)
-					return exitFailure
-				}
-				fmt.Fprintf(e.stdout, "snapshot written to %s\n", args[0])
-				return exitOK
+				return changeState(e, *spec, *state, args, 1, "snapshot takes DEST", func(p *eventPipeline) (string, error) {
+					return "snapshot written to " + args[0], p.Snapshot(args[0])
+				})
 			}
 		},
 	})
