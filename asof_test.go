@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"github.com/tallyward/tallyward/internal/sat"
 	"math/rand/v2"
 	"testing"
 	"time"
@@ -55,7 +56,7 @@ func TestAsOfAgainstBruteForce(t *testing.T) {
 			want := 0
 			n := int64(win / res)
 			for _, a := range applied {
-				if a.Account == e.Account && a.T <= q && floorDiv(a.T, int64(res)) > floorDiv(q, int64(res))-n {
+				if a.Account == e.Account && a.T <= q && sat.FloorDiv(a.T, int64(res)) > sat.FloorDiv(q, int64(res))-n {
 					want++
 				}
 			}
@@ -64,12 +65,4 @@ func TestAsOfAgainstBruteForce(t *testing.T) {
 		}
 		p.Close()
 	}
-}
-
-func floorDiv(a, b int64) int64 {
-	q := a / b
-	if (a%b != 0) && (a < 0) != (b < 0) {
-		q--
-	}
-	return q
 }

@@ -23,7 +23,9 @@ func fnv1a(h uint64, s string) uint64 {
 	return h
 }
 
-func mix64(h, v uint64) uint64 {
+// fnvFold folds v into the running tie-break hash h: an FNV-style multiply
+// with a shift, not a finaliser (the sketch package's mix64 is one).
+func fnvFold(h, v uint64) uint64 {
 	h ^= v
 	h *= fnvPrime
 	h ^= h >> 29
@@ -37,16 +39,16 @@ func (in *inputs) tieBreak() uint64 {
 	h := uint64(fnvOffset)
 	for _, k := range in.keys {
 		h = fnv1a(h, k)
-		h = mix64(h, uint64(len(k)))
+		h = fnvFold(h, uint64(len(k)))
 	}
 	for i, on := range in.on {
 		if !on {
-			h = mix64(h, 0)
+			h = fnvFold(h, 0)
 			continue
 		}
-		h = mix64(h, 1)
-		h = mix64(h, math.Float64bits(in.v[i]))
-		h = mix64(h, in.item[i])
+		h = fnvFold(h, 1)
+		h = fnvFold(h, math.Float64bits(in.v[i]))
+		h = fnvFold(h, in.item[i])
 	}
 	return h
 }

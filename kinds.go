@@ -24,7 +24,7 @@ type Sliding struct {
 }
 
 func (k Sliding) spec(horizon int64) window.SlidingSpec {
-	return window.SlidingSpec{Window: int64(k.Window), Resolution: int64(cmp.Or(k.Resolution, k.Window/60)), Horizon: horizon}
+	return window.SlidingSpec{Window: k.Window, Resolution: cmp.Or(k.Resolution, k.Window/60), Horizon: time.Duration(horizon)}
 }
 
 func (k Sliding) describe(name string) string {
@@ -78,23 +78,23 @@ func (SlidingMean) Inputs() Inputs  { return TakesValue }
 // entity costs fewer allocations and an event fewer indirect calls.
 
 func (k SlidingCount) NewAggregate(horizon time.Duration) Aggregate {
-	return countAgg{window.NewSlidingCount(Sliding(k).spec(int64(horizon)))}
+	return countAgg{built(window.NewSlidingCount(Sliding(k).spec(int64(horizon))))}
 }
 
 func (k SlidingSum) NewAggregate(horizon time.Duration) Aggregate {
-	return sumAgg{window.NewSlidingSum(Sliding(k).spec(int64(horizon)))}
+	return sumAgg{built(window.NewSlidingSum(Sliding(k).spec(int64(horizon))))}
 }
 
 func (k SlidingMin) NewAggregate(horizon time.Duration) Aggregate {
-	return minAgg{window.NewSlidingMin(Sliding(k).spec(int64(horizon)))}
+	return minAgg{built(window.NewSlidingMin(Sliding(k).spec(int64(horizon))))}
 }
 
 func (k SlidingMax) NewAggregate(horizon time.Duration) Aggregate {
-	return maxAgg{window.NewSlidingMax(Sliding(k).spec(int64(horizon)))}
+	return maxAgg{built(window.NewSlidingMax(Sliding(k).spec(int64(horizon))))}
 }
 
 func (k SlidingMean) NewAggregate(horizon time.Duration) Aggregate {
-	return meanAgg{window.NewSlidingMean(Sliding(k).spec(int64(horizon)))}
+	return meanAgg{built(window.NewSlidingMean(Sliding(k).spec(int64(horizon))))}
 }
 
 type countAgg struct{ *window.SlidingCount }
@@ -121,6 +121,15 @@ type meanAgg struct{ *window.SlidingMean }
 
 func (a meanAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMean.Add(t, v) }
 func (a meanAgg) At(t int64, _ uint64) float64          { return a.MeanAt(t) }
+
+// built returns an aggregate made from a kind's spec. Open validates every
+// kind with its horizon before making aggregates, so err is unreachable.
+func built[T any](x T, err error) T {
+	if err != nil {
+		panic(err)
+	}
+	return x
+}
 
 // encoded is what every stored summary of packages window and sketch has.
 type encoded interface {

@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/tallyward/tallyward"
+	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/kindtest"
 )
 
@@ -20,15 +21,7 @@ import (
 // into panes of width res, as of q >= ti: its pane is one of the w/res
 // panes ending with q's pane (epoch-aligned).
 func inPanes(ti, q int64, w, res time.Duration) bool {
-	return floorDiv(ti, int64(res)) > floorDiv(q, int64(res))-int64(w/res)
-}
-
-func floorDiv(a, b int64) int64 {
-	q := a / b
-	if a%b != 0 && (a < 0) != (b < 0) {
-		q--
-	}
-	return q
+	return sat.FloorDiv(ti, int64(res)) > sat.FloorDiv(q, int64(res))-int64(w/res)
 }
 
 func TestBuiltinKindsPassHarness(t *testing.T) {

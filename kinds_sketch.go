@@ -28,8 +28,8 @@ type Distinct struct {
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
-	return sketch.DistinctSpec{Window: int64(k.Window), Resolution: int64(cmp.Or(k.Resolution, k.Window/60)),
-		Horizon: h, Precision: cmp.Or(k.Precision, 12)} // 12: the sketch package's default
+	return sketch.DistinctSpec{Window: k.Window, Resolution: cmp.Or(k.Resolution, k.Window/60),
+		Horizon: time.Duration(h), Precision: cmp.Or(k.Precision, 12)} // 12: the sketch package's default
 }
 
 // Describe implements Kind.
@@ -75,17 +75,6 @@ type Frequency struct {
 
 func (k Frequency) params() sketch.CountMinParams {
 	return sketch.CountMinParams{Epsilon: cmp.Or(k.Epsilon, 0.01), Delta: cmp.Or(k.Delta, 0.01)}
-}
-
-// orDefault is v, or def when v is the zero value. Kinds spell their
-// defaults out through it, so that Describe is the same whether a default
-// is left zero or written explicitly.
-func orDefault[T comparable](v, def T) T {
-	var zero T
-	if v == zero {
-		return def
-	}
-	return v
 }
 
 // Describe implements Kind.
@@ -166,7 +155,7 @@ func (k Quantile) Validate() error {
 func (Quantile) Inputs() Inputs       { return TakesValue }
 func (Quantile) Reach() time.Duration { return 0 }
 func (k Quantile) NewAggregate(horizon time.Duration) Aggregate {
-	q, err := sketch.NewQuantiles(k.params())
+	q, err := sketch.NewQuantile(k.params())
 	if err != nil {
 		panic(err) // Validate ran first
 	}
@@ -280,7 +269,15 @@ func (l *tailedSummary) AppendBinary(dst []byte) ([]byte, error) {
 var errTailed = errors.New("tailed summary")
 
 // UnmarshalBinary decodes the format of AppendBinary; l is unchanged on
-// error.
+// error. Layout, version 1 (docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	byte     1 if any event was added, else 0
+//	varint   newest time
+//	uvarint  number of raw events n, then n times, oldest first:
+//	         uvarint newest − t, 8 bytes value (IEEE 754, little endian),
+//	         8 bytes item hash (little endian)
+//	rest     the summary's own versioned encoding (package sketch)
 func (l *tailedSummary) UnmarshalBinary(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != tailedVersion1 {
@@ -358,7 +355,7 @@ func (s *topShareSummary) fold(_ float64, h uint64)                { s.tk.Add(h,
 // item and the raw items, over the total. Raw events are few (within the
 // horizon), so this is cheap.
 func (s *topShareSummary) answer(extra []tailEvent, _ uint64) float64 {
-	total := s.tk.Total() + uint64(len(extra))
+	total := s.tk.Count() + uint64(len(extra))
 	if total == 0 {
 		return math.NaN()
 	}
@@ -386,9 +383,9 @@ func (s *topShareSummary) answer(extra []tailEvent, _ uint64) float64 {
 }
 
 type quantileSummary struct {
-	q        *sketch.Quantiles
+	q        *sketch.Quantile
 	quantile float64
-	scratch  *sketch.Quantiles // summary + raw events, built per answer when raw is not empty
+	scratch  *sketch.Quantile // summary + raw events, built per answer when raw is not empty
 }
 
 func (s *quantileSummary) AppendBinary(dst []byte) ([]byte, error) { return s.q.AppendBinary(dst) }
@@ -399,7 +396,7 @@ func (s *quantileSummary) answer(extra []tailEvent, _ uint64) float64 {
 	src := s.q
 	if len(extra) > 0 {
 		if s.scratch == nil {
-			s.scratch, _ = sketch.NewQuantiles(s.q.Params())
+			s.scratch, _ = sketch.NewQuantile(s.q.Params())
 		}
 		s.scratch.Reset()
 		if err := s.scratch.Merge(s.q); err != nil {
@@ -410,7 +407,7 @@ func (s *quantileSummary) answer(extra []tailEvent, _ uint64) float64 {
 		}
 		src = s.scratch
 	}
-	v, ok := src.Quantile(s.quantile)
+	v, ok := src.Value(s.quantile)
 	if !ok {
 		return math.NaN()
 	}

@@ -1,6 +1,7 @@
 package tallyward
 
 import (
+	"github.com/tallyward/tallyward/internal/sat"
 	"math"
 	"math/rand/v2"
 	"slices"
@@ -101,7 +102,7 @@ func addr(e login) string    { return e.Addr }
 // events, each by its published or documented definition.
 func bruteForce(evs []login, e login, win, res, half time.Duration) map[string]float64 {
 	t := e.T
-	pane := func(x int64) int64 { return floorDiv(x, int64(res)) }
+	pane := func(x int64) int64 { return sat.FloorDiv(x, int64(res)) }
 	// Sliding windows count events with pane(ti) in the window's panes up
 	// to pane(t) and ti <= t (package window's documented semantics).
 	inWindow := func(a login, w time.Duration) bool {

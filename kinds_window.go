@@ -50,7 +50,7 @@ type Decayed struct {
 }
 
 func (k Decayed) spec(h int64) window.DecaySpec {
-	return window.DecaySpec{HalfLife: int64(k.HalfLife), Horizon: h}
+	return window.DecaySpec{HalfLife: k.HalfLife, Horizon: time.Duration(h)}
 }
 
 // Describe implements Kind.
@@ -81,7 +81,7 @@ func (k Decayed) Inputs() Inputs {
 func (k Decayed) Reach() time.Duration { return time.Duration(sat.Add(0, 64*int64(k.HalfLife))) }
 
 func (k Decayed) NewAggregate(horizon time.Duration) Aggregate {
-	d := window.NewDecayed(k.spec(int64(horizon)))
+	d := built(window.NewDecayed(k.spec(int64(horizon))))
 	at := [...]func(int64) float64{d.CountAt, d.SumAt, d.MeanAt, d.VarianceAt}[k.Stat]
 	if k.Stat == DecayedCount {
 		return adapt(d, func(t int64, _ float64) bool { return d.Add(t, 1) }, at)
@@ -107,8 +107,8 @@ type Velocity struct {
 }
 
 func (k Velocity) spec(h int64) window.VelocitySpec {
-	return window.VelocitySpec{Short: int64(k.Short), Long: int64(k.Long), Resolution: int64(cmp.Or(k.Resolution, k.Short/10)),
-		Horizon: h, Smoothing: cmp.Or(k.Smoothing, 1)} // 1: the window package's default
+	return window.VelocitySpec{Short: k.Short, Long: k.Long, Resolution: cmp.Or(k.Resolution, k.Short/10),
+		Horizon: time.Duration(h), Smoothing: cmp.Or(k.Smoothing, 1)} // 1: the window package's default
 }
 
 // Describe implements Kind.
@@ -124,7 +124,7 @@ func (Velocity) Inputs() Inputs         { return 0 }
 func (k Velocity) Reach() time.Duration { return k.Long }
 
 func (k Velocity) NewAggregate(horizon time.Duration) Aggregate {
-	v := window.NewVelocity(k.spec(int64(horizon)))
+	v := built(window.NewVelocity(k.spec(int64(horizon))))
 	return adapt(v, func(t int64, _ float64) bool { return v.Add(t) }, v.RatioAt)
 }
 
@@ -168,7 +168,7 @@ type Recency struct {
 }
 
 func (k Recency) spec(h int64) window.RecencySpec {
-	return window.RecencySpec{Gap: int64(cmp.Or(k.Gap, 30*time.Minute)), Horizon: h}
+	return window.RecencySpec{Gap: cmp.Or(k.Gap, window.DefaultGap), Horizon: time.Duration(h)}
 }
 
 // Describe implements Kind.
@@ -190,13 +190,13 @@ func (Recency) Inputs() Inputs { return 0 }
 // Reach implements Kind.
 func (k Recency) Reach() time.Duration {
 	if k.Stat == SessionEvents {
-		return time.Duration(k.spec(0).Gap)
+		return k.spec(0).Gap
 	}
 	return 0
 }
 
 func (k Recency) NewAggregate(horizon time.Duration) Aggregate {
-	r := window.NewRecency(k.spec(int64(horizon)))
+	r := built(window.NewRecency(k.spec(int64(horizon))))
 	seconds := func(d int64, ok bool) float64 {
 		if !ok {
 			return math.NaN()

@@ -78,6 +78,18 @@ func (pr progress) append(dst []byte) []byte {
 	return dst
 }
 
+// decode reads what append wrote; pr is unchanged on error. Layout,
+// version 1 (docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	byte     flags: 1 = has newest time, 2 = flushed
+//	varint   newest event time
+//	uvarint  events, applied, emitted, late, tooOld, live, expired,
+//	         erased, erasedSkips
+//	uvarint  number of reasons r, then r uvarint rejection counts (counts
+//	         of reasons this build does not know are read and dropped)
+//	uvarint  number of future-rejected seqs k, then k uvarint deltas
+//	then end of input
 func (pr *progress) decode(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != progressVersion1 {

@@ -41,25 +41,10 @@ func appendRecord(dst []byte, last int64, n int, feature func(i int, dst []byte)
 	dst = binary.AppendVarint(dst, last)
 	dst = binary.AppendUvarint(dst, uint64(n))
 	for i := range n {
-		// Encode after a one-byte length guess and shift if the length
-		// needs more bytes, so no scratch buffer is needed.
-		at := len(dst)
-		dst = append(dst, 0)
 		var err error
-		dst, err = feature(i, dst)
-		if err != nil {
+		if dst, err = wire.AppendFramed(dst, func(dst []byte) ([]byte, error) { return feature(i, dst) }); err != nil {
 			return dst, err
 		}
-		n := len(dst) - at - 1
-		if n < 0x80 {
-			dst[at] = byte(n)
-			continue
-		}
-		var lenbuf [binary.MaxVarintLen64]byte
-		k := binary.PutUvarint(lenbuf[:], uint64(n))
-		dst = append(dst, lenbuf[:k-1]...)
-		copy(dst[at+k:], dst[at+1:at+1+n])
-		copy(dst[at:], lenbuf[:k])
 	}
 	return dst, nil
 }
@@ -91,7 +76,15 @@ func peekLast(b []byte) (int64, error) {
 }
 
 // decodeRecord decodes b into fresh aggregates made by fresh. It returns an
-// error, never panics, on any malformed input.
+// error, never panics, on any malformed input. Layout, version 1 (as
+// written by record.AppendBinary; docs/formats.md lists every layout):
+//
+//	byte     version (1)
+//	varint   last event time applied
+//	uvarint  number of features n (must equal the definition's)
+//	n times: uvarint length, then that many bytes of the feature's own
+//	         versioned encoding
+//	then end of input
 func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != recordVersion1 {

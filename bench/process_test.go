@@ -171,14 +171,14 @@ func BenchmarkNaiveGetSet(b *testing.B) {
 				b.Fatal(err)
 			}
 			defer db.Close()
-			spec := window.SlidingSpec{Window: int64(countKind.Window), Resolution: int64(countKind.Resolution), Horizon: 1}
+			spec := window.SlidingSpec{Window: countKind.Window, Resolution: countKind.Resolution, Horizon: 1}
 			var buf []byte
 			b.ReportAllocs()
 			b.ResetTimer()
 			for i := range b.N {
 				key := []byte(keys[draws[i%numDraws]])
 				t := start + int64(i)*step
-				c := window.NewSlidingCount(spec)
+				c, _ := window.NewSlidingCount(spec)
 				v, closer, err := db.Get(key)
 				if err == nil {
 					err = c.UnmarshalBinary(v)

@@ -13,6 +13,8 @@ import (
 	"testing"
 
 	"github.com/axiomhq/hyperloglog"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 var benchCards = []int{10, 1_000, 100_000, 10_000_000}
@@ -93,7 +95,7 @@ func BenchmarkDistinct(b *testing.B) {
 				case "addquery":
 					benchStream(b, t, hs, d.Add, d.DistinctAt, 0)
 				default:
-					benchStream(b, t, hs, d.Add, d.DistinctAt, benchSpec.Horizon-1)
+					benchStream(b, t, hs, d.Add, d.DistinctAt, int64(benchSpec.Horizon)-1)
 				}
 			})
 		}
@@ -145,7 +147,7 @@ type paneSketches struct {
 }
 
 func (s *paneSketches) add(t int64, h uint64) bool {
-	p := floorDiv(t, s.res)
+	p := sat.FloorDiv(t, s.res)
 	sk := s.panes[p]
 	if sk == nil {
 		sk, _ = hyperloglog.NewSketch(defaultDistinctPrecision, true)
@@ -157,7 +159,7 @@ func (s *paneSketches) add(t int64, h uint64) bool {
 }
 
 func (s *paneSketches) at(t int64) uint64 {
-	p := floorDiv(t, s.res)
+	p := sat.FloorDiv(t, s.res)
 	var m hyperloglog.Sketch
 	for q := p - s.k + 1; q <= p; q++ {
 		if sk := s.panes[q]; sk != nil {
@@ -182,7 +184,7 @@ func BenchmarkDesignPaneSketches(b *testing.B) {
 	for _, n := range benchCards[:3] {
 		hs := benchHashes(n, 1)
 		fill := func() (*paneSketches, int64) {
-			s := &paneSketches{res: benchSpec.Resolution, k: benchSpec.Window / benchSpec.Resolution, panes: map[int64]*hyperloglog.Sketch{}}
+			s := &paneSketches{res: int64(benchSpec.Resolution), k: int64(benchSpec.Window) / int64(benchSpec.Resolution), panes: map[int64]*hyperloglog.Sketch{}}
 			step := max(1800*sec/int64(n), 1)
 			t := benchT0
 			for _, h := range hs {
@@ -273,7 +275,7 @@ func BenchmarkTopK(b *testing.B) {
 	}
 }
 
-func BenchmarkQuantiles(b *testing.B) {
+func BenchmarkQuantile(b *testing.B) {
 	rng := rand.New(rand.NewPCG(7, 7))
 	xs := make([]float64, 1<<16)
 	for i := range xs {
@@ -294,7 +296,7 @@ func BenchmarkQuantiles(b *testing.B) {
 		b.ReportAllocs()
 		var sink float64
 		for b.Loop() {
-			v, _ := s.Quantile(0.95)
+			v, _ := s.Value(0.95)
 			sink += v
 		}
 		_ = sink
@@ -306,6 +308,51 @@ func BenchmarkQuantiles(b *testing.B) {
 				s.Add(xs[i&(1<<16-1)])
 			}
 			benchEncode(b, s)
+		})
+	}
+}
+
+// BenchmarkDistinctEver: one add and one as-of query per event, the
+// pipeline's pattern, on an entity that already holds n distinct items,
+// with events cycling through 4n items (so a quarter of the adds are new
+// early on and repeats later). The baseline is the plain library pattern
+// the summary avoids: insert, then Estimate, on every event.
+//
+//	go test -run '^$' -bench DistinctEver -benchtime 20000x ./sketch/
+func BenchmarkDistinctEver(b *testing.B) {
+	for _, n := range []int{10, 1_000, 100_000} {
+		hs := benchHashes(4*n, 3)
+		spec := DistinctEverSpec{Horizon: 5 * sec}
+		fill := func() *DistinctEver {
+			d := mustEver(b, spec)
+			for i, h := range hs[:n] {
+				d.Add(benchT0+int64(i)*sec/100, h)
+			}
+			return d
+		}
+		b.Run(fmt.Sprintf("n=%d/summary", n), func(b *testing.B) {
+			d := fill()
+			t := benchT0 + int64(n)*sec/100
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				t += sec / 100
+				d.Add(t, hs[i%len(hs)])
+				_ = d.DistinctAt(t)
+			}
+			b.ReportMetric(float64(d.SizeBytes()), "bytes")
+		})
+		b.Run(fmt.Sprintf("n=%d/baseline-estimate-per-event", n), func(b *testing.B) {
+			s, _ := hyperloglog.NewSketch(defaultEverPrecision, true)
+			for _, h := range hs[:n] {
+				s.InsertHash(h)
+			}
+			b.ReportAllocs()
+			b.ResetTimer()
+			for i := range b.N {
+				s.InsertHash(hs[i%len(hs)])
+				_ = s.Estimate()
+			}
 		})
 	}
 }

@@ -3,104 +3,29 @@ package sketch
 import (
 	"encoding/binary"
 	"fmt"
-	"math"
+
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// reader is a byte decoder with a sticky error: after the first failure
-// every read returns zero and the error is checked once at the end.
-type reader struct {
-	b    []byte
-	off  int
-	err  error
-	name string
+// header starts decoding b: it checks the version and kind bytes shared by
+// every encoding and returns a decoder positioned after them, whose Err is
+// set if they are wrong.
+func header(b []byte, kind byte) *wire.Decoder {
+	d := &wire.Decoder{B: b}
+	if len(b) < 2 {
+		d.Fail("header needs 2 bytes, have %d", len(b))
+	}
+	d.Version(formatVersion1)
+	d.Kind(kind)
+	return d
 }
 
-func (r *reader) fail(format string, args ...any) {
-	if r.err == nil {
-		r.err = corruptf("%s: offset %d: %s", r.name, r.off, fmt.Sprintf(format, args...))
-	}
-}
-
-func (r *reader) byte1() byte { return r.fixed(1)[0] }
-
-func (r *reader) uvarint() uint64 { return readVarint(r, binary.Uvarint) }
-
-func (r *reader) varint() int64 { return readVarint(r, binary.Varint) }
-
-// readVarint decodes one varint with f (binary.Uvarint or binary.Varint).
-func readVarint[T uint64 | int64](r *reader, f func([]byte) (T, int)) T {
-	if r.err != nil {
-		return 0
-	}
-	v, n := f(r.b[r.off:])
-	if n <= 0 {
-		r.fail("bad varint")
-		return 0
-	}
-	r.off += n
-	return v
-}
-
-// fixed returns the next n bytes, or n zero bytes after a failure.
-func (r *reader) fixed(n int) []byte {
-	if r.err == nil && len(r.b)-r.off < n {
-		r.fail("truncated")
-	}
-	if r.err != nil {
-		return make([]byte, n)
-	}
-	r.off += n
-	return r.b[r.off-n : r.off]
-}
-
-func (r *reader) u32() uint32 { return binary.BigEndian.Uint32(r.fixed(4)) }
-
-func (r *reader) u64() uint64 { return binary.BigEndian.Uint64(r.fixed(8)) }
-
-func (r *reader) f64() float64 { return math.Float64frombits(r.u64()) }
-
-// bytesN returns the next n bytes without copying.
-func (r *reader) bytesN(n uint64) []byte {
-	if r.err != nil {
+// named adds the summary's name to a decode error.
+func named(name string, err error) error {
+	if err == nil {
 		return nil
 	}
-	if n > uint64(len(r.b)-r.off) {
-		r.fail("length %d exceeds remaining %d bytes", n, len(r.b)-r.off)
-		return nil
-	}
-	v := r.b[r.off : r.off+int(n)]
-	r.off += int(n)
-	return v
-}
-
-// count reads a uvarint element count and rejects counts that cannot fit in
-// the remaining bytes at minBytes per element, so a hostile count never
-// drives a large allocation.
-func (r *reader) count(minBytes int, max uint64) int {
-	n := r.uvarint()
-	if r.err != nil {
-		return 0
-	}
-	if n > max {
-		r.fail("count %d exceeds limit %d", n, max)
-		return 0
-	}
-	if minBytes > 0 && n > uint64(len(r.b)-r.off)/uint64(minBytes) {
-		r.fail("count %d needs at least %d bytes each, %d remain", n, minBytes, len(r.b)-r.off)
-		return 0
-	}
-	return int(n)
-}
-
-// done returns the sticky error, or ErrTrailingBytes if input remains.
-func (r *reader) done() error {
-	if r.err != nil {
-		return r.err
-	}
-	if r.off != len(r.b) {
-		return fmt.Errorf("%s: %d bytes after offset %d: %w", r.name, len(r.b)-r.off, r.off, ErrTrailingBytes)
-	}
-	return nil
+	return fmt.Errorf("sketch: %s: %w", name, err)
 }
 
 func appendU64(dst []byte, v uint64) []byte { return binary.BigEndian.AppendUint64(dst, v) }

@@ -2,10 +2,13 @@ package sketch
 
 import (
 	"encoding/binary"
-	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"math/bits"
+
+	"cmp"
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // CountMinParams sizes a Count-Min sketch (Cormode, Muthukrishnan, "An
@@ -15,7 +18,7 @@ import (
 type CountMinParams struct {
 	// Epsilon bounds the overestimate as a fraction of the total count N:
 	// Estimate(x) <= f(x) + Epsilon*N with probability >= 1-Delta. Range
-	// [1e-6, 1), and width*depth at most 2^22. Default 0.001.
+	// [1e-6, 1), and width*depth at most 2^22. Default 0.01 (width 272).
 	Epsilon float64
 	// Delta is the probability that the Epsilon bound fails for one query.
 	// Range [1e-12, 1). Default 0.01.
@@ -26,8 +29,8 @@ type CountMinParams struct {
 const maxCountMinCells = 1 << 22
 
 func (p CountMinParams) withDefaults() CountMinParams {
-	orDefault(&p.Epsilon, 0.001)
-	orDefault(&p.Delta, 0.01)
+	p.Epsilon = cmp.Or(p.Epsilon, 0.01)
+	p.Delta = cmp.Or(p.Delta, 0.01)
 	return p
 }
 
@@ -35,19 +38,19 @@ func (p CountMinParams) withDefaults() CountMinParams {
 // ErrInvalidSpec.
 func (p CountMinParams) Validate() error {
 	p = p.withDefaults()
-	var errs []error
+	e := check.For("sketch.CountMinParams")
 	if !(p.Epsilon >= 1e-6 && p.Epsilon < 1) {
-		errs = appendSpecErr(errs, "count-min", "Epsilon %v must be in [1e-6, 1)", p.Epsilon)
+		e.Check(false, "Epsilon", "%v must be in [1e-6, 1)", p.Epsilon)
 	}
 	if !(p.Delta >= 1e-12 && p.Delta < 1) {
-		errs = appendSpecErr(errs, "count-min", "Delta %v must be in [1e-12, 1)", p.Delta)
+		e.Check(false, "Delta", "%v must be in [1e-12, 1)", p.Delta)
 	}
-	if len(errs) == 0 {
+	if e.Err() == nil {
 		if w, d := p.Dims(); w*d > maxCountMinCells {
-			errs = appendSpecErr(errs, "count-min", "width %d * depth %d exceeds %d cells", w, d, maxCountMinCells)
+			e.Check(false, "Epsilon", "with Delta gives width %d * depth %d, over %d cells", w, d, maxCountMinCells)
 		}
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 // Dims returns the width and depth the parameters imply (defaults applied).
@@ -92,20 +95,12 @@ func (c *CountMin) col(h uint64, i int) int {
 	return int(hi)
 }
 
-func satAdd(a, b uint64) uint64 {
-	s, carry := bits.Add64(a, b, 0)
-	if carry != 0 {
-		return math.MaxUint64
-	}
-	return s
-}
-
 // Add counts item h n more times (saturating at 2^64-1).
 func (c *CountMin) Add(h uint64, n uint64) {
-	c.n = satAdd(c.n, n)
+	c.n = sat.AddU64(c.n, n)
 	for i := range c.d {
 		k := i*c.w + c.col(h, i)
-		c.cells[k] = satAdd(c.cells[k], n)
+		c.cells[k] = sat.AddU64(c.cells[k], n)
 	}
 }
 
@@ -119,8 +114,8 @@ func (c *CountMin) Estimate(h uint64) uint64 {
 	return est
 }
 
-// Total returns N, the sum of all counts added.
-func (c *CountMin) Total() uint64 { return c.n }
+// Count returns N, the sum of all counts added.
+func (c *CountMin) Count() uint64 { return c.n }
 
 // ErrorBound returns Epsilon*N: the overestimate bound that holds per query
 // with probability at least 1-Delta.
@@ -132,9 +127,9 @@ func (c *CountMin) Merge(o *CountMin) error {
 	if c.params != o.params {
 		return fmt.Errorf("count-min merge: %+v vs %+v: %w", c.params, o.params, ErrIncompatible)
 	}
-	c.n = satAdd(c.n, o.n)
+	c.n = sat.AddU64(c.n, o.n)
 	for i, v := range o.cells {
-		c.cells[i] = satAdd(c.cells[i], v)
+		c.cells[i] = sat.AddU64(c.cells[i], v)
 	}
 	return nil
 }
@@ -185,54 +180,55 @@ func (c *CountMin) AppendBinary(dst []byte) ([]byte, error) {
 // (i+1)*0x9e3779b97f4a7c15, multiply-shift to the width); item hashes are
 // XXH64 with seed 0. Trailing bytes return ErrTrailingBytes; anything else
 // malformed ErrCorrupt.
-func (c *CountMin) UnmarshalBinary(b []byte) error {
-	const name = "count-min"
-	if err := checkHeader(b, kindCountMin, name); err != nil {
-		return err
+func (c *CountMin) UnmarshalBinary(b []byte) error { return named("count-min", c.unmarshal(b)) }
+
+func (c *CountMin) unmarshal(b []byte) error {
+	r := header(b, kindCountMin)
+	if r.Err != nil {
+		return r.Err
 	}
-	r := &reader{b: b, off: 2, name: name}
-	p := CountMinParams{Epsilon: r.f64(), Delta: r.f64()}
-	n := r.uvarint()
-	if r.err != nil {
-		return r.err
+	p := CountMinParams{Epsilon: r.Float64BE(), Delta: r.Float64BE()}
+	n := r.Uvarint()
+	if r.Err != nil {
+		return r.Err
 	}
 	if p.Epsilon == 0 || p.Delta == 0 || p.Validate() != nil {
-		return corruptf("%s: parameters %+v", name, p)
+		return corruptf("parameters %+v", p)
 	}
 	nc, err := NewCountMin(p)
 	if err != nil {
-		return corruptf("%s: %v", name, err)
+		return corruptf("%v", err)
 	}
 	nc.n = n
 	pos := 0
-	for r.err == nil {
-		z := r.uvarint()
+	for r.Err == nil {
+		z := r.Uvarint()
 		if z > uint64(len(nc.cells)-pos) {
-			r.fail("zero run %d past the last cell", z)
+			r.Fail("zero run %d past the last cell", z)
 			break
 		}
 		pos += int(z)
 		if pos == len(nc.cells) {
 			break
 		}
-		v := r.uvarint()
-		if r.err == nil && v == 0 {
-			r.fail("zero cell value")
+		v := r.Uvarint()
+		if r.Err == nil && v == 0 {
+			r.Fail("zero cell value")
 		}
 		nc.cells[pos] = v
 		pos++
 	}
-	if err := r.done(); err != nil {
+	if err := r.Finish(); err != nil {
 		return err
 	}
 	if n != math.MaxUint64 {
 		for i := range nc.d {
 			var sum uint64
 			for _, v := range nc.cells[i*nc.w : (i+1)*nc.w] {
-				sum = satAdd(sum, v)
+				sum = sat.AddU64(sum, v)
 			}
 			if sum != n {
-				return corruptf("%s: row %d sums to %d, N = %d", name, i, sum, n)
+				return corruptf("row %d sums to %d, N = %d", i, sum, n)
 			}
 		}
 	}

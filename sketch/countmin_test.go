@@ -54,8 +54,8 @@ func TestCountMinBounds(t *testing.T) {
 		if limit := p.Delta*n + 4*math.Sqrt(p.Delta*(1-p.Delta)*n); float64(fails) > limit {
 			t.Fatalf("seed %d: %d of %.0f items beyond eps*N, limit %.0f", seed, fails, n, limit)
 		}
-		if cm.Total() != N || cm.ErrorBound() != bound {
-			t.Fatalf("total %d bound %v", cm.Total(), cm.ErrorBound())
+		if cm.Count() != N || cm.ErrorBound() != bound {
+			t.Fatalf("total %d bound %v", cm.Count(), cm.ErrorBound())
 		}
 		t.Logf("seed %d: %.0f items, %d beyond eps*N=%.0f (delta allows %.0f)", seed, n, fails, bound, p.Delta*n)
 	}
@@ -109,4 +109,12 @@ func mustCM(t testing.TB, p CountMinParams) *CountMin {
 		t.Fatal(err)
 	}
 	return c
+}
+
+// The zero parameters mean epsilon 0.01 and delta 0.01: width ceil(e/0.01)
+// = 272 and depth ceil(ln 100) = 5 (Cormode, Muthukrishnan 2005 sizing).
+func TestCountMinDefaultDims(t *testing.T) {
+	if w, d := (CountMinParams{}).Dims(); w != 272 || d != 5 {
+		t.Fatalf("default dims %d x %d, want 272 x 5", w, d)
+	}
 }

@@ -2,28 +2,31 @@ package sketch
 
 import (
 	"cmp"
-	"errors"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"slices"
+	"time"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // DistinctSpec shapes a windowed distinct count. The zero value of each
 // optional field means its default.
 type DistinctSpec struct {
-	// Window is the counted interval in nanoseconds: a query at t counts the
+	// Window is the counted interval: a query at t counts the
 	// Window/Resolution most recent panes up to and including pane(t), the
 	// newest one cut at t. Must be a positive multiple of Resolution and at
 	// most 2^61. Required; no default.
-	Window int64
-	// Resolution is the pane width in nanoseconds; pane(t) = floor(t /
+	Window time.Duration
+	// Resolution is the pane width; pane(t) = floor(t /
 	// Resolution), aligned to the Unix epoch. The trailing edge of a query's
 	// window is exact to one pane (see Distinct). Required; no default.
-	Resolution int64
+	Resolution time.Duration
 	// Horizon is how far behind the newest added time adds and as-of queries
-	// stay exact, in nanoseconds: the pipeline passes its allowed disorder.
+	// stay exact: the pipeline passes its allowed disorder.
 	// Window/Resolution + ceil(Horizon/Resolution) + 1 must not exceed 512.
 	// Default 0.
-	Horizon int64
+	Horizon time.Duration
 	// Precision p gives 2^p HyperLogLog registers once the exact set is
 	// exceeded; relative standard error 1.04/sqrt(2^p). Range 4..18.
 	// Default 12 (1.625%).
@@ -38,7 +41,7 @@ const (
 	defaultDistinctPrecision = 12
 	defaultExactLimit        = 128
 	maxExactLimit            = 4096
-	maxSpecDuration          = int64(1) << 61
+	maxSpecDuration          = time.Duration(1) << 61
 	// Times outside [minTime, maxTime] are rejected by Add and answered 0
 	// by DistinctAt, so pane arithmetic cannot overflow.
 	minTime = -(int64(1) << 62)
@@ -47,8 +50,8 @@ const (
 
 // withDefaults returns s with zero optional fields set to their defaults.
 func (s DistinctSpec) withDefaults() DistinctSpec {
-	orDefault(&s.Precision, defaultDistinctPrecision)
-	orDefault(&s.ExactLimit, defaultExactLimit)
+	s.Precision = cmp.Or(s.Precision, defaultDistinctPrecision)
+	s.ExactLimit = cmp.Or(s.ExactLimit, defaultExactLimit)
 	return s
 }
 
@@ -56,43 +59,33 @@ func (s DistinctSpec) withDefaults() DistinctSpec {
 // ErrInvalidSpec. Zero optional fields are valid (they mean the default).
 func (s DistinctSpec) Validate() error {
 	s = s.withDefaults()
-	var errs []error
-	bad := func(format string, args ...any) { errs = appendSpecErr(errs, "distinct spec", format, args...) }
+	e := check.For("sketch.DistinctSpec")
 	if s.Resolution <= 0 || s.Resolution > maxSpecDuration {
-		bad("Resolution %d must be in [1, 2^61]", s.Resolution)
+		e.Check(false, "Resolution", "%d must be in [1, 2^61]", s.Resolution)
 	}
 	if s.Window <= 0 || s.Window > maxSpecDuration {
-		bad("Window %d must be in [1, 2^61]", s.Window)
+		e.Check(false, "Window", "%d must be in [1, 2^61]", s.Window)
 	}
 	if s.Horizon < 0 || s.Horizon > maxSpecDuration {
-		bad("Horizon %d must be in [0, 2^61]", s.Horizon)
+		e.Check(false, "Horizon", "%d must be in [0, 2^61]", s.Horizon)
 	}
 	if s.Resolution > 0 && s.Window > 0 && s.Horizon >= 0 {
 		if s.Window%s.Resolution != 0 {
-			bad("Window %d is not a multiple of Resolution %d", s.Window, s.Resolution)
-		} else if span := s.Window/s.Resolution + ceilDiv(s.Horizon, s.Resolution) + 1; span > maxSpan {
-			bad("Window/Resolution + ceil(Horizon/Resolution) + 1 = %d exceeds %d panes", span, maxSpan)
+			e.Check(false, "Window", "%d is not a multiple of Resolution %d", s.Window, s.Resolution)
+		} else if span := int64(s.Window/s.Resolution) + ceilDiv(int64(s.Horizon), int64(s.Resolution)) + 1; span > maxSpan {
+			e.Check(false, "Window", "/Resolution + ceil(Horizon/Resolution) + 1 = %d exceeds %d panes", span, maxSpan)
 		}
 	}
 	if s.Precision < 4 || s.Precision > 18 {
-		bad("Precision %d must be in [4, 18]", s.Precision)
+		e.Check(false, "Precision", "%d must be in [4, 18]", s.Precision)
 	}
 	if s.ExactLimit < 1 || s.ExactLimit > maxExactLimit {
-		bad("ExactLimit %d must be in [1, %d]", s.ExactLimit, maxExactLimit)
+		e.Check(false, "ExactLimit", "%d must be in [1, %d]", s.ExactLimit, maxExactLimit)
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
 func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }
-
-// floorDiv is floor(a/b) for b > 0.
-func floorDiv(a, b int64) int64 {
-	q := a / b
-	if a%b != 0 && a < 0 {
-		q--
-	}
-	return q
-}
 
 // Distinct is a windowed distinct count of 64-bit item hashes over event
 // time.
@@ -167,7 +160,7 @@ func NewDistinct(spec DistinctSpec) (*Distinct, error) {
 		return nil, err
 	}
 	spec = spec.withDefaults()
-	return &Distinct{spec: spec, k: spec.Window / spec.Resolution}, nil
+	return &Distinct{spec: spec, k: int64(spec.Window / spec.Resolution)}, nil
 }
 
 // Spec returns the spec with defaults applied.
@@ -189,11 +182,14 @@ func (d *Distinct) RelativeError() float64 {
 	return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision))
 }
 
-func (d *Distinct) pane(t int64) int64 { return floorDiv(t, d.spec.Resolution) }
+func (d *Distinct) res() int64 { return int64(d.spec.Resolution) }
+func (d *Distinct) hor() int64 { return int64(d.spec.Horizon) }
+
+func (d *Distinct) pane(t int64) int64 { return sat.FloorDiv(t, d.res()) }
 
 // floorPane is the oldest pane any query at t >= newest-Horizon reads.
 func (d *Distinct) floorPane() int64 {
-	return d.pane(d.newest-d.spec.Horizon) - d.k + 1
+	return d.pane(d.newest-d.hor()) - d.k + 1
 }
 
 // Add records item h at time t. It returns false, changing nothing, if t is
@@ -260,8 +256,8 @@ func (d *Distinct) addExact(e exactEntry) {
 // answer within the contract, so the encoding and the promotion point
 // depend only on what was added.
 func (d *Distinct) normalizeExact() {
-	floorT := d.floorPane() * d.spec.Resolution
-	settled := d.newest - d.spec.Horizon
+	floorT := d.floorPane() * d.res()
+	settled := d.newest - d.hor()
 	out := d.exact[:0]
 	nfp := 0
 	for i := 0; i < len(d.exact); {
@@ -275,7 +271,7 @@ func (d *Distinct) normalizeExact() {
 				continue
 			}
 			if e.t <= settled {
-				best, haveBest = d.pane(e.t)*d.spec.Resolution, true
+				best, haveBest = d.pane(e.t)*d.res(), true
 			}
 		}
 		start := len(out)
@@ -316,7 +312,7 @@ func cmpTail(a, b tailEntry) int {
 }
 
 func (d *Distinct) addSketch(t int64, key uint32) {
-	settled := d.newest - d.spec.Horizon
+	settled := d.newest - d.hor()
 	if t > settled {
 		i, found := slices.BinarySearchFunc(d.liveTail(), tailEntry{t, key}, cmpTail)
 		if !found {
@@ -336,7 +332,7 @@ func (d *Distinct) liveTail() []tailEntry { return d.tail[d.tailHead:] }
 // dropped by advancing tailHead; the buffer is compacted in place once the
 // dropped prefix is the larger half, so the cost is amortised O(1).
 func (d *Distinct) settleTail() {
-	settled := d.newest - d.spec.Horizon
+	settled := d.newest - d.hor()
 	for d.tailHead < len(d.tail) && d.tail[d.tailHead].t <= settled {
 		d.fold(d.pane(d.tail[d.tailHead].t), d.tail[d.tailHead].key)
 		d.tailHead++
@@ -429,7 +425,7 @@ func (d *Distinct) DistinctAt(t int64) uint64 {
 		return d.cacheV
 	}
 	start := d.pane(t) - d.k + 1
-	startT := start * d.spec.Resolution
+	startT := start * d.res()
 	var n uint64
 	if d.regs == nil {
 		var last uint32

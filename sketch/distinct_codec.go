@@ -4,6 +4,9 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math/bits"
+	"time"
+
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // Merge adds every item of o to d. Both must have the same spec
@@ -82,7 +85,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 	dst = append(dst, flags)
 	dst = binary.AppendVarint(dst, d.newest)
 	newestPane := d.pane(d.newest)
-	settled := d.newest - s.Horizon
+	settled := d.newest - int64(s.Horizon)
 	floor := d.floorPane()
 	if d.regs == nil {
 		d.normalizeExact()
@@ -196,46 +199,47 @@ func riceParam(n int) uint {
 //
 // Bytes after the last field return ErrTrailingBytes; anything else
 // malformed returns ErrCorrupt.
-func (d *Distinct) UnmarshalBinary(b []byte) error {
-	const name = "distinct"
-	if err := checkHeader(b, kindDistinct, name); err != nil {
-		return err
+func (d *Distinct) UnmarshalBinary(b []byte) error { return named("distinct", d.unmarshal(b)) }
+
+func (d *Distinct) unmarshal(b []byte) error {
+	r := header(b, kindDistinct)
+	if r.Err != nil {
+		return r.Err
 	}
-	r := &reader{b: b, off: 2, name: name}
 	var s DistinctSpec
-	s.Window = int64(min(r.uvarint(), 1<<62))
-	s.Resolution = int64(min(r.uvarint(), 1<<62))
-	s.Horizon = int64(min(r.uvarint(), 1<<62))
-	s.Precision = r.byte1()
-	s.ExactLimit = int(min(r.uvarint(), 1<<20))
-	flags := r.byte1()
-	if r.err != nil {
-		return r.err
+	s.Window = time.Duration(min(r.Uvarint(), 1<<62))
+	s.Resolution = time.Duration(min(r.Uvarint(), 1<<62))
+	s.Horizon = time.Duration(min(r.Uvarint(), 1<<62))
+	s.Precision = r.Byte()
+	s.ExactLimit = int(min(r.Uvarint(), 1<<20))
+	flags := r.Byte()
+	if r.Err != nil {
+		return r.Err
 	}
 	if s.Precision == 0 || s.ExactLimit == 0 {
-		return corruptf("%s: zero Precision or ExactLimit", name)
+		return corruptf("zero Precision or ExactLimit")
 	}
 	if err := s.Validate(); err != nil {
-		return corruptf("%s: %v", name, err)
+		return corruptf("%v", err)
 	}
-	nd := &Distinct{spec: s, k: s.Window / s.Resolution}
+	nd := &Distinct{spec: s, k: int64(s.Window / s.Resolution)}
 	if flags&^(flagHasNewest|flagSketch) != 0 || flags == flagSketch {
-		return corruptf("%s: flags %#x", name, flags)
+		return corruptf("flags %#x", flags)
 	}
 	if flags&flagHasNewest == 0 {
-		if err := r.done(); err != nil {
+		if err := r.Finish(); err != nil {
 			return err
 		}
 		*d = *nd
 		return nil
 	}
 	nd.has = true
-	nd.newest = r.varint()
-	if r.err == nil && (nd.newest < minTime || nd.newest > maxTime) {
-		r.fail("newest %d out of range", nd.newest)
+	nd.newest = r.Varint()
+	if r.Err == nil && (nd.newest < minTime || nd.newest > maxTime) {
+		r.Fail("newest %d out of range", nd.newest)
 	}
-	if r.err != nil {
-		return r.err
+	if r.Err != nil {
+		return r.Err
 	}
 	var err error
 	if flags&flagSketch == 0 {
@@ -246,27 +250,27 @@ func (d *Distinct) UnmarshalBinary(b []byte) error {
 	if err != nil {
 		return err
 	}
-	if err := r.done(); err != nil {
+	if err := r.Finish(); err != nil {
 		return err
 	}
 	*d = *nd
 	return nil
 }
 
-func (d *Distinct) decodeExact(r *reader) error {
+func (d *Distinct) decodeExact(r *wire.Decoder) error {
 	P := d.pane(d.newest)
 	F := d.floorPane()
-	S := d.newest - d.spec.Horizon
+	S := d.newest - d.hor()
 	limit := d.spec.ExactLimit
-	n := r.count(0, uint64(limit))
+	n := r.Count(0, uint64(limit))
 	if n > 0 {
-		k := uint(r.byte1())
-		body := r.bytesN(r.uvarint())
-		if r.err != nil {
-			return r.err
+		k := uint(r.Byte())
+		body := r.Bytes(r.Len())
+		if r.Err != nil {
+			return r.Err
 		}
 		if k > 31 {
-			return corruptf("%s: Rice parameter %d", r.name, k)
+			return corruptf("Rice parameter %d", k)
 		}
 		ageBits := uint(bits.Len64(uint64(P - F)))
 		br := bitReader{b: body}
@@ -277,32 +281,32 @@ func (d *Distinct) decodeExact(r *reader) error {
 			age := int64(br.read(ageBits))
 			fp += delta
 			if br.bad || fp >= 1<<32 || (i > 0 && delta == 0) || age > P-F {
-				return corruptf("%s: settled entry %d", r.name, i)
+				return corruptf("settled entry %d", i)
 			}
-			t := (P - age) * d.spec.Resolution
+			t := (P - age) * d.res()
 			if t > S {
-				return corruptf("%s: settled entry %d at %d after settled time %d", r.name, i, t, S)
+				return corruptf("settled entry %d at %d after settled time %d", i, t, S)
 			}
 			d.exact = append(d.exact, exactEntry{uint32(fp), t})
 		}
 		if !br.padOK() {
-			return corruptf("%s: settled bit stream length or padding", r.name)
+			return corruptf("settled bit stream length or padding")
 		}
 	}
-	nt := r.count(5, uint64(len(r.b)))
+	nt := r.Count(5, uint64(len(r.B)))
 	for i := range nt {
-		e := exactEntry{fp: r.u32()}
-		age := r.uvarint()
-		if r.err != nil {
-			return r.err
+		e := exactEntry{fp: r.Uint32BE()}
+		age := r.Uvarint()
+		if r.Err != nil {
+			return r.Err
 		}
-		if age >= uint64(d.spec.Horizon) {
-			return corruptf("%s: unsettled entry %d age %d >= Horizon", r.name, i, age)
+		if age >= uint64(d.hor()) {
+			return corruptf("unsettled entry %d age %d >= Horizon", i, age)
 		}
 		e.t = d.newest - int64(age)
 		if i > 0 {
 			if p := d.exact[len(d.exact)-1]; p.t > S && (cmpExact(p, e) >= 0 || p.fp == e.fp && d.pane(p.t) == d.pane(e.t)) {
-				return corruptf("%s: unsettled entry %d out of order or in the pane of the previous one", r.name, i)
+				return corruptf("unsettled entry %d out of order or in the pane of the previous one", i)
 			}
 		}
 		d.exact = append(d.exact, e)
@@ -310,12 +314,12 @@ func (d *Distinct) decodeExact(r *reader) error {
 	sortExact(d.exact)
 	for i := 1; i < len(d.exact); i++ {
 		if cmpExact(d.exact[i-1], d.exact[i]) == 0 {
-			return corruptf("%s: duplicate entry", r.name)
+			return corruptf("duplicate entry")
 		}
 	}
 	d.nfp = countFP(d.exact)
 	if d.nfp > limit {
-		return corruptf("%s: %d items exceed ExactLimit %d", r.name, d.nfp, limit)
+		return corruptf("%d items exceed ExactLimit %d", d.nfp, limit)
 	}
 	return nil
 }
@@ -330,61 +334,61 @@ func countFP(es []exactEntry) int {
 	return n
 }
 
-func (d *Distinct) decodeSketch(r *reader) error {
+func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 	p := d.spec.Precision
 	P := d.pane(d.newest)
 	F := d.floorPane()
 	maxRho := 33 - p
 	m := 1 << p
-	if len(r.b)-r.off < m {
-		return corruptf("%s: %d registers need at least %d bytes, %d remain", r.name, m, m, len(r.b)-r.off)
+	if len(r.B) < m {
+		return corruptf("%d registers need at least %d bytes, %d remain", m, m, len(r.B))
 	}
 	d.regs = newSlidingRegs(p, F)
 	var list [64]uint16
 	for j := range m {
-		n := int(r.byte1())
+		n := int(r.Byte())
 		if n > int(maxRho) {
-			r.fail("register %d: %d entries", j, n)
+			r.Fail("register %d: %d entries", j, n)
 		}
 		prevRho, prevAge := uint8(255), uint64(1<<63)
 		l := list[:0]
 		for range n {
-			rho := r.byte1()
-			age := r.uvarint()
-			if r.err != nil {
-				return r.err
+			rho := r.Byte()
+			age := r.Uvarint()
+			if r.Err != nil {
+				return r.Err
 			}
 			if rho == 0 || rho > maxRho || rho >= prevRho || age >= prevAge || age > uint64(P-F) {
-				return corruptf("%s: register %d frontier entry (rho %d, age %d)", r.name, j, rho, age)
+				return corruptf("register %d frontier entry (rho %d, age %d)", j, rho, age)
 			}
 			prevRho, prevAge = rho, age
 			l = append(l, uint16(rho)<<paneOffBits|uint16(P-int64(age)-F))
 		}
-		if r.err != nil {
-			return r.err
+		if r.Err != nil {
+			return r.Err
 		}
 		if n > 0 {
 			d.regs.store(uint32(j), l)
 		}
 	}
-	nt := r.count(2, uint64(len(r.b)))
+	nt := r.Count(2, uint64(len(r.B)))
 	for i := range nt {
-		key := r.uvarint()
-		age := r.uvarint()
-		if r.err != nil {
-			return r.err
+		key := r.Uvarint()
+		age := r.Uvarint()
+		if r.Err != nil {
+			return r.Err
 		}
 		rho := key & 63
-		if key>>6 >= uint64(m) || rho == 0 || rho > uint64(maxRho) || age >= uint64(d.spec.Horizon) {
-			return corruptf("%s: unsettled entry %d (key %d, age %d)", r.name, i, key, age)
+		if key>>6 >= uint64(m) || rho == 0 || rho > uint64(maxRho) || age >= uint64(d.hor()) {
+			return corruptf("unsettled entry %d (key %d, age %d)", i, key, age)
 		}
 		e := tailEntry{t: d.newest - int64(age), key: uint32(key)}
 		if i > 0 && cmpTail(d.tail[i-1], e) >= 0 {
-			return corruptf("%s: unsettled entry %d out of order", r.name, i)
+			return corruptf("unsettled entry %d out of order", i)
 		}
 		d.tail = append(d.tail, e)
 	}
-	return r.err
+	return r.Err
 }
 
 func sortExact(es []exactEntry) {

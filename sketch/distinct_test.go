@@ -7,9 +7,11 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
-const sec = int64(1e9)
+const sec = 1_000_000_000 // untyped: a time (int64 ns) or a time.Duration
 
 type event struct {
 	t int64
@@ -24,8 +26,8 @@ type refDistinct struct {
 }
 
 func (r *refDistinct) at(t int64) int {
-	k := r.spec.Window / r.spec.Resolution
-	startT := (floorDiv(t, r.spec.Resolution) - k + 1) * r.spec.Resolution
+	k := int64(r.spec.Window) / int64(r.spec.Resolution)
+	startT := (sat.FloorDiv(t, int64(r.spec.Resolution)) - k + 1) * int64(r.spec.Resolution)
 	seen := map[uint32]bool{}
 	for _, e := range r.events {
 		if e.t <= t && e.t >= startT {
@@ -88,14 +90,14 @@ func TestDistinctMatchesReference(t *testing.T) {
 			}
 			ref.events = append(ref.events, e)
 			newest, _ := d.Newest()
-			for _, q := range []int64{newest, newest - spec.Horizon, newest - rng.Int64N(spec.Horizon+1), newest + 7*sec} {
+			for _, q := range []int64{newest, newest - int64(spec.Horizon), newest - rng.Int64N(int64(spec.Horizon)+1), newest + 7*sec} {
 				got, want := d.DistinctAt(q), ref.at(q)
 				if int(got) != want {
 					t.Fatalf("seed %d event %d: DistinctAt(%d) = %d, want %d", seed, i, q, got, want)
 				}
 				// The pane window lies inside the exact window and covers
 				// all but the last pane of it.
-				if ex := ref.exactWindow(q-spec.Window, q); want > ex || want < ref.exactWindow(q-spec.Window+spec.Resolution, q) {
+				if ex := ref.exactWindow(q-int64(spec.Window), q); want > ex || want < ref.exactWindow(q-int64(spec.Window)+int64(spec.Resolution), q) {
 					t.Fatalf("seed %d: pane count %d outside exact-window bounds (%d)", seed, want, ex)
 				}
 			}
@@ -122,7 +124,7 @@ func TestDistinctSketchModeTracksReference(t *testing.T) {
 				continue
 			}
 			newest, _ := d.Newest()
-			for _, q := range []int64{newest, newest - spec.Horizon, newest - 1*sec} {
+			for _, q := range []int64{newest, newest - int64(spec.Horizon), newest - 1*sec} {
 				got, want := float64(d.DistinctAt(q)), float64(ref.at(q))
 				if math.Abs(got-want) > 5*sigma*want+1 {
 					t.Fatalf("seed %d event %d: DistinctAt(%d) = %v, want %v ± %.1f%%", seed, i, q, got, want, 500*sigma)
@@ -155,7 +157,7 @@ func TestDistinctOrderIndependent(t *testing.T) {
 			shuffled := slices.Clone(evs)
 			for i := 0; i < len(shuffled); {
 				j := i
-				for j < len(shuffled) && shuffled[j].t-shuffled[i].t < spec.Horizon {
+				for j < len(shuffled) && shuffled[j].t-shuffled[i].t < int64(spec.Horizon) {
 					j++
 				}
 				blk := shuffled[i:j]
@@ -166,7 +168,7 @@ func TestDistinctOrderIndependent(t *testing.T) {
 				b.Add(e.t, e.h)
 			}
 			newest, _ := a.Newest()
-			for q := newest - spec.Horizon; q <= newest+spec.Window; q += sec / 2 {
+			for q := newest - int64(spec.Horizon); q <= newest+int64(spec.Window); q += sec / 2 {
 				if x, y := a.DistinctAt(q), b.DistinctAt(q); x != y {
 					t.Fatalf("limit %d seed %d: DistinctAt(%d) %d vs %d", limit, seed, q, x, y)
 				}
@@ -209,7 +211,7 @@ func TestDistinctRoundTrip(t *testing.T) {
 			for _, f := range evs[i+1:] {
 				c.Add(f.t, f.h)
 			}
-			for q := newest - spec.Horizon; q <= newest+spec.Window; q += sec / 4 {
+			for q := newest - int64(spec.Horizon); q <= newest+int64(spec.Window); q += sec / 4 {
 				if x, y := c.DistinctAt(q), full.DistinctAt(q); x != y {
 					t.Fatalf("limit %d checkpoint %d: DistinctAt(%d) restored %d, uninterrupted %d", limit, i, q, x, y)
 				}
@@ -239,7 +241,7 @@ func TestDistinctMergeOrderFree(t *testing.T) {
 			}
 		}
 		newest, _ := whole.Newest()
-		for q := newest - spec.Horizon; q <= newest+spec.Window; q += sec / 3 {
+		for q := newest - int64(spec.Horizon); q <= newest+int64(spec.Window); q += sec / 3 {
 			if x, y := m.DistinctAt(q), whole.DistinctAt(q); x != y {
 				t.Fatalf("order %v: DistinctAt(%d) merged %d, whole %d", order, q, x, y)
 			}

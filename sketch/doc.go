@@ -1,8 +1,10 @@
 // Package sketch holds mergeable summaries with versioned binary encodings
 // and stated error bounds, for per-entity features: a windowed distinct
-// count (Distinct), item frequencies (CountMin), heavy hitters (TopK) and
-// relative-error quantiles (Quantiles). It does no I/O and depends on no
-// other tallyward package.
+// count (Distinct), a distinct count over a whole history (DistinctEver),
+// item frequencies (CountMin), heavy hitters (TopK) and relative-error
+// quantiles (Quantile). It does no I/O and depends on no other tallyward
+// package but two internal helpers (the shared decoder and saturating
+// arithmetic).
 //
 // # Items, time and hashing
 //
@@ -25,16 +27,20 @@
 //     with probability at least 1-Delta (Cormode, Muthukrishnan, 2005).
 //   - TopK: Count-Err <= f <= Count per monitored item; every item with
 //     f > N/Capacity is monitored (Metwally, Agrawal, El Abbadi, 2005).
-//   - Quantiles: every estimate within RelativeAccuracy of the exact value
+//   - Quantile: every estimate within RelativeAccuracy of the exact value
 //     of its rank, for positive, negative and zero values, as long as that
 //     rank is not in a collapsed bucket (Masson, Rim, Lee, 2019).
+//   - DistinctEver: near-exact while its sparse form is small (25-bit
+//     indices; Heule, Nunkesser, Hall, EDBT 2013), then relative standard
+//     error 1.04/sqrt(2^p); as of any t >= Newest()-Horizon it never counts
+//     an item newer than t.
 //
 // Each type reports its bound: Distinct.RelativeError, CountMin.ErrorBound,
-// TopK.ErrorBound, Quantiles.RelativeError.
+// TopK.ErrorBound, Quantile.RelativeError, DistinctEver.RelativeError.
 //
 // # Order
 //
-// CountMin and Quantiles are functions of the multiset of adds: any
+// CountMin and Quantile are functions of the multiset of adds: any
 // arrival order, and any order of Merge, gives identical answers. Distinct
 // is too within a mode: its register frontiers and exact entries are
 // unions, and promoted items land in the same registers as items added
@@ -46,13 +52,16 @@
 // and its Merge is commutative but not associative. For bit-identical
 // Settled results, apply the events of TopK and Distinct in the canonical
 // (time, tie-break) order once the watermark passes them, as the pipeline
-// does, and do not merge partial TopK summaries.
+// does, and do not merge partial TopK summaries. DistinctEver has no Merge;
+// its state is a function of the sequence of adds, and its estimate of
+// the set it holds, except at the sparse-to-dense switch.
 //
 // # Encodings
 //
 // Every type has AppendBinary and UnmarshalBinary. The first byte is the
 // format version (1), the second the kind (1 distinct, 2 Count-Min, 3
-// Space-Saving, 4 quantiles; frozen, never reused); the byte table is in
+// Space-Saving, 4 quantile, 5 distinct-ever; frozen, never reused); the
+// byte table is in
 // each UnmarshalBinary doc comment. Decoders reject unknown versions
 // (ErrUnknownVersion), trailing bytes (ErrTrailingBytes) and anything
 // malformed (ErrCorrupt), wrapped with context for errors.Is, and leave
@@ -72,7 +81,10 @@
 // (frontiers spill beyond four entries). A window start not seen before
 // costs one O(2^p) view rebuild (once per pane boundary). CountMin:
 // 8*width*depth bytes, Add/Estimate O(depth). TopK: O(log Capacity) per Add.
-// Quantiles: one logarithm per Add, 8 bytes per bucket.
+// Quantile: one logarithm per Add, 8 bytes per bucket. DistinctEver: a few
+// bytes per item while sparse, 2*2^p once dense; the per-event Add+DistinctAt
+// about 1-6 us, more while a sparse set takes many new items within the
+// horizon (BenchmarkDistinctEver; figures on the type).
 //
 // # What it is not for
 //

@@ -2,6 +2,7 @@ package sketch_test
 
 import (
 	"fmt"
+	"time"
 
 	"github.com/tallyward/tallyward/sketch"
 )
@@ -9,12 +10,12 @@ import (
 // Distinct accounts seen on one device in the last 24 hours, with one-hour
 // panes and a 5-second allowed disorder.
 func ExampleDistinct() {
-	const hour = int64(3600e9)
-	d, err := sketch.NewDistinct(sketch.DistinctSpec{Window: 24 * hour, Resolution: hour, Horizon: 5e9})
+	d, err := sketch.NewDistinct(sketch.DistinctSpec{Window: 24 * time.Hour, Resolution: time.Hour, Horizon: 5 * time.Second})
 	if err != nil {
 		panic(err)
 	}
-	t0 := int64(1_767_225_600e9) // 2026-01-01T00:00:00Z
+	const hour = int64(time.Hour)
+	t0 := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC).UnixNano()
 	d.Add(t0, sketch.HashString("acct-a"))
 	d.Add(t0+2*hour, sketch.HashString("acct-b"))
 	fmt.Println(d.DistinctAt(t0 + 2*hour))
@@ -28,12 +29,12 @@ func ExampleDistinct() {
 }
 
 // Is this amount above the card's 95th percentile?
-func ExampleQuantiles() {
-	q, _ := sketch.NewQuantiles(sketch.QuantileParams{RelativeAccuracy: 0.01})
+func ExampleQuantile() {
+	q, _ := sketch.NewQuantile(sketch.QuantileParams{RelativeAccuracy: 0.01})
 	for i := 1; i <= 100; i++ {
 		q.Add(float64(i))
 	}
-	p95, _ := q.Quantile(0.95)
+	p95, _ := q.Value(0.95)
 	fmt.Printf("p95 %.1f, 250 above: %v\n", p95, 250 > p95)
 	// Output: p95 94.6, 250 above: true
 }
@@ -46,4 +47,19 @@ func ExampleTopK() {
 	}
 	fmt.Printf("%.2f\n", s.TopShare())
 	// Output: 0.60
+}
+
+// Distinct devices ever seen for one account, however long ago.
+func ExampleDistinctEver() {
+	d, err := sketch.NewDistinctEver(sketch.DistinctEverSpec{Horizon: 5 * time.Second})
+	if err != nil {
+		panic(err)
+	}
+	t0 := time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC).UnixNano()
+	day := int64(24 * time.Hour)
+	d.Add(t0, sketch.HashString("device-a"))
+	d.Add(t0+200*day, sketch.HashString("device-b"))
+	d.Add(t0+400*day, sketch.HashString("device-a"))
+	fmt.Println(d.DistinctAt(t0+400*day), d.Count())
+	// Output: 2 3
 }

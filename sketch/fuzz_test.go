@@ -123,19 +123,39 @@ func FuzzTopKUnmarshal(f *testing.F) {
 	})
 }
 
-func FuzzQuantilesUnmarshal(f *testing.F) {
+func FuzzQuantileUnmarshal(f *testing.F) {
 	fuzzDecoder(f, goldenSeeds(f, "quantiles"), func() encoder {
-		s, _ := NewQuantiles(QuantileParams{MaxBuckets: 16})
+		s, _ := NewQuantile(QuantileParams{MaxBuckets: 16})
 		s.Add(3)
 		return s
 	}, func(e encoder) {
-		s := e.(*Quantiles)
+		s := e.(*Quantile)
 		for _, x := range []float64{-1e300, -1, 0, 5e-324, 1, 1e300} {
 			s.Add(x)
-			_, _ = s.Quantile(0.5)
+			_, _ = s.Value(0.5)
 		}
-		_, _ = s.Quantile(1)
-		o, _ := NewQuantiles(s.Params())
+		_, _ = s.Value(1)
+		o, _ := NewQuantile(s.Params())
 		_ = o.Merge(s)
+	})
+}
+
+func FuzzDistinctEverUnmarshal(f *testing.F) {
+	fuzzDecoder(f, goldenSeeds(f, "ever"), func() encoder {
+		d, _ := NewDistinctEver(DistinctEverSpec{Precision: 5, Horizon: 3 * sec})
+		d.Add(100*sec, 1<<40)
+		return d
+	}, func(e encoder) {
+		// Use the decoded state past its horizon and into the dense range.
+		d := e.(*DistinctEver)
+		n, _ := d.Newest()
+		for i := range uint64(300) {
+			if d.Add(n+int64(i)*sec/7, i*0x9e3779b97f4a7c15); i%25 == 0 {
+				_ = d.DistinctAt(n)
+			}
+		}
+		if _, err := d.AppendBinary(nil); err != nil {
+			panic(err)
+		}
 	})
 }

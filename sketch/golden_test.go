@@ -31,25 +31,38 @@ type goldenCase struct {
 func goldenCases(t testing.TB) []goldenCase {
 	spec := DistinctSpec{Window: 10 * sec, Resolution: 2 * sec, Horizon: 3 * sec, Precision: 6, ExactLimit: 20}
 	t0 := int64(1_767_225_600) * sec // 2026-01-01T00:00:00Z
-	distinct := func(n, u int) func() encoder {
-		return func() encoder {
-			d := mustDistinct(t, spec)
-			rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
-			for i := range n {
-				d.Add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint("acct-", rng.IntN(u))))
-			}
-			return d
+	// feed adds n items drawn from u distinct ones, a quarter second apart
+	// with up to 2 s of disorder.
+	feed := func(n, u int, prefix string, add func(int64, uint64) bool) {
+		rng := rand.New(rand.NewPCG(uint64(n), uint64(u)))
+		for i := range n {
+			add(t0+int64(i)*sec/4-rng.Int64N(2*sec), HashString(fmt.Sprint(prefix, rng.IntN(u))))
 		}
+	}
+	// answers renders head and the answers at newest+dt for each dt.
+	answers := func(head string, newest int64, at func(int64) uint64, dts ...int64) string {
+		b := []byte(head)
+		for _, dt := range dts {
+			b = fmt.Appendf(b, " at%+ds=%d", dt/sec, at(newest+dt))
+		}
+		return string(b)
+	}
+	distinct := func(n, u int) func() encoder {
+		return func() encoder { d := mustDistinct(t, spec); feed(n, u, "acct-", d.Add); return d }
 	}
 	renderDistinct := func(e encoder) string {
 		d := e.(*Distinct)
 		newest, _ := d.Newest()
-		var b strings.Builder
-		fmt.Fprintf(&b, "exact=%v", d.Exact())
-		for _, dt := range []int64{-3 * sec, -sec, 0, 4 * sec, 9 * sec} {
-			fmt.Fprintf(&b, " at%+ds=%d", dt/sec, d.DistinctAt(newest+dt))
-		}
-		return b.String()
+		return answers(fmt.Sprintf("exact=%v", d.Exact()), newest, d.DistinctAt, -3*sec, -sec, 0, 4*sec, 9*sec)
+	}
+	everSpec := DistinctEverSpec{Precision: 6, Horizon: 3 * sec}
+	ever := func(n, u int) func() encoder {
+		return func() encoder { d := mustEver(t, everSpec); feed(n, u, "device-", d.Add); return d }
+	}
+	renderEver := func(e encoder) string {
+		d := e.(*DistinctEver)
+		newest, _ := d.Newest()
+		return answers(fmt.Sprintf("events=%d", d.Count()), newest, d.DistinctAt, -3*sec, -sec, 0, 4*sec)
 	}
 	return []goldenCase{
 		{"distinct_v1_empty.bin", func() encoder { return mustDistinct(t, spec) }, renderDistinct},
@@ -63,7 +76,7 @@ func goldenCases(t testing.TB) []goldenCase {
 			return c
 		}, func(e encoder) string {
 			c := e.(*CountMin)
-			return fmt.Sprintf("N=%d m0=%d m5=%d absent=%d", c.Total(), c.Estimate(HashString("merchant-0")),
+			return fmt.Sprintf("N=%d m0=%d m5=%d absent=%d", c.Count(), c.Estimate(HashString("merchant-0")),
 				c.Estimate(HashString("merchant-5")), c.Estimate(HashString("merchant-99")))
 		}},
 		{"topk_v1.bin", func() encoder {
@@ -75,8 +88,11 @@ func goldenCases(t testing.TB) []goldenCase {
 			return s
 		}, func(e encoder) string {
 			s := e.(*TopK)
-			return fmt.Sprintf("N=%d bound=%d top=%v share=%.4f", s.Total(), s.ErrorBound(), s.Top(nil, 4), s.TopShare())
+			return fmt.Sprintf("N=%d bound=%d top=%v share=%.4f", s.Count(), s.ErrorBound(), s.Top(nil, 4), s.TopShare())
 		}},
+		{"ever_v1_empty.bin", func() encoder { return mustEver(t, everSpec) }, renderEver},
+		{"ever_v1_sparse.bin", ever(60, 25), renderEver},
+		{"ever_v1_dense.bin", ever(3000, 2500), renderEver},
 		{"quantiles_v1.bin", func() encoder {
 			s := mustQ(t, QuantileParams{RelativeAccuracy: 0.02, MaxBuckets: 32})
 			rng := rand.New(rand.NewPCG(2, 2))
@@ -86,11 +102,11 @@ func goldenCases(t testing.TB) []goldenCase {
 			s.Add(0)
 			return s
 		}, func(e encoder) string {
-			s := e.(*Quantiles)
+			s := e.(*Quantile)
 			var b strings.Builder
 			fmt.Fprintf(&b, "n=%d", s.Count())
 			for _, q := range []float64{0, 0.05, 0.5, 0.95, 1} {
-				v, _ := s.Quantile(q)
+				v, _ := s.Value(q)
 				fmt.Fprintf(&b, " q%.2f=%.6g", q, v)
 			}
 			return b.String()

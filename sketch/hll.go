@@ -23,23 +23,12 @@ func fpKey(fp uint32, p uint8) uint32 {
 	return j<<6 | rho
 }
 
-// estimateHist returns the cardinality estimate for m = 2^p registers whose
-// values are counted in hist (hist[k] = number of registers holding k).
-//
-// It is the improved raw estimator of Ertl, "New cardinality estimation
-// algorithms for HyperLogLog sketches", arXiv:1702.01284, 2017 (formula from
-// memory; checked against exact counts in the tests), with q = 32-p. Unlike the raw
-// estimator with a linear-counting switch it has no bias bump between 2.5m
-// and 5m, and it costs O(64) operations on the histogram, independent of m.
+// estimateHist returns the cardinality estimate for m = 2^p registers
+// over 32-bit fingerprints whose values are counted in hist (hist[k] =
+// number of registers holding k): ertlRaw with q = 32-p, then the
+// fingerprint-space correction below.
 func estimateHist(hist *[64]uint32, p uint8) float64 {
-	m := float64(uint64(1) << p)
-	q := 32 - int(p)
-	z := m * ertlTau(1-float64(hist[q+1])/m)
-	for k := q; k >= 1; k-- {
-		z = 0.5 * (z + float64(hist[k]))
-	}
-	z += m * ertlSigma(float64(hist[0])/m)
-	e := m * m / (2 * math.Ln2) / z
+	e := ertlRaw(hist[:], p, 32-int(p))
 	// The registers count distinct 32-bit fingerprints; n items occupy
 	// N(1-exp(-n/N)) of the N = 2^32 fingerprints in expectation, so invert
 	// that (Whang, Vander-Zanden, Taylor, "A linear-time probabilistic
@@ -49,6 +38,23 @@ func estimateHist(hist *[64]uint32, p uint8) float64 {
 		return e
 	}
 	return -n32 * math.Log1p(-e/n32)
+}
+
+// ertlRaw is the improved raw estimator of Ertl, "New cardinality
+// estimation algorithms for HyperLogLog sketches", arXiv:1702.01284, 2017
+// (formula from memory; checked against exact counts in the tests), for
+// m = 2^p registers holding values 0..q+1 counted in hist (len >= q+2).
+// Unlike the raw estimator with a linear-counting switch it has no bias
+// bump between 2.5m and 5m, and it costs O(q) operations on the
+// histogram, independent of m.
+func ertlRaw(hist []uint32, p uint8, q int) float64 {
+	m := float64(uint64(1) << p)
+	z := m * ertlTau(1-float64(hist[q+1])/m)
+	for k := q; k >= 1; k-- {
+		z = 0.5 * (z + float64(hist[k]))
+	}
+	z += m * ertlSigma(float64(hist[0])/m)
+	return m * m / (2 * math.Ln2) / z
 }
 
 func ertlSigma(x float64) float64 {

@@ -2,9 +2,13 @@ package sketch
 
 import (
 	"encoding/binary"
-	"errors"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"math"
+
+	"cmp"
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // QuantileParams shapes a relative-error quantile summary (Masson, Rim,
@@ -24,8 +28,8 @@ type QuantileParams struct {
 }
 
 func (p QuantileParams) withDefaults() QuantileParams {
-	orDefault(&p.RelativeAccuracy, 0.01)
-	orDefault(&p.MaxBuckets, 2048)
+	p.RelativeAccuracy = cmp.Or(p.RelativeAccuracy, 0.01)
+	p.MaxBuckets = cmp.Or(p.MaxBuckets, 2048)
 	return p
 }
 
@@ -33,30 +37,30 @@ func (p QuantileParams) withDefaults() QuantileParams {
 // ErrInvalidSpec.
 func (p QuantileParams) Validate() error {
 	p = p.withDefaults()
-	var errs []error
+	e := check.For("sketch.QuantileParams")
 	if !(p.RelativeAccuracy >= 1e-4 && p.RelativeAccuracy <= 0.5) {
-		errs = appendSpecErr(errs, "quantiles", "RelativeAccuracy %v must be in [1e-4, 0.5]", p.RelativeAccuracy)
+		e.Check(false, "RelativeAccuracy", "%v must be in [1e-4, 0.5]", p.RelativeAccuracy)
 	}
 	if p.MaxBuckets < 16 || p.MaxBuckets > 1<<16 {
-		errs = appendSpecErr(errs, "quantiles", "MaxBuckets %d must be in [16, 65536]", p.MaxBuckets)
+		e.Check(false, "MaxBuckets", "%d must be in [16, 65536]", p.MaxBuckets)
 	}
-	return errors.Join(errs...)
+	return e.Err()
 }
 
-// Quantiles is a relative-error quantile summary of float64 values,
+// Quantile is a relative-error quantile summary of float64 values,
 // positive, negative and zero. A value x > 0 goes to bucket
 // i = ceil(log_gamma x), gamma = (1+alpha)/(1-alpha), covering
 // (gamma^(i-1), gamma^i] and represented by 2*gamma^i/(gamma+1); negative
 // values use a mirrored store of |x|; zero has its own count.
 //
-// Quantile(q) returns the estimate of the value of 0-based rank
+// Value(q) returns the estimate of the value of 0-based rank
 // floor(q*(n-1)) in sorted order (1-based floor(1+q(n-1)), the paper's
 // convention), within alpha relative error, clamped to the exact [min, max]
 // seen. Add and Merge commute (bucket counts add), so the state is
-// independent of arrival order. Cost: Add O(1) (one logarithm), Quantile
+// independent of arrival order. Cost: Add O(1) (one logarithm), Value
 // O(buckets), memory 8 bytes per bucket between the smallest and largest
 // index. Not safe for concurrent use.
-type Quantiles struct {
+type Quantile struct {
 	params     QuantileParams
 	gamma, lnG float64
 	pos, neg   qstore
@@ -72,29 +76,29 @@ type qstore struct {
 	counts []uint64
 }
 
-// NewQuantiles returns an empty summary, or an error wrapping
+// NewQuantile returns an empty summary, or an error wrapping
 // ErrInvalidSpec.
-func NewQuantiles(p QuantileParams) (*Quantiles, error) {
+func NewQuantile(p QuantileParams) (*Quantile, error) {
 	if err := p.Validate(); err != nil {
 		return nil, err
 	}
 	p = p.withDefaults()
 	g := (1 + p.RelativeAccuracy) / (1 - p.RelativeAccuracy)
-	return &Quantiles{params: p, gamma: g, lnG: math.Log(g)}, nil
+	return &Quantile{params: p, gamma: g, lnG: math.Log(g)}, nil
 }
 
 // Params returns the parameters with defaults applied.
-func (s *Quantiles) Params() QuantileParams { return s.params }
+func (s *Quantile) Params() QuantileParams { return s.params }
 
 // RelativeError returns alpha.
-func (s *Quantiles) RelativeError() float64 { return s.params.RelativeAccuracy }
+func (s *Quantile) RelativeError() float64 { return s.params.RelativeAccuracy }
 
 // Count returns the number of values added.
-func (s *Quantiles) Count() uint64 { return s.n }
+func (s *Quantile) Count() uint64 { return s.n }
 
-func (s *Quantiles) index(x float64) int32 { return int32(math.Ceil(math.Log(x) / s.lnG)) }
+func (s *Quantile) index(x float64) int32 { return int32(math.Ceil(math.Log(x) / s.lnG)) }
 
-func (s *Quantiles) value(i int32) float64 {
+func (s *Quantile) value(i int32) float64 {
 	return 2 * math.Exp(float64(i)*s.lnG) / (s.gamma + 1)
 }
 
@@ -115,7 +119,7 @@ func (q *qstore) add(i int32, c uint64, maxB int) {
 		grown[0] = c
 		q.counts, q.off = grown, i
 	default:
-		q.counts[i-q.off] = satAdd(q.counts[i-q.off], c)
+		q.counts[i-q.off] = sat.AddU64(q.counts[i-q.off], c)
 	}
 	q.collapse(maxB)
 }
@@ -130,7 +134,7 @@ func (q *qstore) collapse(maxB int) {
 	cut := len(q.counts) - maxB
 	var sum uint64
 	for _, c := range q.counts[:cut+1] {
-		sum = satAdd(sum, c)
+		sum = sat.AddU64(sum, c)
 	}
 	q.counts = append(q.counts[:0], q.counts[cut:]...)
 	q.counts[0] = sum
@@ -140,13 +144,13 @@ func (q *qstore) collapse(maxB int) {
 func (q *qstore) total() uint64 {
 	var s uint64
 	for _, c := range q.counts {
-		s = satAdd(s, c)
+		s = sat.AddU64(s, c)
 	}
 	return s
 }
 
 // Add records x. NaN and ±Inf are rejected (false, nothing changes).
-func (s *Quantiles) Add(x float64) bool {
+func (s *Quantile) Add(x float64) bool {
 	if math.IsNaN(x) || math.IsInf(x, 0) {
 		return false
 	}
@@ -168,10 +172,10 @@ func (s *Quantiles) Add(x float64) bool {
 	return true
 }
 
-// Quantile returns the estimate of the q-quantile (see Quantiles for the
+// Value returns the estimate of the q-quantile (see Quantile for the
 // rank convention), or false if the summary is empty or q is outside
 // [0, 1].
-func (s *Quantiles) Quantile(q float64) (float64, bool) {
+func (s *Quantile) Value(q float64) (float64, bool) {
 	if s.n == 0 || !(q >= 0 && q <= 1) {
 		return 0, false
 	}
@@ -201,16 +205,16 @@ func (s *Quantiles) Quantile(q float64) (float64, bool) {
 }
 
 // Min and Max return the exact extremes (0 when empty).
-func (s *Quantiles) Min() float64 { return s.minV }
+func (s *Quantile) Min() float64 { return s.minV }
 
 // Max returns the largest value added (0 when empty).
-func (s *Quantiles) Max() float64 { return s.maxV }
+func (s *Quantile) Max() float64 { return s.maxV }
 
 // Merge adds o's bucket counts to s. Parameters must be equal
 // (ErrIncompatible otherwise, s unchanged).
-func (s *Quantiles) Merge(o *Quantiles) error {
+func (s *Quantile) Merge(o *Quantile) error {
 	if s.params != o.params {
-		return fmt.Errorf("quantiles merge: %+v vs %+v: %w", s.params, o.params, ErrIncompatible)
+		return fmt.Errorf("quantile merge: %+v vs %+v: %w", s.params, o.params, ErrIncompatible)
 	}
 	if o.n == 0 {
 		return nil
@@ -231,19 +235,19 @@ func (s *Quantiles) Merge(o *Quantiles) error {
 	if s.n == 0 || o.maxV > s.maxV {
 		s.maxV = o.maxV
 	}
-	s.zero = satAdd(s.zero, o.zero)
-	s.n = satAdd(s.n, o.n)
+	s.zero = sat.AddU64(s.zero, o.zero)
+	s.n = sat.AddU64(s.n, o.n)
 	return nil
 }
 
 // Reset empties the summary.
-func (s *Quantiles) Reset() {
+func (s *Quantile) Reset() {
 	s.pos.counts, s.neg.counts = s.pos.counts[:0], s.neg.counts[:0]
 	s.zero, s.n, s.minV, s.maxV = 0, 0, 0, 0
 }
 
 // SizeBytes approximates the heap footprint in bytes.
-func (s *Quantiles) SizeBytes() int { return 128 + 8*(cap(s.pos.counts)+cap(s.neg.counts)) }
+func (s *Quantile) SizeBytes() int { return 128 + 8*(cap(s.pos.counts)+cap(s.neg.counts)) }
 
 func appendQStore(dst []byte, q *qstore) []byte {
 	nz := 0
@@ -270,8 +274,8 @@ func appendQStore(dst []byte, q *qstore) []byte {
 }
 
 // AppendBinary appends the encoding of s (see UnmarshalBinary).
-func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
-	dst = append(dst, formatVersion1, kindQuantiles)
+func (s *Quantile) AppendBinary(dst []byte) ([]byte, error) {
+	dst = append(dst, formatVersion1, kindQuantile)
 	dst = appendU64(dst, math.Float64bits(s.params.RelativeAccuracy))
 	dst = binary.AppendUvarint(dst, uint64(s.params.MaxBuckets))
 	dst = binary.AppendUvarint(dst, s.n)
@@ -306,65 +310,66 @@ func (s *Quantiles) AppendBinary(dst []byte) ([]byte, error) {
 // The zero count and all bucket counts sum to n. gamma is
 // (1+RelativeAccuracy)/(1-RelativeAccuracy). Trailing bytes return
 // ErrTrailingBytes; anything else malformed ErrCorrupt.
-func (s *Quantiles) UnmarshalBinary(b []byte) error {
-	const name = "quantiles"
-	if err := checkHeader(b, kindQuantiles, name); err != nil {
-		return err
+func (s *Quantile) UnmarshalBinary(b []byte) error { return named("quantile", s.unmarshal(b)) }
+
+func (s *Quantile) unmarshal(b []byte) error {
+	r := header(b, kindQuantile)
+	if r.Err != nil {
+		return r.Err
 	}
-	r := &reader{b: b, off: 2, name: name}
-	p := QuantileParams{RelativeAccuracy: r.f64(), MaxBuckets: int(min(r.uvarint(), 1<<20))}
-	n := r.uvarint()
-	if r.err != nil {
-		return r.err
+	p := QuantileParams{RelativeAccuracy: r.Float64BE(), MaxBuckets: int(min(r.Uvarint(), 1<<20))}
+	n := r.Uvarint()
+	if r.Err != nil {
+		return r.Err
 	}
 	if p.RelativeAccuracy == 0 || p.MaxBuckets == 0 || p.Validate() != nil {
-		return corruptf("%s: parameters %+v", name, p)
+		return corruptf("parameters %+v", p)
 	}
-	ns, _ := NewQuantiles(p)
+	ns, _ := NewQuantile(p)
 	ns.n = n
 	if n > 0 {
-		ns.minV, ns.maxV = r.f64(), r.f64()
-		ns.zero = r.uvarint()
-		if r.err == nil && (math.IsNaN(ns.minV) || math.IsInf(ns.minV, 0) || math.IsNaN(ns.maxV) ||
+		ns.minV, ns.maxV = r.Float64BE(), r.Float64BE()
+		ns.zero = r.Uvarint()
+		if r.Err == nil && (math.IsNaN(ns.minV) || math.IsInf(ns.minV, 0) || math.IsNaN(ns.maxV) ||
 			math.IsInf(ns.maxV, 0) || ns.minV > ns.maxV) {
-			r.fail("min %v max %v", ns.minV, ns.maxV)
+			r.Fail("min %v max %v", ns.minV, ns.maxV)
 		}
 		readQStore(r, &ns.pos, p.MaxBuckets)
 		readQStore(r, &ns.neg, p.MaxBuckets)
 	}
-	if err := r.done(); err != nil {
+	if err := r.Finish(); err != nil {
 		return err
 	}
-	if sum := satAdd(satAdd(ns.pos.total(), ns.neg.total()), ns.zero); sum != n {
-		return corruptf("%s: counts sum to %d, n = %d", name, sum, n)
+	if sum := sat.AddU64(sat.AddU64(ns.pos.total(), ns.neg.total()), ns.zero); sum != n {
+		return corruptf("counts sum to %d, n = %d", sum, n)
 	}
 	*s = *ns
 	return nil
 }
 
-func readQStore(r *reader, q *qstore, maxB int) {
-	k := r.count(2, uint64(maxB))
-	if k == 0 || r.err != nil {
+func readQStore(r *wire.Decoder, q *qstore, maxB int) {
+	k := r.Count(2, uint64(maxB))
+	if k == 0 || r.Err != nil {
 		return
 	}
-	first := r.varint()
-	if r.err == nil && (first < math.MinInt32 || first > math.MaxInt32-int64(maxB)) {
-		r.fail("first index %d", first)
+	first := r.Varint()
+	if r.Err == nil && (first < math.MinInt32 || first > math.MaxInt32-int64(maxB)) {
+		r.Fail("first index %d", first)
 	}
 	idx := first
 	for i := range k {
-		gap := r.uvarint()
-		c := r.uvarint()
-		if r.err != nil {
+		gap := r.Uvarint()
+		c := r.Uvarint()
+		if r.Err != nil {
 			return
 		}
 		if (i == 0) != (gap == 0) || c == 0 || gap > uint64(maxB) {
-			r.fail("bucket %d: gap %d count %d", i, gap, c)
+			r.Fail("bucket %d: gap %d count %d", i, gap, c)
 			return
 		}
 		idx += int64(gap)
 		if idx-first >= int64(maxB) {
-			r.fail("bucket span exceeds %d", maxB)
+			r.Fail("bucket span exceeds %d", maxB)
 			return
 		}
 		if i == 0 {

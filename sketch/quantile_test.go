@@ -10,8 +10,8 @@ import (
 	"gonum.org/v1/gonum/stat"
 )
 
-func mustQ(t testing.TB, p QuantileParams) *Quantiles {
-	s, err := NewQuantiles(p)
+func mustQ(t testing.TB, p QuantileParams) *Quantile {
+	s, err := NewQuantile(p)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -49,9 +49,9 @@ func TestQuantileRankConvention(t *testing.T) {
 		s.Add(x)
 	}
 	for _, c := range []struct{ q, want float64 }{{0, 1}, {0.5, 2}, {0.75, 3}, {1, 4}} {
-		got, _ := s.Quantile(c.q)
+		got, _ := s.Value(c.q)
 		if math.Abs(got-c.want) > 0.01*c.want+1e-12 {
-			t.Fatalf("Quantile(%v) = %v, want %v", c.q, got, c.want)
+			t.Fatalf("Value(%v) = %v, want %v", c.q, got, c.want)
 		}
 	}
 }
@@ -86,7 +86,7 @@ func TestQuantileRelativeError(t *testing.T) {
 			}
 			slices.Sort(xs)
 			for _, q := range qs {
-				got, _ := s.Quantile(q)
+				got, _ := s.Value(q)
 				want := xs[int(q*float64(len(xs)-1))]
 				if math.Abs(got-want) > alpha*math.Abs(want)+1e-12 {
 					t.Fatalf("alpha %v seed %d q %v: %v, exact %v", alpha, seed, q, got, want)
@@ -105,7 +105,7 @@ func TestQuantileMergeOrderFree(t *testing.T) {
 	p := QuantileParams{RelativeAccuracy: 0.02, MaxBuckets: 64}
 	rng := rand.New(rand.NewPCG(9, 9))
 	whole := mustQ(t, p)
-	parts := []*Quantiles{mustQ(t, p), mustQ(t, p), mustQ(t, p)}
+	parts := []*Quantile{mustQ(t, p), mustQ(t, p), mustQ(t, p)}
 	for i := range 9000 {
 		x := (rng.Float64() - 0.3) * math.Pow(10, float64(rng.IntN(12)))
 		whole.Add(x)
@@ -119,14 +119,14 @@ func TestQuantileMergeOrderFree(t *testing.T) {
 			}
 		}
 		ma, _ := m.AppendBinary(nil)
-		var c Quantiles
+		var c Quantile
 		if err := c.UnmarshalBinary(ma); err != nil {
 			t.Fatal(err)
 		}
 		for q := 0.0; q <= 1; q += 0.01 {
-			x, _ := whole.Quantile(q)
-			y, _ := m.Quantile(q)
-			z, _ := c.Quantile(q)
+			x, _ := whole.Value(q)
+			y, _ := m.Value(q)
+			z, _ := c.Value(q)
 			if x != y || y != z {
 				t.Fatalf("order %v q %v: whole %v merged %v decoded %v", order, q, x, y, z)
 			}
@@ -159,7 +159,7 @@ func TestQuantileCollapseKeepsUpperRanks(t *testing.T) {
 		t.Fatalf("%d buckets", len(s.pos.counts))
 	}
 	for _, q := range []float64{0.9, 0.95, 0.99, 1} {
-		got, _ := s.Quantile(q)
+		got, _ := s.Value(q)
 		want := xs[int(q*float64(len(xs)-1))]
 		if math.Abs(got-want) > 0.01*want+1e-12 {
 			t.Fatalf("q %v: %v, exact %v", q, got, want)

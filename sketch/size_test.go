@@ -8,7 +8,7 @@ import (
 
 // TestSmallEncodings: a summary holding 100 items encodes in at most 512
 // bytes (the target) for Distinct (exact mode, items spread over the
-// window and the Horizon), Quantiles, and TopK with 32 counters. A TopK
+// window and the Horizon), Quantile, and TopK with 32 counters. A TopK
 // with 100 counters stores 100 full 8-byte hashes (about 1 KB) and
 // Count-Min's size is set by width*depth, not by the items: both are only
 // reported.

@@ -4,7 +4,10 @@ import (
 	"cmp"
 	"encoding/binary"
 	"fmt"
+	"github.com/tallyward/tallyward/internal/check"
 	"slices"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // TopKParams sizes a Space-Saving heavy-hitter summary (Metwally, Agrawal,
@@ -17,17 +20,16 @@ type TopKParams struct {
 }
 
 func (p TopKParams) withDefaults() TopKParams {
-	orDefault(&p.Capacity, 32)
+	p.Capacity = cmp.Or(p.Capacity, 32)
 	return p
 }
 
 // Validate reports every problem with p at once, wrapping ErrInvalidSpec.
 func (p TopKParams) Validate() error {
 	p = p.withDefaults()
-	if p.Capacity < 1 || p.Capacity > 1<<16 {
-		return fmt.Errorf("top-k: Capacity %d must be in [1, 65536]: %w", p.Capacity, ErrInvalidSpec)
-	}
-	return nil
+	e := check.For("sketch.TopKParams")
+	e.Check(p.Capacity >= 1 && p.Capacity <= 1<<16, "Capacity", "%d must be in [1, 65536]", p.Capacity)
+	return e.Err()
 }
 
 // Counter is one monitored item: Count-Err <= true frequency <= Count.
@@ -116,14 +118,14 @@ func (s *TopK) Add(h uint64, w uint64) {
 	if w == 0 {
 		return
 	}
-	s.n = satAdd(s.n, w)
+	s.n = sat.AddU64(s.n, w)
 	if i, ok := s.index[h]; ok {
-		s.heap[i].Count = satAdd(s.heap[i].Count, w)
+		s.heap[i].Count = sat.AddU64(s.heap[i].Count, w)
 		s.down(int(i))
 		return
 	}
 	if len(s.heap) < s.capacity {
-		s.heap = append(s.heap, Counter{Hash: h, Count: satAdd(s.floor, w), Err: s.floor})
+		s.heap = append(s.heap, Counter{Hash: h, Count: sat.AddU64(s.floor, w), Err: s.floor})
 		s.index[h] = int32(len(s.heap) - 1)
 		s.up(len(s.heap) - 1)
 		return
@@ -131,13 +133,13 @@ func (s *TopK) Add(h uint64, w uint64) {
 	// Replace the minimum counter: the new item inherits its count as error.
 	m := s.heap[0]
 	delete(s.index, m.Hash)
-	s.heap[0] = Counter{Hash: h, Count: satAdd(m.Count, w), Err: m.Count}
+	s.heap[0] = Counter{Hash: h, Count: sat.AddU64(m.Count, w), Err: m.Count}
 	s.index[h] = 0
 	s.down(0)
 }
 
-// Total returns N, the sum of weights added (and merged).
-func (s *TopK) Total() uint64 { return s.n }
+// Count returns N, the sum of weights added (and merged).
+func (s *TopK) Count() uint64 { return s.n }
 
 // Len returns the number of monitored items.
 func (s *TopK) Len() int { return len(s.heap) }
@@ -211,22 +213,22 @@ func (s *TopK) Merge(o *TopK) error {
 	for _, c := range s.heap {
 		if oc, ok := o.index[c.Hash]; ok {
 			x := o.heap[oc]
-			all = append(all, Counter{c.Hash, satAdd(c.Count, x.Count), satAdd(c.Err, x.Err)})
+			all = append(all, Counter{c.Hash, sat.AddU64(c.Count, x.Count), sat.AddU64(c.Err, x.Err)})
 		} else {
-			all = append(all, Counter{c.Hash, satAdd(c.Count, bo), satAdd(c.Err, bo)})
+			all = append(all, Counter{c.Hash, sat.AddU64(c.Count, bo), sat.AddU64(c.Err, bo)})
 		}
 	}
 	for _, c := range o.heap {
 		if _, ok := s.index[c.Hash]; !ok {
-			all = append(all, Counter{c.Hash, satAdd(c.Count, bs), satAdd(c.Err, bs)})
+			all = append(all, Counter{c.Hash, sat.AddU64(c.Count, bs), sat.AddU64(c.Err, bs)})
 		}
 	}
 	slices.SortFunc(all, cmpCounterDesc)
 	if len(all) > s.capacity {
 		all = all[:s.capacity]
 	}
-	s.n = satAdd(s.n, o.n)
-	s.floor = satAdd(bs, bo)
+	s.n = sat.AddU64(s.n, o.n)
+	s.floor = sat.AddU64(bs, bo)
 	s.setCounters(all)
 	return nil
 }
@@ -287,39 +289,40 @@ func (s *TopK) AppendBinary(dst []byte) ([]byte, error) {
 //
 // Trailing bytes return ErrTrailingBytes; anything else malformed
 // ErrCorrupt.
-func (s *TopK) UnmarshalBinary(b []byte) error {
-	const name = "top-k"
-	if err := checkHeader(b, kindTopK, name); err != nil {
-		return err
+func (s *TopK) UnmarshalBinary(b []byte) error { return named("top-k", s.unmarshal(b)) }
+
+func (s *TopK) unmarshal(b []byte) error {
+	r := header(b, kindTopK)
+	if r.Err != nil {
+		return r.Err
 	}
-	r := &reader{b: b, off: 2, name: name}
-	capacity := r.uvarint()
-	n := r.uvarint()
-	floor := r.uvarint()
-	if r.err == nil && (capacity < 1 || capacity > 1<<16) {
-		r.fail("capacity %d", capacity)
+	capacity := r.Uvarint()
+	n := r.Uvarint()
+	floor := r.Uvarint()
+	if r.Err == nil && (capacity < 1 || capacity > 1<<16) {
+		r.Fail("capacity %d", capacity)
 	}
-	cnt := r.count(10, capacity)
+	cnt := r.Count(10, capacity)
 	cs := make([]Counter, 0, cnt)
 	for i := range cnt {
-		c := Counter{Hash: r.u64(), Count: r.uvarint(), Err: r.uvarint()}
-		if r.err != nil {
+		c := Counter{Hash: r.Uint64BE(), Count: r.Uvarint(), Err: r.Uvarint()}
+		if r.Err != nil {
 			break
 		}
 		if c.Count == 0 || c.Count > n || c.Err > c.Count || c.Count < floor ||
 			(i > 0 && cmpCounterDesc(cs[i-1], c) >= 0) {
-			r.fail("counter %d %+v", i, c)
+			r.Fail("counter %d %+v", i, c)
 			break
 		}
 		cs = append(cs, c)
 	}
-	if err := r.done(); err != nil {
+	if err := r.Finish(); err != nil {
 		return err
 	}
 	seen := make(map[uint64]bool, len(cs))
 	for _, c := range cs {
 		if seen[c.Hash] {
-			return corruptf("%s: duplicate hash %#x", name, c.Hash)
+			return corruptf("duplicate hash %#x", c.Hash)
 		}
 		seen[c.Hash] = true
 	}

@@ -1,5 +1,9 @@
 package window
 
+import (
+	"github.com/tallyward/tallyward/internal/sat"
+)
+
 // Window assignment helpers for tumbling and hopping windows. Windows are
 // half-open [start, start+width) and aligned to the Unix epoch, so every
 // process cuts the same windows.
@@ -11,7 +15,7 @@ func TumblingStart(t, width int64) int64 {
 	if width <= 0 {
 		return t
 	}
-	return startOf(floorDiv(t, width), width)
+	return startOf(sat.FloorDiv(t, width), width)
 }
 
 // MaxHoppingOverlap bounds width/hop for HoppingStarts, so that a bad
@@ -29,12 +33,12 @@ func HoppingStarts(dst []int64, t, width, hop int64) []int64 {
 	if width <= 0 || hop <= 0 || width/hop > MaxHoppingOverlap {
 		return dst
 	}
-	lo := satSub(t, width-1) // starts lie in [t − width + 1, t]
-	first := lo / hop        // ceil(lo / hop): truncation rounds negatives up
+	lo := sat.Sub(t, width-1) // starts lie in [t − width + 1, t]
+	first := lo / hop         // ceil(lo / hop): truncation rounds negatives up
 	if lo > 0 && lo%hop != 0 {
 		first++
 	}
-	for i := first; i <= floorDiv(t, hop); i++ {
+	for i := first; i <= sat.FloorDiv(t, hop); i++ {
 		dst = append(dst, i*hop)
 	}
 	return dst

@@ -13,7 +13,7 @@ import (
 // and compare two runs with benchstat old.txt new.txt.
 
 const (
-	second = int64(1e9)
+	second = 1_000_000_000 // untyped: a time (int64 ns) or a time.Duration
 	minute = 60 * second
 	hour   = 60 * minute
 	t0     = int64(1_700_000_000) * second // an arbitrary instant in 2023
@@ -78,17 +78,17 @@ func BenchmarkAdd(b *testing.B) {
 		})
 	})
 	b.Run("SlidingCount", func(b *testing.B) {
-		c := NewSlidingCount(benchSpec)
+		c := must(NewSlidingCount(benchSpec))
 		benchAdd(b, func(t int64, _ float64) { c.Add(t) })
 	})
 	valued := []struct {
 		name string
 		mk   func(SlidingSpec) interface{ Add(int64, float64) bool }
 	}{
-		{"SlidingSum", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingSum(s) }},
-		{"SlidingMin", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMin(s) }},
-		{"SlidingMax", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMax(s) }},
-		{"SlidingMean", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return NewSlidingMean(s) }},
+		{"SlidingSum", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return must(NewSlidingSum(s)) }},
+		{"SlidingMin", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return must(NewSlidingMin(s)) }},
+		{"SlidingMax", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return must(NewSlidingMax(s)) }},
+		{"SlidingMean", func(s SlidingSpec) interface{ Add(int64, float64) bool } { return must(NewSlidingMean(s)) }},
 	}
 	for _, v := range valued {
 		b.Run(v.name, func(b *testing.B) {
@@ -97,42 +97,50 @@ func BenchmarkAdd(b *testing.B) {
 		})
 	}
 	b.Run("Decayed", func(b *testing.B) {
-		d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+		d := must(NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second}))
 		benchAdd(b, func(t int64, v float64) { d.Add(t, v) })
 	})
 	b.Run("Velocity", func(b *testing.B) {
-		v := NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second})
+		v := must(NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second}))
 		benchAdd(b, func(t int64, _ float64) { v.Add(t) })
 	})
 	b.Run("Recency", func(b *testing.B) {
-		r := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+		r := must(NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second}))
 		benchAdd(b, func(t int64, _ float64) { r.Add(t) })
+	})
+	b.Run("Surge", func(b *testing.B) {
+		s := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: 24 * hour, Resolution: minute, Horizon: 5 * second}))
+		benchAdd(b, func(t int64, _ float64) { s.Add(t) })
 	})
 }
 
 func BenchmarkQuery(b *testing.B) {
 	b.Run("SlidingCount.CountAt", func(b *testing.B) {
-		c := NewSlidingCount(benchSpec)
+		c := must(NewSlidingCount(benchSpec))
 		benchQuery(b, func(t int64, _ float64) { c.Add(t) }, func(t int64) { sinkU += c.CountAt(t) })
 	})
 	b.Run("SlidingMean.MeanAt", func(b *testing.B) {
-		c := NewSlidingMean(benchSpec)
+		c := must(NewSlidingMean(benchSpec))
 		benchQuery(b, func(t int64, v float64) { c.Add(t, v) }, func(t int64) { sinkF += c.MeanAt(t) })
 	})
 	b.Run("SlidingMax.MaxAt", func(b *testing.B) {
-		c := NewSlidingMax(benchSpec)
+		c := must(NewSlidingMax(benchSpec))
 		benchQuery(b, func(t int64, v float64) { c.Add(t, v) }, func(t int64) { sinkF += c.MaxAt(t) })
 	})
 	b.Run("Decayed.VarianceAt", func(b *testing.B) {
-		d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+		d := must(NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second}))
 		benchQuery(b, func(t int64, v float64) { d.Add(t, v) }, func(t int64) { sinkF += d.VarianceAt(t) })
 	})
 	b.Run("Velocity.RatioAt", func(b *testing.B) {
-		v := NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second})
+		v := must(NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 5 * second}))
 		benchQuery(b, func(t int64, _ float64) { v.Add(t) }, func(t int64) { sinkF += v.RatioAt(t) })
 	})
+	b.Run("Surge.RatioAt", func(b *testing.B) {
+		s := must(NewSurge(SurgeSpec{Window: 5 * minute, HalfLife: 24 * hour, Resolution: minute, Horizon: 5 * second}))
+		benchQuery(b, func(t int64, _ float64) { s.Add(t) }, func(t int64) { sinkF += s.RatioAt(t) })
+	})
 	b.Run("Recency.SessionCountAt", func(b *testing.B) {
-		r := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+		r := must(NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second}))
 		benchQuery(b, func(t int64, _ float64) { r.Add(t) }, func(t int64) { sinkU += r.SessionCountAt(t) })
 	})
 }
@@ -146,19 +154,19 @@ func BenchmarkEncode(b *testing.B) {
 		mk   mk
 	}{
 		{"SlidingCount", func() (codec, func(int64)) {
-			c := NewSlidingCount(benchSpec)
+			c := must(NewSlidingCount(benchSpec))
 			return c, func(t int64) { c.Add(t) }
 		}},
 		{"SlidingSum", func() (codec, func(int64)) {
-			c := NewSlidingSum(benchSpec)
+			c := must(NewSlidingSum(benchSpec))
 			return c, func(t int64) { c.Add(t, 12.5) }
 		}},
 		{"Decayed", func() (codec, func(int64)) {
-			c := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
+			c := must(NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second}))
 			return c, func(t int64) { c.Add(t, 12.5) }
 		}},
 		{"Recency", func() (codec, func(int64)) {
-			c := NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second})
+			c := must(NewRecency(RecencySpec{Gap: 30 * minute, Horizon: 5 * second}))
 			return c, func(t int64) { c.Add(t) }
 		}},
 	}
@@ -185,16 +193,30 @@ func BenchmarkEncode(b *testing.B) {
 }
 
 func BenchmarkDecode(b *testing.B) {
-	c := NewSlidingCount(benchSpec)
+	c := must(NewSlidingCount(benchSpec))
 	for _, t := range steadyTimes(100, hour/200, 5*second) {
 		c.Add(t)
 	}
 	buf, _ := c.AppendBinary(nil)
-	d := NewSlidingCount(benchSpec)
+	d := must(NewSlidingCount(benchSpec))
 	b.ReportAllocs()
 	for b.Loop() {
 		if err := d.UnmarshalBinary(buf); err != nil {
 			b.Fatal(err)
 		}
 	}
+}
+
+// must returns x, failing the program on err: test specs are valid.
+func must[T any](x T, err error) T {
+	if err != nil {
+		panic(err)
+	}
+	return x
+}
+
+// newest is the newest time of a non-empty aggregate.
+func newest(a interface{ Newest() (int64, bool) }) int64 {
+	t, _ := a.Newest()
+	return t
 }

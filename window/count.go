@@ -32,18 +32,21 @@ package window
 // any events of panes already discarded below the floor.
 //
 // Build with NewSlidingCount; Reset makes it reusable without allocating.
-// An aggregate built from an invalid spec (and the zero value, which is
-// one) ignores Add (returns false), answers 0 and fails to encode or decode
-// with ErrInvalidSpec; validate specs first. Nothing panics.
+// The zero value is unusable but safe: it ignores Add (returns false),
+// answers 0 and fails to encode or decode with ErrInvalidSpec. Nothing
+// panics.
 //
 // Not safe for concurrent use.
 type SlidingCount struct{ ring }
 
-// NewSlidingCount returns an empty count over spec.
-func NewSlidingCount(spec SlidingSpec) *SlidingCount {
+// NewSlidingCount returns an empty count over spec, or the errors of
+// spec.Validate.
+func NewSlidingCount(spec SlidingSpec) (*SlidingCount, error) {
 	c := &SlidingCount{}
-	c.init(spec, opCount, kindSlidingCount)
-	return c
+	if err := c.init(spec, opCount, kindSlidingCount); err != nil {
+		return nil, err
+	}
+	return c, nil
 }
 
 // Add records one event at time t. It returns false, changing nothing, when

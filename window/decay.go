@@ -1,18 +1,24 @@
 package window
 
 import (
+	"cmp"
 	"math"
+	"time"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// DecaySpec defines exponentially decayed statistics with a half-life.
+// DecaySpec defines exponentially decayed statistics with a half-life. A
+// zero field means its default; HalfLife is required.
 type DecaySpec struct {
-	// HalfLife in nanoseconds, > 0: an event's weight halves every HalfLife
-	// of event time. No default.
-	HalfLife int64
-	// Horizon is how far behind the newest added time, in nanoseconds,
-	// as-of queries stay exact; >= 0. Default 0.
-	Horizon int64
+	// HalfLife, > 0: an event's weight halves every HalfLife of event time.
+	// Required; no default.
+	HalfLife time.Duration
+	// Horizon is how far behind the newest added time as-of queries stay
+	// exact; >= 0. Default 0.
+	Horizon time.Duration
 	// RebaseEvery is the number of half-lives between landmarks; the
 	// landmarks are the multiples of RebaseEvery·HalfLife since the Unix
 	// epoch, fixed in advance. 1..64; 0 means the default, 32.
@@ -38,22 +44,17 @@ const (
 	maxDecodedMean   = 2 * MaxDecayedValue
 )
 
-func (s DecaySpec) rebase() int64 {
-	if s.RebaseEvery == 0 {
-		return defaultRebaseEvery
-	}
-	return s.RebaseEvery
-}
+func (s DecaySpec) rebase() int64 { return cmp.Or(s.RebaseEvery, defaultRebaseEvery) }
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
 // each matching ErrInvalidSpec), or nil.
 func (s DecaySpec) Validate() error {
-	e := specErrs{spec: "DecaySpec"}
+	e := newSpecErrs("DecaySpec")
 	e.positive("HalfLife", s.HalfLife)
 	e.nonNegative("Horizon", s.Horizon)
 	k := s.rebase()
 	e.check(k >= 1 && k <= maxRebaseEvery, "RebaseEvery", "must be in 1..64 (0 for 32)")
-	e.check(s.HalfLife <= 0 || k < 1 || s.HalfLife <= math.MaxInt64/k,
+	e.check(s.HalfLife <= 0 || k < 1 || int64(s.HalfLife) <= math.MaxInt64/k,
 		"RebaseEvery", "times HalfLife overflows int64")
 	return e.err()
 }
@@ -102,9 +103,8 @@ func (s DecaySpec) Validate() error {
 // pipeline supplies. Add rejects NaN, ±Inf and |x| > MaxDecayedValue
 // (returns false), so that no reachable state overflows.
 //
-// The zero value is unusable: build with NewDecayed; an aggregate built
-// from an invalid spec ignores Add and answers NaN. Not safe for concurrent
-// use.
+// Build with NewDecayed; the zero value ignores Add and answers NaN. Not
+// safe for concurrent use.
 //
 // Invariants: raw is sorted by time with cutoff < t <= maxT;
 // land == floor(cutoff / (RebaseEvery·h)), landT and nextT are the
@@ -124,17 +124,20 @@ type Decayed struct {
 	raw         seq[event]
 }
 
-// NewDecayed returns empty decayed statistics over spec.
-func NewDecayed(spec DecaySpec) *Decayed {
-	d := &Decayed{spec: spec, valid: spec.Validate() == nil}
-	if d.valid {
-		d.step = spec.rebase() * spec.HalfLife
-		d.raw.buf = make([]event, 0, 8)
+// NewDecayed returns empty decayed statistics over spec, or the errors of
+// spec.Validate.
+func NewDecayed(spec DecaySpec) (*Decayed, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
 	}
-	return d
+	spec.RebaseEvery = spec.rebase()
+	d := &Decayed{spec: spec, valid: true}
+	d.step = spec.rebase() * int64(spec.HalfLife)
+	d.raw.buf = make([]event, 0, 8)
+	return d, nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (d *Decayed) Spec() DecaySpec { return d.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -152,7 +155,7 @@ func (d *Decayed) SizeBytes() int {
 	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (d *Decayed) cutoff() int64 { return satSub(d.maxT, d.spec.Horizon) }
+func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, int64(d.spec.Horizon)) }
 
 // Add records value x at time t. It returns false, changing nothing, when x
 // is NaN or |x| > MaxDecayedValue (or the spec is invalid).
@@ -163,7 +166,7 @@ func (d *Decayed) Add(t int64, x float64) bool {
 	switch {
 	case !d.seen:
 		d.seen, d.maxT = true, t
-		d.setLand(floorDiv(d.cutoff(), d.step))
+		d.setLand(sat.FloorDiv(d.cutoff(), d.step))
 	case t > d.maxT:
 		d.maxT = t
 		d.advance()
@@ -177,7 +180,7 @@ func (d *Decayed) Add(t int64, x float64) bool {
 }
 
 func (d *Decayed) setLand(land int64) {
-	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(satAdd(land, 1), d.step)
+	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(sat.Add(land, 1), d.step)
 }
 
 // advance moves the landmark to the new cutoff and folds raw events that
@@ -185,7 +188,7 @@ func (d *Decayed) setLand(land int64) {
 func (d *Decayed) advance() {
 	c := d.cutoff()
 	if c >= d.nextT {
-		nl := floorDiv(c, d.step)
+		nl := sat.FloorDiv(c, d.step)
 		d.w, d.mean, d.m2 = d.rescaled(nl - d.land)
 		d.setLand(nl)
 	}
@@ -214,7 +217,7 @@ func (d *Decayed) rescaled(j int64) (w, mean, m2 float64) {
 // fold applies West's weighted update for (t, x) with weight
 // 2^((t − L)/h), L = landT. A weight that rounds to zero is skipped.
 func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64, float64, float64) {
-	g := math.Exp2(float64(satSub(t, landT)) / float64(d.spec.HalfLife))
+	g := math.Exp2(float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
 	if g == 0 {
 		return w, mean, m2
 	}
@@ -243,7 +246,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 	}
 	land, landT := d.land, d.landT
 	if t >= d.nextT {
-		land = floorDiv(t, d.step)
+		land = sat.FloorDiv(t, d.step)
 		landT = startOf(land, d.step)
 	}
 	w, mean, m2 = d.rescaled(land - d.land)
@@ -253,7 +256,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 		}
 		w, mean, m2 = d.fold(w, mean, m2, landT, e.t, e.v)
 	}
-	f = math.Exp2(-float64(satSub(t, landT)) / float64(d.spec.HalfLife))
+	f = math.Exp2(-float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
 	return w, mean, m2, f, true
 }
 
@@ -325,23 +328,23 @@ func (d *Decayed) UnmarshalBinary(b []byte) error {
 }
 
 func (d *Decayed) decode(b []byte, store bool) error {
-	r := reader{b: b}
-	_, maxT, ok := r.startState(kindDecayed, flagSeen, store, d.Reset)
+	r := wire.Decoder{B: b}
+	_, maxT, ok := startState(&r, kindDecayed, flagSeen, store, d.Reset)
 	if !ok {
-		return r.err
+		return r.Err
 	}
-	w, mean, m2 := r.float("weight"), r.float("mean"), r.float("M2")
-	if r.err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= maxDecodedMean) ||
+	w, mean, m2 := readFloat(&r, "weight"), readFloat(&r, "mean"), readFloat(&r, "M2")
+	if r.Err == nil && (!(w >= 0 && w <= maxDecodedWeight) || !(math.Abs(mean) <= maxDecodedMean) ||
 		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
-		r.fail("weights out of range")
+		r.Fail("weights out of range")
 	}
-	cutoff := satSub(maxT, d.spec.Horizon)
+	cutoff := sat.Sub(maxT, int64(d.spec.Horizon))
 	readEvents(&r, &d.raw, maxT, cutoff, MaxDecayedValue, store)
-	if err := r.end(); err != nil || !store {
+	if err := r.Finish(); err != nil || !store {
 		return err
 	}
 	d.seen, d.maxT = true, maxT
-	d.setLand(floorDiv(cutoff, d.step))
+	d.setLand(sat.FloorDiv(cutoff, d.step))
 	d.w, d.mean, d.m2 = w, mean, m2
 	return nil
 }

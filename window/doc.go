@@ -1,15 +1,25 @@
 // Package window holds pure windowed aggregates over event time: sliding
 // count, sum, min, max and mean over epoch-aligned panes; exponentially
-// decayed count, sum, mean and variance; a velocity ratio; first/last seen
-// and gap-based sessions; and tumbling/hopping window assignment. It does no
-// I/O, reads no clock and depends on no other tallyward package, so it can
-// be used on its own as a fast sliding counter.
+// decayed count, sum, mean and variance; a velocity ratio, against a
+// longer window (Velocity) or against the entity's own decayed history
+// (Surge); first/last seen and gap-based sessions; and tumbling/hopping
+// window assignment. It does no I/O, reads no clock and depends on no other
+// tallyward package but two internal helpers (the shared decoder and
+// saturating arithmetic), so it can be used on its own as a fast sliding
+// counter.
 //
 // # Contract
 //
 // Time is a parameter. Every call takes event time as int64 Unix
 // nanoseconds: Add(t[, v]) records an event, XxxAt(t) answers as of t.
-// As-of answers never include an event newer than t.
+// As-of answers never include an event newer than t. Lengths of time in
+// specs (windows, resolutions, half-lives, gaps, horizons) are
+// time.Duration. Newest reports the newest time added and whether there is
+// one; Count the number of events an aggregate holds.
+//
+// Constructors NewX(spec) return the aggregate or the errors of
+// spec.Validate; a zero spec field means its documented default, and a
+// missing required field is an error.
 //
 // Exactness is bounded by a Horizon: with maxT the newest time added,
 // events newer than cutoff = maxT − Horizon are kept with exact times and
@@ -29,8 +39,9 @@
 // (the byte table is on each UnmarshalBinary), unknown versions and
 // trailing bytes rejected with ErrUnknownVersion and ErrTrailingBytes,
 // malformed input with ErrCorrupt, all wrapped with context; the receiver is
-// unchanged on error and no input makes a decoder panic. Specs report every
-// problem at once from Validate.
+// unchanged on error and no input makes a decoder panic. The sentinel
+// errors are the same values as package sketch's, so errors.Is matches
+// across both. Specs report every problem at once from Validate.
 //
 // # Costs
 //

@@ -3,6 +3,8 @@ package window
 import (
 	"encoding/binary"
 	"math"
+
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // Raw events kept with exact times between the cutoff and the newest time
@@ -53,28 +55,28 @@ func appendEvents(dst []byte, raw []event, maxT int64, values bool) []byte {
 // in (cutoff, maxT]. Values are present when limit > 0 and must satisfy
 // |v| <= limit. It stores into s only when store is set; it returns the
 // number of events and the oldest time (maxT when there are none).
-func readEvents(r *reader, s *seq[event], maxT, cutoff int64, limit float64, store bool) (int, int64) {
+func readEvents(r *wire.Decoder, s *seq[event], maxT, cutoff int64, limit float64, store bool) (int, int64) {
 	values := limit > 0
 	per := 1
 	if values {
 		per = 9
 	}
-	n := r.count("raw event count", per)
+	n := r.Count(per, math.MaxUint64)
 	if store {
 		s.setLen(n)
 	}
 	prev := maxT
-	for i := n - 1; i >= 0 && r.err == nil; i-- {
-		d := r.uvarint("raw delta")
+	for i := n - 1; i >= 0 && r.Err == nil; i-- {
+		d := r.Uvarint()
 		t := prev - int64(d)
 		if d > math.MaxInt64 || t > prev || t <= cutoff {
-			r.fail("raw event at or behind the cutoff")
+			r.Fail("raw event at or behind the cutoff")
 			break
 		}
 		var v float64
 		if values {
-			if v = r.float("raw value"); !(math.Abs(v) <= limit) {
-				r.fail("raw value out of range")
+			if v = readFloat(r, "raw value"); !(math.Abs(v) <= limit) {
+				r.Fail("raw value out of range")
 			}
 		}
 		if store {

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"errors"
 	"testing"
+	"time"
 )
 
 // Fuzz targets for every decoder. The seed corpus (golden blobs plus
@@ -74,7 +75,7 @@ func checkDecoded(t *testing.T, b []byte, fresh func() codec, invariants func(co
 // fuzzSpec derives a small valid sliding spec from two bytes.
 func fuzzSpec(a, h uint8) SlidingSpec {
 	r := int64(a&3) + 1
-	return SlidingSpec{Resolution: r * minute, Window: r * minute * (int64(a>>2) + 1), Horizon: int64(h) * 10 * second}
+	return SlidingSpec{Resolution: time.Duration(r * minute), Window: time.Duration(r * minute * (int64(a>>2) + 1)), Horizon: time.Duration(int64(h) * 10 * second)}
 }
 
 func FuzzDecodeSliding(f *testing.F) {
@@ -97,9 +98,9 @@ func FuzzDecodeSliding(f *testing.F) {
 			checkDecoded(t, b, fresh, func(c codec) error {
 				g := c.(*ring)
 				_, _ = g.query(g.maxT, g.n)
-				_, _ = g.query(g.maxT-spec.Horizon-1, g.n)
+				_, _ = g.query(g.maxT-int64(spec.Horizon)-1, g.n)
 				g.add(g.maxT+1, 2)
-				g.add(g.maxT-spec.Window, 2)
+				g.add(g.maxT-int64(spec.Window), 2)
 				return g.checkInvariants()
 			})
 		}
@@ -109,15 +110,15 @@ func FuzzDecodeSliding(f *testing.F) {
 func FuzzDecodeDecayed(f *testing.F) {
 	addSeeds(f, 5, 9, "v1-decayed")
 	f.Fuzz(func(t *testing.T, b []byte, a, h uint8) {
-		spec := DecaySpec{HalfLife: int64(a%7+1) * 10 * second, Horizon: int64(h) * 10 * second, RebaseEvery: int64(a / 7 % 5)}
-		fresh := func() codec { d := NewDecayed(spec); d.Add(t0, 1); return d }
+		spec := DecaySpec{HalfLife: time.Duration(int64(a%7+1) * 10 * second), Horizon: time.Duration(int64(h) * 10 * second), RebaseEvery: int64(a / 7 % 5)}
+		fresh := func() codec { d := must(NewDecayed(spec)); d.Add(t0, 1); return d }
 		checkDecoded(t, b, fresh, func(c codec) error {
 			d := c.(*Decayed)
 			_ = d.VarianceAt(d.maxT)
 			_ = d.CountAt(d.maxT + hour)
 			d.Add(d.maxT+1, MaxDecayedValue)
-			d.Add(d.maxT-d.spec.Horizon, -MaxDecayedValue)
-			d.Add(d.maxT+d.spec.HalfLife*100, 2)
+			d.Add(d.maxT-int64(d.spec.Horizon), -MaxDecayedValue)
+			d.Add(d.maxT+int64(d.spec.HalfLife)*100, 2)
 			return d.checkInvariants()
 		})
 	})
@@ -126,14 +127,41 @@ func FuzzDecodeDecayed(f *testing.F) {
 func FuzzDecodeRecency(f *testing.F) {
 	addSeeds(f, 2, 9, "v1-recency")
 	f.Fuzz(func(t *testing.T, b []byte, a, h uint8) {
-		spec := RecencySpec{Gap: int64(a%9+1) * 10 * second, Horizon: int64(h) * 10 * second}
-		fresh := func() codec { r := NewRecency(spec); r.Add(t0); return r }
+		spec := RecencySpec{Gap: time.Duration(int64(a%9+1) * 10 * second), Horizon: time.Duration(int64(h) * 10 * second)}
+		fresh := func() codec { r := must(NewRecency(spec)); r.Add(t0); return r }
 		checkDecoded(t, b, fresh, func(c codec) error {
 			r := c.(*Recency)
 			_ = r.SessionCountAt(r.maxT)
 			_, _ = r.SinceLastAt(r.maxT - 1)
 			r.Add(r.maxT + 1)
 			return r.checkInvariants()
+		})
+	})
+}
+
+func FuzzDecodeSurge(f *testing.F) {
+	addSeeds(f, 4, 9, "v1-surge", "v1-surge-empty")
+	f.Fuzz(func(t *testing.T, b []byte, a, h uint8) {
+		r := time.Duration(int64(a&3)+1) * minute
+		spec := SurgeSpec{Window: 5 * r, HalfLife: time.Duration(int64(a>>2)+1) * hour, Resolution: r, Horizon: time.Duration(int64(h) * 10 * second)}
+		fresh := func() codec { s := must(NewSurge(spec)); s.Add(t0); return s }
+		checkDecoded(t, b, fresh, func(c codec) error {
+			s := c.(*Surge)
+			n, _ := s.Newest()
+			_ = s.RatioAt(n)
+			_ = s.RatioAt(n - int64(spec.Horizon) - 1)
+			s.Add(n + 1)
+			s.Add(n - int64(spec.Window))
+			if err := s.short.checkInvariants(); err != nil {
+				return err
+			}
+			if err := s.base.checkInvariants(); err != nil {
+				return err
+			}
+			if t1, _ := s.short.Newest(); t1 != s.base.maxT {
+				return errors.New("parts disagree on the newest time")
+			}
+			return nil
 		})
 	})
 }

@@ -30,6 +30,7 @@ type codec interface {
 func goldenStates() map[string]func() codec {
 	ts := []int64{t0 + 5*second, t0 + 61*second, t0 + 62*second, t0 + 3*minute, t0 + 3*minute + 1, t0 + 4*minute}
 	spec := SlidingSpec{Window: hour, Resolution: minute, Horizon: 90 * second}
+	surge := SurgeSpec{Window: 5 * minute, HalfLife: hour, Resolution: minute, Horizon: 90 * second}
 	feedV := func(add func(int64, float64) bool) {
 		for i, t := range ts {
 			add(t, float64(i)*1.5-2)
@@ -37,36 +38,42 @@ func goldenStates() map[string]func() codec {
 	}
 	return map[string]func() codec{
 		"v1-sliding-count": func() codec {
-			c := NewSlidingCount(spec)
+			c := must(NewSlidingCount(spec))
 			for _, t := range ts {
 				c.Add(t)
 			}
 			return c
 		},
-		"v1-sliding-sum":  func() codec { c := NewSlidingSum(spec); feedV(c.Add); return c },
-		"v1-sliding-min":  func() codec { c := NewSlidingMin(spec); feedV(c.Add); return c },
-		"v1-sliding-max":  func() codec { c := NewSlidingMax(spec); feedV(c.Add); return c },
-		"v1-sliding-mean": func() codec { c := NewSlidingMean(spec); feedV(c.Add); return c },
+		"v1-sliding-sum":  func() codec { c := must(NewSlidingSum(spec)); feedV(c.Add); return c },
+		"v1-sliding-min":  func() codec { c := must(NewSlidingMin(spec)); feedV(c.Add); return c },
+		"v1-sliding-max":  func() codec { c := must(NewSlidingMax(spec)); feedV(c.Add); return c },
+		"v1-sliding-mean": func() codec { c := must(NewSlidingMean(spec)); feedV(c.Add); return c },
 		"v1-decayed": func() codec {
-			c := NewDecayed(DecaySpec{HalfLife: minute, Horizon: 90 * second})
+			c := must(NewDecayed(DecaySpec{HalfLife: minute, Horizon: 90 * second}))
 			feedV(c.Add)
 			return c
 		},
 		"v1-velocity": func() codec {
-			c := NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 90 * second})
+			c := must(NewVelocity(VelocitySpec{Short: 5 * minute, Long: hour, Resolution: minute, Horizon: 90 * second}))
 			for _, t := range ts {
 				c.Add(t)
 			}
 			return c
 		},
 		"v1-recency": func() codec {
-			c := NewRecency(RecencySpec{Gap: 30 * second, Horizon: 90 * second})
+			c := must(NewRecency(RecencySpec{Gap: 30 * second, Horizon: 90 * second}))
 			for _, t := range ts {
 				c.Add(t)
 			}
 			return c
 		},
-		"v1-sliding-count-empty": func() codec { return NewSlidingCount(spec) },
+		"v1-sliding-count-empty": func() codec { return must(NewSlidingCount(spec)) },
+		"v1-surge": func() codec {
+			c := must(NewSurge(surge))
+			feedV(func(t int64, _ float64) bool { return c.Add(t) })
+			return c
+		},
+		"v1-surge-empty": func() codec { return must(NewSurge(surge)) },
 	}
 }
 

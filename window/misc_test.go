@@ -6,13 +6,14 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+	"time"
 )
 
 // A 1 h / 1 min sliding count holding 10 events encodes in at most 64
 // bytes (target from the design).
 func TestSlidingCountEncodedSize(t *testing.T) {
 	for _, horizon := range []int64{0, 5 * second, minute} {
-		c := NewSlidingCount(SlidingSpec{Window: hour, Resolution: minute, Horizon: horizon})
+		c := must(NewSlidingCount(SlidingSpec{Window: hour, Resolution: minute, Horizon: time.Duration(horizon)}))
 		for _, ts := range steadyTimes(10, hour/20, 5*second) {
 			c.Add(ts)
 		}
@@ -26,10 +27,10 @@ func TestSlidingCountEncodedSize(t *testing.T) {
 // Steady-state Add and Reset allocate nothing (a count, not a timing).
 func TestAddAllocs(t *testing.T) {
 	ts := steadyTimes(1<<12, second, 5*second)
-	c := NewSlidingCount(benchSpec)
-	s := NewSlidingMean(benchSpec)
-	d := NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second})
-	r := NewRecency(RecencySpec{Gap: minute, Horizon: 5 * second})
+	c := must(NewSlidingCount(benchSpec))
+	s := must(NewSlidingMean(benchSpec))
+	d := must(NewDecayed(DecaySpec{HalfLife: hour, Horizon: 5 * second}))
+	r := must(NewRecency(RecencySpec{Gap: minute, Horizon: 5 * second}))
 	warm := func() {
 		for _, x := range ts {
 			c.Add(x)
@@ -89,7 +90,7 @@ func TestAssign(t *testing.T) {
 // non-finite values.
 func TestSlidingWrappers(t *testing.T) {
 	spec := SlidingSpec{Window: 30, Resolution: 10, Horizon: 100}
-	sum, mn, mx, me := NewSlidingSum(spec), NewSlidingMin(spec), NewSlidingMax(spec), NewSlidingMean(spec)
+	sum, mn, mx, me := must(NewSlidingSum(spec)), must(NewSlidingMin(spec)), must(NewSlidingMax(spec)), must(NewSlidingMean(spec))
 	for i, v := range []float64{3, -1, 4, 1, 5} {
 		for _, a := range []interface{ Add(int64, float64) bool }{sum, mn, mx, me} {
 			if !a.Add(int64(i*5), v) {
@@ -100,7 +101,7 @@ func TestSlidingWrappers(t *testing.T) {
 	if sum.SumAt(20) != 12 || mn.MinAt(20) != -1 || mx.MaxAt(20) != 5 || me.MeanAt(20) != 12.0/5 || me.CountAt(20) != 5 {
 		t.Errorf("got sum %v min %v max %v mean %v", sum.SumAt(20), mn.MinAt(20), mx.MaxAt(20), me.MeanAt(20))
 	}
-	if sum.Add(1, math.NaN()) || mn.Add(1, math.Inf(1)) || sum.Len() != 5 {
+	if sum.Add(1, math.NaN()) || mn.Add(1, math.Inf(1)) || sum.Count() != 5 {
 		t.Error("non-finite value accepted")
 	}
 	if !math.IsNaN(me.MeanAt(-100)) || sum.SumAt(-100) != 0 {
@@ -118,7 +119,7 @@ func TestArrivalOrderWithinHorizon(t *testing.T) {
 	for seed := range uint64(300) {
 		rng := rand.New(rand.NewPCG(seed, 11))
 		horizon := int64(rng.IntN(30))
-		spec := SlidingSpec{Window: 40, Resolution: 5, Horizon: horizon}
+		spec := SlidingSpec{Window: 40, Resolution: 5, Horizon: time.Duration(horizon)}
 		ts := randomStream(rng, 1+rng.IntN(50))
 		slices.Sort(ts)
 		var ref [3][]byte
@@ -138,9 +139,9 @@ func TestArrivalOrderWithinHorizon(t *testing.T) {
 					order[i] = ts[j]
 				}
 			}
-			c := NewSlidingCount(spec)
-			v := NewVelocity(VelocitySpec{Short: 10, Long: 40, Resolution: 5, Horizon: horizon})
-			r := NewRecency(RecencySpec{Gap: 7, Horizon: horizon})
+			c := must(NewSlidingCount(spec))
+			v := must(NewVelocity(VelocitySpec{Short: 10, Long: 40, Resolution: 5, Horizon: time.Duration(horizon)}))
+			r := must(NewRecency(RecencySpec{Gap: 7, Horizon: time.Duration(horizon)}))
 			for _, x := range order {
 				if !c.Add(x) || !v.Add(x) {
 					t.Fatalf("seed %d: event %d dropped within the horizon", seed, x)
@@ -166,7 +167,7 @@ func TestArrivalOrderWithinHorizon(t *testing.T) {
 // Extreme but accepted values never drive the decayed state out of the
 // range its decoder accepts.
 func TestDecayedExtremeValues(t *testing.T) {
-	d := NewDecayed(DecaySpec{HalfLife: 10, Horizon: 5, RebaseEvery: maxRebaseEvery})
+	d := must(NewDecayed(DecaySpec{HalfLife: 10, Horizon: 5, RebaseEvery: maxRebaseEvery}))
 	if d.Add(0, 2*MaxDecayedValue) || d.Add(0, math.NaN()) || d.Add(0, math.Inf(-1)) {
 		t.Fatal("out-of-range value accepted")
 	}
@@ -182,7 +183,7 @@ func TestDecayedExtremeValues(t *testing.T) {
 		}
 	}
 	b, _ := d.AppendBinary(nil)
-	if err := NewDecayed(d.spec).UnmarshalBinary(b); err != nil {
+	if err := must(NewDecayed(d.spec)).UnmarshalBinary(b); err != nil {
 		t.Fatalf("state from in-range values does not decode: %v", err)
 	}
 	if v := d.VarianceAt(d.maxT); math.IsNaN(v) || math.IsInf(v, 0) {

@@ -1,11 +1,15 @@
 package window
 
 import (
+	"cmp"
 	"fmt"
 	"math"
 	"math/rand/v2"
 	"slices"
 	"testing"
+	"time"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // Brute-force references for the decayed, recency and velocity aggregates:
@@ -24,8 +28,8 @@ func closeTo(got, want, scale float64) bool {
 func TestDecayedFastVsNaive(t *testing.T) {
 	for seed := range uint64(10000) {
 		rng := rand.New(rand.NewPCG(seed, 7))
-		spec := DecaySpec{HalfLife: int64(1 + rng.IntN(30)), Horizon: int64(rng.IntN(40)), RebaseEvery: int64(1 + rng.IntN(4))}
-		d := NewDecayed(spec)
+		spec := DecaySpec{HalfLife: time.Duration(int64(1 + rng.IntN(30))), Horizon: time.Duration(int64(rng.IntN(40))), RebaseEvery: int64(1 + rng.IntN(4))}
+		d := must(NewDecayed(spec))
 		var evs []event
 		maxT := int64(math.MinInt64)
 		for i, ts := range randomStream(rng, 1+rng.IntN(40)) {
@@ -72,7 +76,7 @@ func checkDecayedQuery(t *testing.T, d *Decayed, evs []event, maxT, q int64, ctx
 		}
 		vr = m2 / w
 	}
-	if q < maxT-d.spec.Horizon {
+	if q < maxT-int64(d.spec.Horizon) {
 		w, s, mean, vr = math.NaN(), math.NaN(), math.NaN(), math.NaN()
 	}
 	got := [4]float64{d.CountAt(q), d.SumAt(q), d.MeanAt(q), d.VarianceAt(q)}
@@ -96,8 +100,8 @@ func (d *Decayed) checkInvariants() error {
 		return nil
 	}
 	c := d.cutoff()
-	if d.land != floorDiv(c, d.step) || d.landT != startOf(d.land, d.step) || d.nextT != startOf(d.land+1, d.step) {
-		return fmt.Errorf("land %d (%d, %d), want %d", d.land, d.landT, d.nextT, floorDiv(c, d.step))
+	if d.land != sat.FloorDiv(c, d.step) || d.landT != startOf(d.land, d.step) || d.nextT != startOf(d.land+1, d.step) {
+		return fmt.Errorf("land %d (%d, %d), want %d", d.land, d.landT, d.nextT, sat.FloorDiv(c, d.step))
 	}
 	if d.w < 0 || d.m2 < 0 || (d.w == 0 && (d.mean != 0 || d.m2 != 0)) {
 		return fmt.Errorf("weights (%v, %v, %v)", d.w, d.mean, d.m2)
@@ -112,7 +116,7 @@ func (d *Decayed) checkInvariants() error {
 
 func decayedRoundTrip(t *testing.T, d *Decayed) {
 	t.Helper()
-	e := NewDecayed(d.spec)
+	e := must(NewDecayed(d.spec))
 	e.Add(99, 1) // dirty state must be replaced
 	roundTripCodec(t, d, e, func() bool {
 		return e.seen == d.seen && e.maxT == d.maxT && e.land == d.land && e.w == d.w &&
@@ -169,17 +173,17 @@ func naiveRecency(ts []int64, q, gap int64) (last int64, ok bool, session uint64
 func TestRecencyFastVsNaive(t *testing.T) {
 	for seed := range uint64(10000) {
 		rng := rand.New(rand.NewPCG(seed, 8))
-		spec := RecencySpec{Gap: int64(1 + rng.IntN(15)), Horizon: int64(rng.IntN(30))}
+		spec := RecencySpec{Gap: time.Duration(int64(1 + rng.IntN(15))), Horizon: time.Duration(int64(rng.IntN(30)))}
 		bounded := true // exact until a bridging event arrives
 		clamp := seed%2 == 0
-		r := NewRecency(spec)
+		r := must(NewRecency(spec))
 		var ts []int64
 		maxT := int64(math.MinInt64)
 		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
-			if clamp && len(ts) > 0 && x < maxT-spec.Horizon {
-				x = maxT - spec.Horizon
+			if clamp && len(ts) > 0 && x < maxT-int64(spec.Horizon) {
+				x = maxT - int64(spec.Horizon)
 			}
-			if bridges(ts, x, max(maxT, x)-spec.Horizon, spec.Gap) {
+			if bridges(ts, x, max(maxT, x)-int64(spec.Horizon), int64(spec.Gap)) {
 				bounded = false // the documented undercount may happen from here on
 			}
 			r.Add(x)
@@ -188,7 +192,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 			if rng.IntN(8) == 0 {
 				recencyRoundTrip(t, r)
 			}
-			cutoff := maxT - spec.Horizon
+			cutoff := maxT - int64(spec.Horizon)
 			var maxFolded int64 = math.MinInt64
 			for _, u := range ts {
 				if u <= cutoff {
@@ -198,7 +202,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 			for range 3 {
 				q := maxT - int64(rng.IntN(int(spec.Horizon)*2+10)) + int64(rng.IntN(20))
 				answerable := q >= cutoff || (maxFolded != math.MinInt64 && q >= maxFolded)
-				last, ok, sess := naiveRecency(ts, q, spec.Gap)
+				last, ok, sess := naiveRecency(ts, q, int64(spec.Gap))
 				if !answerable {
 					last, ok, sess = 0, false, 0
 				}
@@ -226,7 +230,7 @@ func TestRecencyFastVsNaive(t *testing.T) {
 
 func recencyRoundTrip(t *testing.T, r *Recency) {
 	t.Helper()
-	e := NewRecency(r.spec)
+	e := must(NewRecency(r.spec))
 	e.Add(5)
 	roundTripCodec(t, r, e, func() bool {
 		return e.seen == r.seen && e.maxT == r.maxT && e.first == r.first && e.folded == r.folded &&
@@ -272,22 +276,92 @@ func TestVelocityFastVsNaive(t *testing.T) {
 		rng := rand.New(rand.NewPCG(seed, 9))
 		r := int64(1 + rng.IntN(5))
 		ns := int64(1 + rng.IntN(4))
-		spec := VelocitySpec{Short: ns * r, Long: (ns + 1 + int64(rng.IntN(8))) * r, Resolution: r,
-			Horizon: int64(rng.IntN(30)), Smoothing: float64(rng.IntN(3)) / 2}
-		v := NewVelocity(spec)
+		spec := VelocitySpec{Short: time.Duration(ns * r), Long: time.Duration((ns + 1 + int64(rng.IntN(8))) * r), Resolution: time.Duration(r),
+			Horizon: time.Duration(int64(rng.IntN(30))), Smoothing: float64(rng.IntN(3)) / 2}
+		v := must(NewVelocity(spec))
 		m := &naiveSliding{spec: spec.sliding(), op: opCount}
 		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
 			if v.Add(x) != m.add(x, 0) {
 				t.Fatalf("seed %d: Add(%d) disagrees", seed, x)
 			}
 			q := m.maxT - int64(rng.IntN(40)) + 5
-			cs := float64(len(m.selected(q, spec.Short/r)))
-			cl := float64(len(m.selected(q, spec.Long/r)))
-			a := spec.alpha()
+			cs := float64(len(m.selected(q, int64(spec.Short)/r)))
+			cl := float64(len(m.selected(q, int64(spec.Long)/r)))
+			a := cmp.Or(spec.Smoothing, 1)
 			want := (cs + a) / (cl*float64(spec.Short)/float64(spec.Long) + a)
 			if got := v.RatioAt(q); got != want {
 				t.Fatalf("seed %d %+v add #%d: RatioAt(%d) = %v, want %v", seed, spec, i, q, got, want)
 			}
 		}
+	}
+}
+
+// TestSurgeFastVsNaive checks RatioAt against the formula on the type over
+// a short count and a decayed count recomputed from the raw events
+// (Σ 2^(−(t−ti)/h) summed directly, no landmark), on 5k seeded streams.
+func TestSurgeFastVsNaive(t *testing.T) {
+	for seed := range uint64(5000) {
+		rng := rand.New(rand.NewPCG(seed, 11))
+		r := int64(1 + rng.IntN(5))
+		spec := SurgeSpec{Window: time.Duration(r * int64(1+rng.IntN(6))), HalfLife: time.Duration(1 + rng.IntN(200)),
+			Resolution: time.Duration(r), Horizon: time.Duration(rng.IntN(30)), Smoothing: float64(rng.IntN(3)) / 2}
+		s := must(NewSurge(spec))
+		m := &naiveSliding{spec: spec.sliding(), op: opCount}
+		a := cmp.Or(spec.Smoothing, 1)
+		k := float64(spec.Window) * math.Ln2 / float64(spec.HalfLife)
+		for i, x := range randomStream(rng, 1+rng.IntN(40)) {
+			if s.Add(x) != m.add(x, 0) {
+				t.Fatalf("seed %d: Add(%d) disagrees", seed, x)
+			}
+			q := m.maxT - int64(rng.IntN(40)) + 5
+			got := s.RatioAt(q)
+			if q < m.cutoff() {
+				if !math.IsNaN(got) {
+					t.Fatalf("seed %d: RatioAt(%d) below the cutoff = %v, want NaN", seed, q, got)
+				}
+				continue
+			}
+			c := float64(len(m.selected(q, int64(spec.Window)/r)))
+			var d float64
+			for _, e := range m.events {
+				if e.t <= q {
+					d += math.Exp2(-float64(q-e.t) / float64(spec.HalfLife))
+				}
+			}
+			want := (c + a) / (d*k + a)
+			if !closeTo(got, want, want) {
+				t.Fatalf("seed %d %+v add #%d: RatioAt(%d) = %v, want %v", seed, spec, i, q, got, want)
+			}
+		}
+		roundTripCodec(t, s, must(NewSurge(spec)), func() bool { return true })
+	}
+}
+
+// Worked values of the formula on Surge (derived): a new entity reads 1;
+// a steady rate of one event per Window/4 over many half-lives reads about
+// 1; one burst of 9 events in the window over an empty history, with
+// Window = HalfLife·ln2 (so W·ln2/h = ln2² ≈ 0.48), reads (9+1)/(9·0.48+1).
+func TestSurgeWorkedValues(t *testing.T) {
+	s := must(NewSurge(SurgeSpec{Window: time.Hour, HalfLife: 24 * time.Hour, Resolution: time.Minute}))
+	if got := s.RatioAt(t0); got != 1 {
+		t.Fatalf("new entity reads %v, want 1", got)
+	}
+	step := int64(15 * time.Minute)
+	var x int64
+	for x = t0; x < t0+40*24*int64(time.Hour); x += step {
+		s.Add(x)
+	}
+	if got := s.RatioAt(x - step); math.Abs(got-1) > 0.02 {
+		t.Fatalf("steady rate reads %v, want about 1", got)
+	}
+	h := 100 * time.Second
+	w := time.Duration(float64(h) * math.Ln2)
+	b := must(NewSurge(SurgeSpec{Window: w, HalfLife: h, Resolution: w}))
+	for range 9 {
+		b.Add(0)
+	}
+	want := 10 / (9*float64(w)*math.Ln2/float64(h) + 1) // w is h·ln2 cut to whole ns
+	if got := b.RatioAt(0); math.Abs(got-want) > 1e-12 {
+		t.Fatalf("burst reads %v, want %v", got, want)
 	}
 }

@@ -1,25 +1,36 @@
 package window
 
 import (
+	"cmp"
 	"encoding/binary"
 	"math"
+	"time"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// RecencySpec defines first/last-seen tracking and gap-based sessions.
+// RecencySpec defines first/last-seen tracking and gap-based sessions. A
+// zero field means its default.
 type RecencySpec struct {
-	// Gap in nanoseconds, > 0: two consecutive events (in time order) at
-	// most Gap apart belong to the same session. No default.
-	Gap int64
+	// Gap, > 0: two consecutive events (in time order) at most Gap apart
+	// belong to the same session. Default 30 minutes (common practice for
+	// web sessions).
+	Gap time.Duration
 	// Horizon as in SlidingSpec: how far behind the newest added time
 	// queries stay exact, >= 0. Default 0.
-	Horizon int64
+	Horizon time.Duration
 }
+
+// DefaultGap is RecencySpec's default Gap.
+const DefaultGap = 30 * time.Minute
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
 // each matching ErrInvalidSpec), or nil.
 func (s RecencySpec) Validate() error {
-	e := specErrs{spec: "RecencySpec"}
+	s.Gap = cmp.Or(s.Gap, DefaultGap)
+	e := newSpecErrs("RecencySpec")
 	e.positive("Gap", s.Gap)
 	e.nonNegative("Horizon", s.Horizon)
 	return e.err()
@@ -46,8 +57,8 @@ func (s RecencySpec) Validate() error {
 // is not merged in, so the session count undercounts. Events that arrive
 // within Horizon of the newest time never cause it.
 //
-// Build with NewRecency; an aggregate built from an invalid spec ignores
-// Add. Not safe for concurrent use.
+// Build with NewRecency; the zero value ignores Add. Not safe for
+// concurrent use.
 //
 // Invariants: !seen implies an empty state; first <= every retained time;
 // folded implies sStart <= sLast <= cutoff and sCount >= 1; raw is sorted
@@ -72,16 +83,19 @@ type session struct {
 	count       uint64
 }
 
-// NewRecency returns an empty recency tracker over spec.
-func NewRecency(spec RecencySpec) *Recency {
-	r := &Recency{spec: spec, valid: spec.Validate() == nil}
-	if r.valid {
-		r.raw.buf = make([]event, 0, 8)
+// NewRecency returns an empty recency tracker over spec, or the errors of
+// spec.Validate.
+func NewRecency(spec RecencySpec) (*Recency, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
 	}
-	return r
+	spec.Gap = cmp.Or(spec.Gap, DefaultGap)
+	r := &Recency{spec: spec, valid: true}
+	r.raw.buf = make([]event, 0, 8)
+	return r, nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (r *Recency) Spec() RecencySpec { return r.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -99,10 +113,10 @@ func (r *Recency) SizeBytes() int {
 	return int(unsafe.Sizeof(*r)) + r.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (r *Recency) cutoff() int64 { return satSub(r.maxT, r.spec.Horizon) }
+func (r *Recency) cutoff() int64 { return sat.Sub(r.maxT, int64(r.spec.Horizon)) }
 
 // within reports whether b − a <= Gap for a <= b, without overflow.
-func (r *Recency) within(a, b int64) bool { return satSub(b, a) <= r.spec.Gap }
+func (r *Recency) within(a, b int64) bool { return sat.Sub(b, a) <= int64(r.spec.Gap) }
 
 // Add records one event at time t. It returns false only when the spec is
 // invalid.
@@ -206,7 +220,7 @@ func (r *Recency) SinceLastAt(t int64) (int64, bool) {
 	if !ok {
 		return 0, false
 	}
-	return satSub(t, last), true
+	return sat.Sub(t, last), true
 }
 
 // SessionCountAt returns the number of events in the current session as of
@@ -269,37 +283,37 @@ func (r *Recency) UnmarshalBinary(b []byte) error {
 }
 
 // back returns x − d for an unsigned d, or fails if that is below lo.
-func back(rd *reader, x int64, d uint64, lo int64, what string) int64 {
-	if rd.err == nil && d > uint64(x)-uint64(lo) {
-		rd.fail(what + " out of range")
+func back(rd *wire.Decoder, x int64, d uint64, lo int64, what string) int64 {
+	if rd.Err == nil && d > uint64(x)-uint64(lo) {
+		rd.Fail("%s out of range", what)
 		return x
 	}
 	return int64(uint64(x) - d)
 }
 
 func (r *Recency) decode(b []byte, store bool) error {
-	rd := reader{b: b}
-	flags, maxT, ok := rd.startState(kindRecency, flagSeen|flagFolded, store, r.Reset)
+	rd := wire.Decoder{B: b}
+	flags, maxT, ok := startState(&rd, kindRecency, flagSeen|flagFolded, store, r.Reset)
 	if !ok {
-		return rd.err
+		return rd.Err
 	}
-	cutoff := satSub(maxT, r.spec.Horizon)
-	first := back(&rd, maxT, rd.uvarint("first"), math.MinInt64, "first")
+	cutoff := sat.Sub(maxT, int64(r.spec.Horizon))
+	first := back(&rd, maxT, rd.Uvarint(), math.MinInt64, "first")
 	var s session
 	folded := flags&flagFolded != 0
 	if folded {
-		s.last = back(&rd, maxT, rd.uvarint("session last"), first, "session last")
-		s.start = back(&rd, s.last, rd.uvarint("session start"), first, "session start")
-		s.count = rd.uvarint("session count") + 1
-		if rd.err == nil && (s.count == 0 || s.last > cutoff) {
-			rd.fail("folded session out of range")
+		s.last = back(&rd, maxT, rd.Uvarint(), first, "session last")
+		s.start = back(&rd, s.last, rd.Uvarint(), first, "session start")
+		s.count = rd.Uvarint() + 1
+		if rd.Err == nil && (s.count == 0 || s.last > cutoff) {
+			rd.Fail("folded session out of range")
 		}
 	}
 	n, oldest := readEvents(&rd, &r.raw, maxT, cutoff, 0, store)
-	if rd.err == nil && (oldest < first || (!folded && (n == 0 || oldest != first))) {
-		rd.fail("first time inconsistent with the events")
+	if rd.Err == nil && (oldest < first || (!folded && (n == 0 || oldest != first))) {
+		rd.Fail("first time inconsistent with the events")
 	}
-	if err := rd.end(); err != nil || !store {
+	if err := rd.Finish(); err != nil || !store {
 		return err
 	}
 	r.seen, r.maxT, r.first = true, maxT, first

@@ -4,6 +4,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
+	"time"
 
 	"gonum.org/v1/gonum/stat"
 )
@@ -22,7 +23,7 @@ func near(t *testing.T, what string, got, want, tol float64) {
 // formula); after one half-life a weight is exactly 0.5.
 func TestForwardDecayHalfLifeExample(t *testing.T) {
 	for _, order := range [][]int64{{0, 10}, {10, 0}} {
-		d := NewDecayed(DecaySpec{HalfLife: 10, Horizon: 100})
+		d := must(NewDecayed(DecaySpec{HalfLife: 10, Horizon: 100}))
 		for _, ts := range order {
 			d.Add(ts, 1)
 		}
@@ -33,7 +34,7 @@ func TestForwardDecayHalfLifeExample(t *testing.T) {
 			t.Errorf("order %v: CountAt(20) = %v, want 0.75", order, got)
 		}
 	}
-	d := NewDecayed(DecaySpec{HalfLife: 10})
+	d := must(NewDecayed(DecaySpec{HalfLife: 10}))
 	d.Add(0, 1)
 	if got := d.CountAt(10); got != 0.5 {
 		t.Errorf("weight after one half-life = %v, want exactly 0.5", got)
@@ -45,7 +46,7 @@ func TestForwardDecayHalfLifeExample(t *testing.T) {
 // population variance 4. Equal times give equal weights, so the decayed
 // statistics reduce to the unweighted ones.
 func TestWelfordExample(t *testing.T) {
-	d := NewDecayed(DecaySpec{HalfLife: 1e9})
+	d := must(NewDecayed(DecaySpec{HalfLife: 1e9}))
 	for _, x := range []float64{2, 4, 4, 4, 5, 5, 7, 9} {
 		d.Add(1000, x)
 	}
@@ -61,7 +62,7 @@ func TestWelfordExample(t *testing.T) {
 // merge to M2 32. Here the second half arrives after the first has been
 // folded (Horizon 0, all at one time), which must give the same M2.
 func TestChanGolubLeVequeExample(t *testing.T) {
-	d := NewDecayed(DecaySpec{HalfLife: 1e9})
+	d := must(NewDecayed(DecaySpec{HalfLife: 1e9}))
 	for _, x := range []float64{2, 4, 4, 4} {
 		d.Add(7, x)
 	}
@@ -89,7 +90,7 @@ func TestWestWeightedExample(t *testing.T) {
 // mean 16.667, variance 22.222.
 func TestDecayedVarianceExample(t *testing.T) {
 	const h = 3600e9
-	d := NewDecayed(DecaySpec{HalfLife: h})
+	d := must(NewDecayed(DecaySpec{HalfLife: h}))
 	d.Add(0, 10)
 	d.Add(h, 20)
 	near(t, "decayed mean", d.MeanAt(h), 16.667, 1e-3)
@@ -102,7 +103,7 @@ func TestDecayedAgainstGonum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(42, 1))
 	for trial := range 200 {
 		h := int64(1 + rng.IntN(1000))
-		d := NewDecayed(DecaySpec{HalfLife: h, Horizon: int64(rng.IntN(5000))})
+		d := must(NewDecayed(DecaySpec{HalfLife: time.Duration(h), Horizon: time.Duration(int64(rng.IntN(5000)))}))
 		n := 1 + rng.IntN(200)
 		xs, ws := make([]float64, n), make([]float64, n)
 		ts := make([]int64, n)
@@ -143,7 +144,7 @@ func floats(xs []float64) float64 {
 // years of daily events with a one-day half-life.
 func TestDecayedYearsOfHistory(t *testing.T) {
 	const day = int64(86400e9)
-	d := NewDecayed(DecaySpec{HalfLife: day, RebaseEvery: 8})
+	d := must(NewDecayed(DecaySpec{HalfLife: time.Duration(day), RebaseEvery: 8}))
 	for i := range int64(3650) {
 		d.Add(i*day, 1)
 	}

@@ -168,17 +168,17 @@ func runScenario(t *testing.T, path string) string {
 		res := ""
 		switch fields[0] {
 		case "sliding":
-			s := SlidingSpec{Window: d("window"), Resolution: d("resolution"), Horizon: d("horizon")}
-			agg = &slidingSet{NewSlidingCount(s), NewSlidingSum(s), NewSlidingMin(s), NewSlidingMax(s), NewSlidingMean(s)}
+			s := SlidingSpec{Window: time.Duration(d("window")), Resolution: time.Duration(d("resolution")), Horizon: time.Duration(d("horizon"))}
+			agg = &slidingSet{must(NewSlidingCount(s)), must(NewSlidingSum(s)), must(NewSlidingMin(s)), must(NewSlidingMax(s)), must(NewSlidingMean(s))}
 		case "decayed":
 			rb, _ := strconv.ParseInt(kv["rebase"], 10, 64)
-			agg = decayedAgg{NewDecayed(DecaySpec{HalfLife: d("halflife"), Horizon: d("horizon"), RebaseEvery: rb})}
+			agg = decayedAgg{must(NewDecayed(DecaySpec{HalfLife: time.Duration(d("halflife")), Horizon: time.Duration(d("horizon")), RebaseEvery: rb}))}
 		case "velocity":
 			a, _ := strconv.ParseFloat(kv["alpha"], 64)
-			agg = velocityAgg{NewVelocity(VelocitySpec{Short: d("short"), Long: d("long"),
-				Resolution: d("resolution"), Horizon: d("horizon"), Smoothing: a})}
+			agg = velocityAgg{must(NewVelocity(VelocitySpec{Short: time.Duration(d("short")), Long: time.Duration(d("long")),
+				Resolution: time.Duration(d("resolution")), Horizon: time.Duration(d("horizon")), Smoothing: a}))}
 		case "recency":
-			agg = recencyAgg{NewRecency(RecencySpec{Gap: d("gap"), Horizon: d("horizon")})}
+			agg = recencyAgg{must(NewRecency(RecencySpec{Gap: time.Duration(d("gap")), Horizon: time.Duration(d("horizon"))}))}
 		case "add":
 			ts, err := parseTime(arg(1))
 			if err != nil {

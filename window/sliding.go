@@ -1,34 +1,47 @@
 package window
 
 import (
+	"cmp"
 	"encoding/binary"
 	"math"
+	"time"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/sat"
+	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // SlidingSpec defines a sliding window over event time, cut into panes.
-//
-// The zero value is invalid; every field must be set.
+// A zero field means its default; Window is required.
 type SlidingSpec struct {
-	// Window is the window length in nanoseconds. It must be > 0 and a
-	// multiple of Resolution. No default.
-	Window int64
-	// Resolution is the pane width in nanoseconds, > 0. Panes are aligned to
-	// the Unix epoch: pane(t) = floor(t / Resolution). A smaller resolution
-	// narrows the trailing-edge error and costs more panes. No default.
-	Resolution int64
-	// Horizon is how far behind the newest added time, in nanoseconds, Add
-	// and as-of queries stay exact; >= 0. A pipeline passes its allowed
-	// disorder. Default 0.
-	Horizon int64
+	// Window is the window length, > 0 and a multiple of Resolution.
+	// Required; no default.
+	Window time.Duration
+	// Resolution is the pane width, > 0. Panes are aligned to the Unix
+	// epoch: pane(t) = floor(t / Resolution). A smaller resolution narrows
+	// the trailing-edge error and costs more panes. Default Window/60 (at
+	// least 1 ns).
+	Resolution time.Duration
+	// Horizon is how far behind the newest added time Add and as-of queries
+	// stay exact; >= 0. A pipeline passes its allowed disorder. Default 0.
+	Horizon time.Duration
+}
+
+// withDefaults returns s with zero fields set to their defaults.
+func (s SlidingSpec) withDefaults() SlidingSpec {
+	if s.Window > 0 {
+		s.Resolution = cmp.Or(s.Resolution, max(s.Window/60, 1))
+	}
+	return s
 }
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
-// each matching ErrInvalidSpec), or nil.
+// each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s SlidingSpec) Validate() error {
-	e := specErrs{spec: "SlidingSpec"}
+	s = s.withDefaults()
+	e := newSpecErrs("SlidingSpec")
 	e.positive("Window", s.Window)
-	e.positive("Resolution", s.Resolution)
+	e.check(s.Window <= 0 || s.Resolution > 0, "Resolution", "must be > 0")
 	e.check(s.Window <= 0 || s.Resolution <= 0 || s.Window%s.Resolution == 0,
 		"Window", "must be a multiple of Resolution")
 	e.nonNegative("Horizon", s.Horizon)
@@ -93,8 +106,10 @@ type pane struct {
 //   - when seen, cutPane, cutStart, cutNext describe pane(cutoff).
 type ring struct {
 	spec  SlidingSpec
-	valid bool  // spec.Validate() == nil
+	valid bool  // built by a constructor from a valid spec
 	n     int64 // Window / Resolution
+	res   int64 // Resolution in ns
+	hor   int64 // Horizon in ns
 	op    op
 	kind  byte
 
@@ -108,20 +123,22 @@ type ring struct {
 	raw                        seq[event]
 }
 
-func (g *ring) init(spec SlidingSpec, o op, kind byte) {
-	g.spec, g.op, g.kind = spec, o, kind
-	g.valid = spec.Validate() == nil
-	if !g.valid {
-		return
+func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
+	if err := spec.Validate(); err != nil {
+		return err
 	}
-	g.n = spec.Window / spec.Resolution
+	spec = spec.withDefaults()
+	g.spec, g.op, g.kind, g.valid = spec, o, kind, true
+	g.res, g.hor = int64(spec.Resolution), int64(spec.Horizon)
+	g.n = int64(spec.Window / spec.Resolution)
 	// Small to start: most entities are sparse. Storage grows by append and
 	// is then reused, so the steady state allocates nothing.
 	g.panes.buf = make([]pane, 0, min(g.n+1, 4))
 	g.raw.buf = make([]event, 0, 4)
+	return nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (g *ring) Spec() SlidingSpec { return g.spec }
 
 // Reset empties the aggregate and keeps its spec and storage.
@@ -134,8 +151,8 @@ func (g *ring) Reset() {
 // Newest returns the largest time added; ok is false (and t 0) if none.
 func (g *ring) Newest() (t int64, ok bool) { return g.maxT, g.seen }
 
-// Len returns the number of events retained (folded into panes or raw).
-func (g *ring) Len() uint64 { return g.total }
+// Count returns the number of events retained (folded into panes or raw).
+func (g *ring) Count() uint64 { return g.total }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (g *ring) SizeBytes() int {
@@ -143,17 +160,17 @@ func (g *ring) SizeBytes() int {
 		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
 }
 
-func (g *ring) paneOf(t int64) int64 { return floorDiv(t, g.spec.Resolution) }
+func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.res) }
 
 // paneStart is the first time of pane idx, saturated to the int64 range.
-func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.spec.Resolution) }
+func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.res) }
 
-func (g *ring) cutoff() int64 { return satSub(g.maxT, g.spec.Horizon) }
+func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.hor) }
 
 func (g *ring) setCut() {
 	g.cutPane = g.paneOf(g.cutoff())
 	g.cutStart = g.paneStart(g.cutPane)
-	g.cutNext = g.paneStart(satAdd(g.cutPane, 1))
+	g.cutNext = g.paneStart(sat.Add(g.cutPane, 1))
 }
 
 // foldedPane is pane(t) for t <= cutoff, without a division when t lies in
@@ -187,7 +204,7 @@ func (g *ring) add(t int64, v float64) bool {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
 		p := g.foldedPane(t)
-		if p < satSub(g.cutPane, g.n-1) {
+		if p < sat.Sub(g.cutPane, g.n-1) {
 			return false
 		}
 		g.foldLate(p, v)
@@ -220,7 +237,7 @@ func (g *ring) advance() {
 	if !moved {
 		return // the floor did not move
 	}
-	f := satSub(g.cutPane, g.n-1)
+	f := sat.Sub(g.cutPane, g.n-1)
 	k = 0
 	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
 		g.total -= ps[k].n
@@ -250,7 +267,7 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 		return 0, 0
 	}
 	hi := g.paneOf(t)
-	lo := satSub(hi, w-1)
+	lo := sat.Sub(hi, w-1)
 	exact := t >= g.cutoff()
 	if !exact {
 		hi--
@@ -380,38 +397,38 @@ func (g *ring) UnmarshalBinary(b []byte) error {
 }
 
 func (g *ring) decode(b []byte, store bool) error {
-	r := reader{b: b}
-	_, maxT, ok := r.startState(g.kind, flagSeen, store, g.Reset)
+	r := wire.Decoder{B: b}
+	_, maxT, ok := startState(&r, g.kind, flagSeen, store, g.Reset)
 	if !ok {
-		return r.err
+		return r.Err
 	}
-	cutoff := satSub(maxT, g.spec.Horizon)
+	cutoff := sat.Sub(maxT, g.hor)
 	pc := g.paneOf(cutoff)
-	floor := satSub(pc, g.n-1)
+	floor := sat.Sub(pc, g.n-1)
 	vbytes := 0
 	if g.op.hasValue() {
 		vbytes = 8
 	}
-	np := r.count("pane count", 2+vbytes)
+	np := r.Count(2+vbytes, math.MaxUint64)
 	if store {
 		g.panes.setLen(np)
 	}
 	var total uint64
 	prev := pc
-	for i := np - 1; i >= 0 && r.err == nil; i-- {
-		gap := r.uvarint("pane gap")
+	for i := np - 1; i >= 0 && r.Err == nil; i-- {
+		gap := r.Uvarint()
 		if prev < floor || gap > uint64(prev-floor) {
-			r.fail("pane before the floor")
+			r.Fail("pane before the floor")
 			break
 		}
 		p := prev - int64(gap)
-		cnt := r.uvarint("pane count") + 1
+		cnt := r.Uvarint() + 1
 		var v float64
 		if vbytes > 0 {
-			v = r.float("pane value")
+			v = readFloat(&r, "pane value")
 		}
 		if cnt == 0 || total+cnt < total {
-			r.fail("pane count overflow")
+			r.Fail("pane count overflow")
 		}
 		total += cnt
 		if store {
@@ -425,9 +442,9 @@ func (g *ring) decode(b []byte, store bool) error {
 	}
 	nr, _ := readEvents(&r, &g.raw, maxT, cutoff, limit, store)
 	if total+uint64(nr) < total {
-		r.fail("count overflow")
+		r.Fail("count overflow")
 	}
-	if err := r.end(); err != nil || !store {
+	if err := r.Finish(); err != nil || !store {
 		return err
 	}
 	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)

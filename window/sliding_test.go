@@ -7,10 +7,13 @@ import (
 	"math/rand/v2"
 	"slices"
 	"testing"
+	"time"
+
+	"github.com/tallyward/tallyward/internal/sat"
 )
 
 // floorOf is the oldest pane retained for a given cutoff.
-func (g *ring) floorOf(cutoff int64) int64 { return satSub(g.paneOf(cutoff), g.n-1) }
+func (g *ring) floorOf(cutoff int64) int64 { return sat.Sub(g.paneOf(cutoff), g.n-1) }
 
 // checkInvariants asserts the invariants written on ring.
 func (g *ring) checkInvariants() error {
@@ -22,7 +25,7 @@ func (g *ring) checkInvariants() error {
 	}
 	c := g.cutoff()
 	pc, floor := g.paneOf(c), g.floorOf(c)
-	if g.cutPane != pc || g.cutStart != g.paneStart(pc) || g.cutNext != g.paneStart(satAdd(pc, 1)) {
+	if g.cutPane != pc || g.cutStart != g.paneStart(pc) || g.cutNext != g.paneStart(sat.Add(pc, 1)) {
 		return fmt.Errorf("cut cache (%d, %d, %d) stale for cutoff %d", g.cutPane, g.cutStart, g.cutNext, c)
 	}
 	var sum uint64
@@ -59,9 +62,9 @@ type naiveSliding struct {
 	events []event // accepted, in arrival order
 }
 
-func (m *naiveSliding) pane(t int64) int64 { return floorDiv(t, m.spec.Resolution) }
-func (m *naiveSliding) n() int64           { return m.spec.Window / m.spec.Resolution }
-func (m *naiveSliding) cutoff() int64      { return m.maxT - m.spec.Horizon }
+func (m *naiveSliding) pane(t int64) int64 { return sat.FloorDiv(t, int64(m.spec.Resolution)) }
+func (m *naiveSliding) n() int64           { return int64(m.spec.Window) / int64(m.spec.Resolution) }
+func (m *naiveSliding) cutoff() int64      { return m.maxT - int64(m.spec.Horizon) }
 func (m *naiveSliding) floor() int64       { return m.pane(m.cutoff()) - m.n() + 1 }
 
 func (m *naiveSliding) add(t int64, v float64) bool {
@@ -82,7 +85,7 @@ func (m *naiveSliding) selected(t int64, panes int64) []event {
 	if !m.seen {
 		return nil
 	}
-	r := m.spec.Resolution
+	r := int64(m.spec.Resolution)
 	for _, e := range m.events {
 		if t >= m.cutoff() {
 			// [paneStart(t) − Window + r, t], with Window = panes·r.
@@ -112,7 +115,7 @@ func aggregate(o op, es []event) (uint64, float64) {
 // randomSpec draws a small spec; times are in arbitrary units of ns.
 func randomSpec(rng *rand.Rand) SlidingSpec {
 	r := int64(1 + rng.IntN(10))
-	return SlidingSpec{Resolution: r, Window: r * int64(1+rng.IntN(8)), Horizon: int64(rng.IntN(40))}
+	return SlidingSpec{Resolution: time.Duration(r), Window: time.Duration(r * int64(1+rng.IntN(8))), Horizon: time.Duration(int64(rng.IntN(40)))}
 }
 
 // randomStream draws times that mostly increase, with some disorder beyond
@@ -163,7 +166,7 @@ func checkSlidingStream(t *testing.T, rng *rand.Rand, spec SlidingSpec, o op, se
 			roundTrip(t, g)
 		}
 		for range 3 {
-			q := m.maxT - int64(rng.IntN(int(spec.Horizon+spec.Window)*2+1)) + int64(rng.IntN(10))
+			q := m.maxT - int64(rng.IntN(int(int64(spec.Horizon)+int64(spec.Window))*2+1)) + int64(rng.IntN(10))
 			w := g.n
 			if rng.IntN(3) == 0 {
 				w = 1 + rng.Int64N(g.n)
@@ -194,7 +197,7 @@ func roundTrip(t *testing.T, g *ring) {
 // missed, r − 1 ns at the start of a pane, nothing at its last nanosecond.
 func TestSlidingTrailingEdge(t *testing.T) {
 	spec := SlidingSpec{Window: 60, Resolution: 10, Horizon: 1000}
-	c := NewSlidingCount(spec)
+	c := must(NewSlidingCount(spec))
 	for _, ts := range []int64{100, 101, 109, 110} {
 		c.Add(ts)
 	}
@@ -233,9 +236,16 @@ func TestSlidingSpecValidate(t *testing.T) {
 	if err := (SlidingSpec{Window: 20, Resolution: 10}).Validate(); err != nil {
 		t.Fatal(err)
 	}
-	bad := NewSlidingCount(SlidingSpec{})
+	if _, err := NewSlidingCount(SlidingSpec{}); !errors.Is(err, ErrInvalidSpec) {
+		t.Fatalf("NewSlidingCount(zero spec) = %v, want ErrInvalidSpec", err)
+	}
+	// A zero Resolution means Window/60.
+	if c := must(NewSlidingCount(SlidingSpec{Window: 120})); c.Spec().Resolution != 2 {
+		t.Fatalf("default Resolution %d, want 2", c.Spec().Resolution)
+	}
+	var bad SlidingCount // the zero value is unusable but safe
 	if bad.Add(1) || bad.CountAt(1) != 0 {
-		t.Fatal("aggregate with an invalid spec accepted an event")
+		t.Fatal("zero aggregate accepted an event")
 	}
 	if _, err := bad.AppendBinary(nil); !errors.Is(err, ErrInvalidSpec) {
 		t.Fatalf("AppendBinary = %v", err)
@@ -246,7 +256,7 @@ func TestSlidingSpecValidate(t *testing.T) {
 }
 
 func TestSlidingExtremeTimes(t *testing.T) {
-	c := NewSlidingCount(SlidingSpec{Window: 3600e9, Resolution: 60e9, Horizon: math.MaxInt64})
+	c := must(NewSlidingCount(SlidingSpec{Window: 3600e9, Resolution: 60e9, Horizon: math.MaxInt64}))
 	for _, ts := range []int64{math.MinInt64, math.MaxInt64, 0, -1, math.MinInt64 + 1} {
 		c.Add(ts)
 		if err := c.checkInvariants(); err != nil {

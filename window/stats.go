@@ -44,30 +44,37 @@ type SlidingMax struct{ valued }
 // Build with NewSlidingMean. Not safe for concurrent use.
 type SlidingMean struct{ valued }
 
-func newValued(spec SlidingSpec, o op, kind byte) valued {
-	var v valued
-	v.init(spec, o, kind)
-	return v
+// newValued builds one of the value aggregates: *T embeds valued.
+func newValued[T any](spec SlidingSpec, o op, kind byte, inner func(*T) *valued) (*T, error) {
+	x := new(T)
+	if err := inner(x).init(spec, o, kind); err != nil {
+		return nil, err
+	}
+	return x, nil
 }
 
-// NewSlidingSum returns an empty sum over spec.
-func NewSlidingSum(spec SlidingSpec) *SlidingSum {
-	return &SlidingSum{newValued(spec, opSum, kindSlidingSum)}
+// NewSlidingSum returns an empty sum over spec, or the errors of
+// spec.Validate.
+func NewSlidingSum(spec SlidingSpec) (*SlidingSum, error) {
+	return newValued(spec, opSum, kindSlidingSum, func(s *SlidingSum) *valued { return &s.valued })
 }
 
-// NewSlidingMin returns an empty minimum over spec.
-func NewSlidingMin(spec SlidingSpec) *SlidingMin {
-	return &SlidingMin{newValued(spec, opMin, kindSlidingMin)}
+// NewSlidingMin returns an empty minimum over spec, or the errors of
+// spec.Validate.
+func NewSlidingMin(spec SlidingSpec) (*SlidingMin, error) {
+	return newValued(spec, opMin, kindSlidingMin, func(s *SlidingMin) *valued { return &s.valued })
 }
 
-// NewSlidingMax returns an empty maximum over spec.
-func NewSlidingMax(spec SlidingSpec) *SlidingMax {
-	return &SlidingMax{newValued(spec, opMax, kindSlidingMax)}
+// NewSlidingMax returns an empty maximum over spec, or the errors of
+// spec.Validate.
+func NewSlidingMax(spec SlidingSpec) (*SlidingMax, error) {
+	return newValued(spec, opMax, kindSlidingMax, func(s *SlidingMax) *valued { return &s.valued })
 }
 
-// NewSlidingMean returns an empty mean over spec.
-func NewSlidingMean(spec SlidingSpec) *SlidingMean {
-	return &SlidingMean{newValued(spec, opSum, kindSlidingMean)}
+// NewSlidingMean returns an empty mean over spec, or the errors of
+// spec.Validate.
+func NewSlidingMean(spec SlidingSpec) (*SlidingMean, error) {
+	return newValued(spec, opSum, kindSlidingMean, func(s *SlidingMean) *valued { return &s.valued })
 }
 
 // SumAt returns the sum of the values in the window as of t, 0 if empty.

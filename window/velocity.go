@@ -1,32 +1,40 @@
 package window
 
-import "math"
+import (
+	"cmp"
+	"math"
+	"time"
+)
 
 // VelocitySpec defines a velocity ratio: the event rate in a short window
 // over the event rate in a long window.
+//
+// A zero field means its default; Short and Long are required.
 type VelocitySpec struct {
-	// Short is the short window in nanoseconds: > 0, a multiple of
-	// Resolution, < Long. No default.
-	Short int64
-	// Long is the long window in nanoseconds, a multiple of Resolution. No
+	// Short is the short window: > 0, a multiple of Resolution, < Long.
+	// Required; no default.
+	Short time.Duration
+	// Long is the long window, a multiple of Resolution. Required; no
 	// default.
-	Long int64
-	// Resolution is the pane width in nanoseconds (see SlidingSpec). No
-	// default.
-	Resolution int64
+	Long time.Duration
+	// Resolution is the pane width (see SlidingSpec). Default Short/10 (at
+	// least 1 ns).
+	Resolution time.Duration
 	// Horizon as in SlidingSpec. Default 0.
-	Horizon int64
+	Horizon time.Duration
 	// Smoothing is α, the pseudo-count added to the short window (and the
 	// matching α·Long/Short to the long one); finite, >= 0. 0 means the
 	// default, 1.
 	Smoothing float64
 }
 
-func (s VelocitySpec) alpha() float64 {
-	if s.Smoothing == 0 {
-		return 1
+// withDefaults returns s with zero fields set to their defaults.
+func (s VelocitySpec) withDefaults() VelocitySpec {
+	if s.Short > 0 {
+		s.Resolution = cmp.Or(s.Resolution, max(s.Short/10, 1))
 	}
-	return s.Smoothing
+	s.Smoothing = cmp.Or(s.Smoothing, 1)
+	return s
 }
 
 func (s VelocitySpec) sliding() SlidingSpec {
@@ -34,15 +42,16 @@ func (s VelocitySpec) sliding() SlidingSpec {
 }
 
 // Validate reports every problem of s at once (errors.Join of *SpecError,
-// each matching ErrInvalidSpec), or nil.
+// each matching ErrInvalidSpec), or nil. Zero fields mean their defaults.
 func (s VelocitySpec) Validate() error {
-	e := specErrs{spec: "VelocitySpec"}
+	s = s.withDefaults()
+	e := newSpecErrs("VelocitySpec")
 	e.positive("Short", s.Short)
 	e.check(s.Short < s.Long, "Short", "must be < Long")
 	e.check(s.Resolution <= 0 || s.Short%s.Resolution == 0, "Short", "must be a multiple of Resolution")
 	e.positive("Long", s.Long)
 	e.check(s.Resolution <= 0 || s.Long%s.Resolution == 0, "Long", "must be a multiple of Resolution")
-	e.positive("Resolution", s.Resolution)
+	e.check(s.Short <= 0 || s.Resolution > 0, "Resolution", "must be > 0")
 	e.nonNegative("Horizon", s.Horizon)
 	e.check(finite(s.Smoothing) && s.Smoothing >= 0, "Smoothing", "must be finite and >= 0")
 	return e.err()
@@ -65,27 +74,30 @@ func (s VelocitySpec) Validate() error {
 // One pane ring (Window = Long) holds the events; Horizon, Add and
 // encoding behave as for SlidingCount (kind byte 7).
 //
-// Build with NewVelocity; an aggregate built from an invalid spec ignores
-// Add and answers NaN. Not safe for concurrent use.
+// Build with NewVelocity; the zero value ignores Add and answers NaN. Not
+// safe for concurrent use.
 type Velocity struct {
 	ring
 	vspec VelocitySpec
 	short int64 // panes in Short
 }
 
-// NewVelocity returns an empty velocity ratio over spec.
-func NewVelocity(spec VelocitySpec) *Velocity {
-	v := &Velocity{vspec: spec}
-	v.init(spec.sliding(), opCount, kindVelocity)
-	if spec.Validate() != nil {
-		v.valid = false
-		return v
+// NewVelocity returns an empty velocity ratio over spec, or the errors of
+// spec.Validate.
+func NewVelocity(spec VelocitySpec) (*Velocity, error) {
+	if err := spec.Validate(); err != nil {
+		return nil, err
 	}
-	v.short = spec.Short / spec.Resolution
-	return v
+	spec = spec.withDefaults()
+	v := &Velocity{vspec: spec}
+	if err := v.init(spec.sliding(), opCount, kindVelocity); err != nil {
+		return nil, err
+	}
+	v.short = int64(spec.Short / spec.Resolution)
+	return v, nil
 }
 
-// Spec returns the spec the aggregate was built with.
+// Spec returns the spec the aggregate was built with, defaults applied.
 func (v *Velocity) Spec() VelocitySpec { return v.vspec }
 
 // Add records one event at time t; see SlidingCount.Add.
@@ -104,6 +116,6 @@ func (v *Velocity) RatioAt(t int64) float64 {
 		return math.NaN()
 	}
 	cs, cl := v.CountsAt(t)
-	a := v.vspec.alpha()
+	a := v.vspec.Smoothing
 	return (float64(cs) + a) / (float64(cl)*float64(v.vspec.Short)/float64(v.vspec.Long) + a)
 }
