@@ -1,10 +1,13 @@
 package report
 
 import (
+	"errors"
 	"flag"
 	"fmt"
 	"io"
+	"io/fs"
 	"os"
+	"path/filepath"
 	"runtime"
 	"strings"
 	"time"
@@ -41,24 +44,21 @@ func Flags(fs *flag.FlagSet) *RunOptions {
 	return o
 }
 
-// Main runs the report as a command: it writes the directory, prints a
-// summary to stdout and returns the exit code (0 every figure inside its
-// bound, 1 a figure outside or a failure, 2 bad input).
-func Main(o RunOptions, stdout, stderr io.Writer) int {
+// Generate builds the report the options ask for (not yet written).
+// Errors reading the input file wrap ErrBadRow or the file's I/O error.
+func Generate(o RunOptions) (*Report, error) {
 	start := time.Now()
 	var r *Report
 	var err error
 	if o.Input != "" {
 		f, ferr := os.Open(o.Input)
 		if ferr != nil {
-			fmt.Fprintf(stderr, "report: %v\n", ferr)
-			return 2
+			return nil, ferr
 		}
 		rows, rerr := ReadRows(f)
 		f.Close()
 		if rerr != nil {
-			fmt.Fprintf(stderr, "report: %s: %v\n", o.Input, rerr)
-			return 2
+			return nil, fmt.Errorf("%s: %w", o.Input, rerr)
 		}
 		r, err = FromRows(rows, UserParams{})
 	} else {
@@ -68,20 +68,41 @@ func Main(o RunOptions, stdout, stderr io.Writer) int {
 		}
 	}
 	if err != nil {
-		fmt.Fprintf(stderr, "report: %v\n", err)
-		return 1
+		return nil, err
 	}
 	r.Notes = append(r.Notes, machine(time.Since(start)))
+	return r, nil
+}
+
+// Main runs the report as a command: it writes the directory, prints a
+// summary to stdout and returns the exit code: 0 every figure inside its
+// bound, 1 a figure outside or a failure, 2 bad input.
+func Main(o RunOptions, stdout, stderr io.Writer) int {
+	start := time.Now()
+	r, err := Generate(o)
+	if err != nil {
+		fmt.Fprintf(stderr, "report: %v\n", err)
+		if errors.Is(err, ErrBadRow) || errors.Is(err, fs.ErrNotExist) {
+			return 2
+		}
+		return 1
+	}
 	if err := r.Write(o.Out); err != nil {
 		fmt.Fprintf(stderr, "report: %v\n", err)
 		return 1
 	}
-	fmt.Fprintf(stdout, "wrote %s/report.md (%d tables, %d plots) in %v\n", o.Out, len(r.Tables), len(r.Plots), time.Since(start).Round(time.Second))
+	return Summarize(r, o.Out, time.Since(start), stdout)
+}
+
+// Summarize prints what was written and every figure outside its bound,
+// and returns 1 if there is one, else 0.
+func Summarize(r *Report, dir string, took time.Duration, w io.Writer) int {
+	fmt.Fprintf(w, "wrote %s (%d tables, %d plots) in %v\n", filepath.Join(dir, "report.md"), len(r.Tables), len(r.Plots), took.Round(time.Second))
 	if out := r.Outside(); len(out) > 0 {
-		fmt.Fprintf(stdout, "%d figures outside their bound:\n  %s\n", len(out), strings.Join(out, "\n  "))
+		fmt.Fprintf(w, "%d figures outside their bound:\n  %s\n", len(out), strings.Join(out, "\n  "))
 		return 1
 	}
-	fmt.Fprintln(stdout, "every error figure is inside its published bound")
+	fmt.Fprintln(w, "every error figure is inside its published bound")
 	return 0
 }
 
