@@ -65,9 +65,9 @@ func (c Config) rng(stream uint64) *rand.Rand {
 // Citations used by several tables.
 const (
 	srcHLL = "Flajolet, Fusy, Gandouet, Meunier (2007), \"HyperLogLog: the analysis of a near-optimal cardinality estimation algorithm\", AofA: relative standard error 1.04/sqrt(m), m = 2^p registers."
-	srcCM = "Cormode, Muthukrishnan (2005), \"An improved data stream summary: the count-min sketch and its applications\", J. Algorithms 55(1): with width ceil(e/epsilon) and depth ceil(ln(1/delta)), estimate >= true count, and estimate <= true + epsilon*N with probability >= 1-delta per query."
-	srcSS = "Metwally, Agrawal, El Abbadi (2005), \"Efficient computation of frequent and top-k elements in data streams\", ICDT: with m counters, Count-Err <= f <= Count for every monitored item, Err <= N/m, and every item with f > N/m is monitored."
-	srcDD = "Masson, Rim, Lee (2019), \"DDSketch: a fast and fully-mergeable quantile sketch with relative-error guarantees\", PVLDB 12(12): every quantile estimate within alpha relative error of the exact value of its rank (no bucket collapsed)."
+	srcCM  = "Cormode, Muthukrishnan (2005), \"An improved data stream summary: the count-min sketch and its applications\", J. Algorithms 55(1): with width ceil(e/epsilon) and depth ceil(ln(1/delta)), estimate >= true count, and estimate <= true + epsilon*N with probability >= 1-delta per query."
+	srcSS  = "Metwally, Agrawal, El Abbadi (2005), \"Efficient computation of frequent and top-k elements in data streams\", ICDT: with m counters, Count-Err <= f <= Count for every monitored item, Err <= N/m, and every item with f > N/m is monitored."
+	srcDD  = "Masson, Rim, Lee (2019), \"DDSketch: a fast and fully-mergeable quantile sketch with relative-error guarantees\", PVLDB 12(12): every quantile estimate within alpha relative error of the exact value of its rank (no bucket collapsed)."
 )
 
 // t0 is the start of the generated streams: a Unix-epoch-aligned day, so
