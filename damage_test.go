@@ -32,8 +32,9 @@ var damageTrials = flag.Int("damage-trials", 0, "byte positions per file type in
 
 // damageStore builds, in dir on disk, the store the damage tests break:
 // one large commit of 20,000 new entities (written as one ingested table),
-// then 50 small commits; after the 25th the memtable is flushed to a
-// table, so the last 25 commits are only in the write-ahead log. Event
+// then 50 small commits; after every fifth of the first 25 the memtable
+// is flushed to a table, so the last 25 commits are only in the
+// write-ahead log. Event
 // times stay within a few minutes: nothing expires. It returns the digest
 // of the stored records after each commit, by the commit's Seen.
 func damageStore(t testing.TB, dir string) map[uint64]string {
@@ -59,7 +60,7 @@ func damageStore(t testing.TB, dir string) map[uint64]string {
 			require.NoError(t, p.Process(login{T: tm, Account: fmt.Sprintf("acct-%05d", i), Addr: "10.2.0.1", OK: true}))
 		}
 		commit()
-		if c == 24 {
+		if c%5 == 4 && c < 25 {
 			require.NoError(t, p.store.DB().Flush())
 		}
 	}
@@ -156,35 +157,62 @@ func TestDamagedManifestIsRefused(t *testing.T) {
 }
 
 // A MANIFEST that ends cleanly but early (its last edits lost whole, which
-// no checksum can see) loses the tables they listed; the record count of
-// the last commit's progress catches it.
-func TestLostTablesAreRefused(t *testing.T) {
+// no checksum can see) loses the tables they listed: after a clean Close
+// the size Close recorded catches it.
+func TestShortManifestIsRefused(t *testing.T) {
 	tmpl := t.TempDir()
 	damageStore(t, tmpl)
 	manifest := filepath.Base(storeFile(t, tmpl, "MANIFEST-*"))
 	ends := manifestRecords(t, filepath.Join(tmpl, manifest))
-	refused, byCount := 0, 0
 	for k := 1; k < len(ends); k++ {
 		dir := t.TempDir()
 		_, err := vfs.Clone(vfs.Default, vfs.Default, tmpl, dir)
 		require.NoError(t, err)
 		require.NoError(t, os.Truncate(filepath.Join(dir, manifest), ends[k-1]))
-		p, err := Open(loginSpec(nil), Options{Dir: dir})
-		if err != nil {
-			require.ErrorIs(t, err, ErrStoreDamaged, "first %d of %d records", k, len(ends))
-			if strings.Contains(err.Error(), "entity records") {
-				byCount++
-			}
-			refused++
-			continue
-		}
-		// Only edits that lost nothing (say, the deletion of a table
-		// whose data a later table holds) may open.
-		require.Equal(t, int64(p.Stats().LiveEntities), mustCount(t, p))
-		require.NoError(t, p.Close())
+		_, err = Open(loginSpec(nil), Options{Dir: dir})
+		require.ErrorIs(t, err, ErrStoreDamaged, "first %d of %d records", k, len(ends))
+		require.ErrorContains(t, err, "shorter than when the store was closed")
 	}
-	require.Positive(t, byCount, "the record count caught some")
-	t.Logf("%d of %d truncations refused, %d by the record count", refused, len(ends)-1, byCount)
+}
+
+// A whole MANIFEST from an earlier point (no checksum can see that it is
+// stale) after a crash, so that no size was recorded: the table flushed
+// since is deleted as garbage while the log still carries the newest
+// Mark. The record count of the last commit's progress catches it.
+func TestLostTablesAreRefused(t *testing.T) {
+	dir := t.TempDir()
+	p, err := Open(loginSpec(nil), Options{Dir: dir, CommitEvery: -1})
+	require.NoError(t, err)
+	tm := t0
+	feed := func(from, n int) {
+		for i := from; i < from+n; i++ {
+			tm += int64(time.Millisecond)
+			require.NoError(t, p.Process(login{T: tm, Account: fmt.Sprintf("acct-%05d", i), Addr: "10.0.0.1", OK: true}))
+		}
+		require.NoError(t, p.Commit(nil))
+	}
+	feed(0, 20_000)
+	require.NoError(t, p.store.DB().Flush())
+	current := func() string {
+		desc, err := pebble.Peek(dir, vfs.Default)
+		require.NoError(t, err)
+		return desc.ManifestFilename
+	}
+	stale, err := os.ReadFile(current())
+	require.NoError(t, err)
+	for c := range 20 {
+		feed(20_000+c*10, 10)
+		if c == 9 {
+			require.NoError(t, p.store.DB().Flush())
+		}
+	}
+	require.NoError(t, p.Close())
+	require.NoError(t, os.WriteFile(current(), stale, 0o644))
+	require.NoError(t, os.Remove(filepath.Join(dir, "CLOSED-CLEANLY")))
+	_, err = Open(loginSpec(nil), Options{Dir: dir})
+	require.ErrorIs(t, err, ErrStoreDamaged)
+	require.ErrorContains(t, err, "entity records")
+	t.Logf("refused: %v", err)
 }
 
 func mustCount(t *testing.T, p *Pipeline[login]) int64 {
@@ -255,14 +283,18 @@ func TestDamageMatrix(t *testing.T) {
 	require.NoError(t, os.WriteFile(filepath.Join(tmpl, "digests"), []byte(strings.Join(lines, "\n")), 0o644))
 
 	table := map[string]map[string]int{}
+	distinct := map[string]map[string]bool{} // file and byte position per type
 	examples := map[string]string{}
 	var failures []string
 	for _, typ := range damageTypes {
 		table[typ] = map[string]int{}
+		distinct[typ] = map[string]bool{}
 		for from := 0; from < n; {
 			outs, next := runDamageChild(t, tmpl, typ, from, n)
 			for _, o := range outs {
 				table[typ][o.class]++
+				where, _, _ := strings.Cut(o.detail, ":")
+				distinct[typ][where] = true
 				if _, ok := examples[typ+o.class]; !ok {
 					examples[typ+o.class] = o.detail
 				}
@@ -276,6 +308,7 @@ func TestDamageMatrix(t *testing.T) {
 	var b strings.Builder
 	fmt.Fprintf(&b, "outcomes of one flipped byte, %d positions per file type:\n", n)
 	for _, typ := range damageTypes {
+		fmt.Fprintf(&b, "  %-9s (%d distinct file and byte positions)\n", typ, len(distinct[typ]))
 		var classes []string
 		for c := range table[typ] {
 			classes = append(classes, c)
@@ -386,11 +419,20 @@ func TestDamageChild(t *testing.T) {
 	require.NotEmpty(t, files, typ)
 
 	r := rand.New(rand.NewPCG(77, uint64(slices.Index(damageTypes, typ))))
+	// A file smaller than the number of trials has every byte damaged
+	// (in a seeded order, then again with other values).
+	perms := map[string][]int{}
 	for i := range n {
 		name := files[r.IntN(len(files))]
 		st, err := src.Stat(src.PathJoin("db", name))
 		require.NoError(t, err)
 		pos := r.Int64N(st.Size())
+		if st.Size() <= int64(n) {
+			if perms[name] == nil {
+				perms[name] = r.Perm(int(st.Size()))
+			}
+			pos = int64(perms[name][i%len(perms[name])])
+		}
 		flip := byte(1 + r.IntN(255))
 		if i < from {
 			continue
@@ -495,4 +537,47 @@ func TestEraseLeavesNoFileBytes(t *testing.T) {
 			}
 		})
 	}
+}
+
+// Open on a directory of unrelated files refuses rather than creating a
+// store among them; a second Open of a store in use says it is locked.
+func TestOpenRefusesForeignDirectoryAndSecondOpen(t *testing.T) {
+	dir := t.TempDir()
+	require.NoError(t, os.WriteFile(filepath.Join(dir, "report.csv"), []byte("a,b\n"), 0o644))
+	_, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.ErrorIs(t, err, ErrNotStore)
+	require.ErrorContains(t, err, "report.csv")
+
+	dir = filepath.Join(t.TempDir(), "store")
+	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	_, err = Open(loginSpec(nil), Options{Dir: dir})
+	require.ErrorIs(t, err, ErrStoreLocked)
+	require.NoError(t, p.Close())
+	p, err = Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	require.NoError(t, p.Close())
+}
+
+// Damage in the write-ahead log rolls the store back to the last commit
+// before it. That used to happen without a word; Open now says so in
+// Notices and Stats.RolledBack, and the source resumes from the earlier
+// commit's position.
+func TestLogDamageRollbackIsReported(t *testing.T) {
+	dir := t.TempDir()
+	digests := damageStore(t, dir)
+	log := storeFile(t, dir, "*.log")
+	b, err := os.ReadFile(log)
+	require.NoError(t, err)
+	b[len(b)*2/3] ^= 0x20
+	require.NoError(t, os.WriteFile(log, b, 0o644))
+
+	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	require.NoError(t, err)
+	defer p.Close()
+	st := p.Stats()
+	require.True(t, st.RolledBack)
+	require.Contains(t, strings.Join(p.Notices(), "\n"), filepath.Base(log))
+	require.Less(t, p.ResumeSeq(), uint64(20_500))
+	require.Equal(t, digests[p.ResumeSeq()], recordDigest(t, p.store.DB()), "the records of the commit rolled back to")
 }

@@ -45,6 +45,20 @@
 // Row.Seq identifies them), so a sink should make rows durable before the
 // commit that covers their events.
 //
+// # Damaged stores, full disks, memory
+//
+// [Open] refuses a store whose files do not hold what was committed
+// ([ErrStoreDamaged], naming the file: a damaged MANIFEST or table, or
+// fewer entity records than the last commit counted), a directory of
+// unrelated files ([ErrNotStore]), one another process holds
+// ([ErrStoreLocked]) and a disk without room to replay the log
+// ([ErrNoSpace]); Options.ReadOnly opens a damaged store for salvage. A
+// damaged write-ahead log tail rolls the store back to the last commit
+// before the damage: Notices says so and Stats.RolledBack is set, and the
+// source resumes from the earlier position. Damage found later is an
+// error from the read that found it. Memory is bounded by
+// Options.CacheBytes, BlockCacheBytes and MemTableBytes (see CacheBytes).
+//
 // # Kinds of your own
 //
 // Every built-in kind is an implementation of the public [Kind] and

@@ -48,7 +48,7 @@ func (k Distinct) NewAggregate(horizon time.Duration) Aggregate {
 		// Unreachable: Open validates every kind with its horizon first.
 		panic(err)
 	}
-	return &distinctAgg{d}
+	return distinctAgg{d} // pointer-shaped: boxing it allocates nothing
 }
 
 // validateWith checks the spec with the pipeline's horizon, which counts
@@ -57,8 +57,8 @@ func (k Distinct) CheckHorizon(horizon time.Duration) error { return k.spec(int6
 
 type distinctAgg struct{ *sketch.Distinct }
 
-func (a *distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
-func (a *distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
+func (a distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
+func (a distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
 
 // Frequency estimates how many of an entity's events carried the asking
 // event's item (a card seen at this merchant, say), over the entity's

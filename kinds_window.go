@@ -81,12 +81,33 @@ func (k Decayed) Inputs() Inputs {
 func (k Decayed) Reach() time.Duration { return time.Duration(sat.Add(0, 64*int64(k.HalfLife))) }
 
 func (k Decayed) NewAggregate(horizon time.Duration) Aggregate {
-	d := built(window.NewDecayed(k.spec(int64(horizon))))
-	at := [...]func(int64) float64{d.CountAt, d.SumAt, d.MeanAt, d.VarianceAt}[k.Stat]
-	if k.Stat == DecayedCount {
-		return adapt(d, func(t int64, _ float64) bool { return d.Add(t, 1) }, at)
+	return &decayedAgg{Decayed: built(window.NewDecayed(k.spec(int64(horizon)))), stat: k.Stat}
+}
+
+// decayedAgg adapts window.Decayed with a method per call rather than
+// closures: a new record then costs two allocations for it, not six.
+type decayedAgg struct {
+	*window.Decayed
+	stat DecayStat
+}
+
+func (a *decayedAgg) Add(t int64, v float64, _ uint64) bool {
+	if a.stat == DecayedCount {
+		v = 1
 	}
-	return adapt(d, d.Add, at)
+	return a.Decayed.Add(t, v)
+}
+
+func (a *decayedAgg) At(t int64, _ uint64) float64 {
+	switch a.stat {
+	case DecayedCount:
+		return a.CountAt(t)
+	case DecayedSum:
+		return a.SumAt(t)
+	case DecayedMean:
+		return a.MeanAt(t)
+	}
+	return a.VarianceAt(t)
 }
 
 // Velocity is the ratio of an entity's event rate in a Short window to its
@@ -124,9 +145,13 @@ func (Velocity) Inputs() Inputs         { return 0 }
 func (k Velocity) Reach() time.Duration { return k.Long }
 
 func (k Velocity) NewAggregate(horizon time.Duration) Aggregate {
-	v := built(window.NewVelocity(k.spec(int64(horizon))))
-	return adapt(v, func(t int64, _ float64) bool { return v.Add(t) }, v.RatioAt)
+	return velocityAgg{built(window.NewVelocity(k.spec(int64(horizon))))}
 }
+
+type velocityAgg struct{ *window.Velocity }
+
+func (a velocityAgg) Add(t int64, _ float64, _ uint64) bool { return a.Velocity.Add(t) }
+func (a velocityAgg) At(t int64, _ uint64) float64          { return a.RatioAt(t) }
 
 // RecencyStat selects what a Recency feature reports. Values are frozen.
 type RecencyStat uint8

@@ -51,6 +51,7 @@ type Pipeline[E any] struct {
 	vals    []float64
 	held    *btree.BTreeG[*held[E]] // Settled: events waiting for the watermark, in canonical order
 	batch   []*held[E]              // Settled: scratch for one timestamp's events
+	slab    holdSlab[E]             // Settled: where held events are carved from
 	closed  bool
 	err     error    // sticky storage error
 	notices []string // what Open did beyond the usual (resets)
@@ -91,10 +92,6 @@ type inputs struct {
 	on   []bool    // per feature: the event updates it
 	v    []float64 // per feature
 	item []uint64  // per feature
-}
-
-func (in *inputs) clone() inputs {
-	return inputs{t: in.t, keys: slices.Clone(in.keys), on: slices.Clone(in.on), v: slices.Clone(in.v), item: slices.Clone(in.item)}
 }
 
 // Open validates spec and opts, opens the store and checks that the stored
@@ -263,11 +260,13 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
-		if err := p.Commit(nil); err != nil {
+		// Off the caller's path: the write runs while processing goes
+		// on; only the next commit waits for it.
+		if err := p.commit(nil, true); err != nil {
 			return dst, err
 		}
 	}
@@ -285,7 +284,7 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 		return nil // rejected the first time too; already counted
 	}
 	if p.opts.Mode == Settled && p.in.t >= p.wm {
-		p.held.ReplaceOrInsert(&held[E]{seq: seq, tie: p.in.tieBreak(), e: e, in: p.in.clone()})
+		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
 	}
 	return nil
 }
@@ -504,7 +503,12 @@ func (p *Pipeline[E]) Flush() error {
 // Commit durably stores all state changed since the last commit together
 // with the source position (and the caller's cursor, if not nil; nil keeps
 // the previous one), in one synced batch.
-func (p *Pipeline[E]) Commit(cursor []byte) error {
+func (p *Pipeline[E]) Commit(cursor []byte) error { return p.commit(cursor, false) }
+
+// commit is Commit; async leaves the write to the store's background
+// goroutine (automatic commits: the caller does not need it durable on
+// return, and a crash before it lands resumes from the one before).
+func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
@@ -512,6 +516,12 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 		return ErrReadOnly
 	}
 	began := p.opts.MetricsClock.Now()
+	// Settle first: the previous commit must land before this one is cut,
+	// and Mark then reports it.
+	if err := p.store.Settle(); err != nil {
+		p.err = err
+		return err
+	}
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
@@ -534,7 +544,11 @@ func (p *Pipeline[E]) Commit(cursor []byte) error {
 	p.c.expired += uint64(n)
 	p.c.live -= int64(n)
 	m.Extra = p.progress().append(nil)
-	if err := p.store.Commit(m); err != nil {
+	write := p.store.Commit
+	if async {
+		write = p.store.CommitAsync
+	}
+	if err := write(m); err != nil {
 		p.err = err
 		return err
 	}

@@ -171,10 +171,12 @@ type Stats struct {
 	CachedBytes  int64  // their approximate memory
 	CacheHits    uint64
 	CacheMisses  uint64
-	Commits      uint64 // commits since Open
-	// LastCommitDuration and TotalCommitDuration are the latency of the
-	// last commit and the total spent committing since Open (by
-	// Options.MetricsClock; for metrics only).
+	Commits      uint64 // commits since Open that are durable
+	// LastCommitDuration and TotalCommitDuration are the time the caller
+	// spent in the last commit and in all commits since Open (by
+	// Options.MetricsClock; for metrics only). An automatic commit is
+	// written in the background: its caller's time is the sweep, the cut,
+	// and any wait for the previous commit to land.
 	LastCommitDuration  time.Duration
 	TotalCommitDuration time.Duration
 	DiskBytes           uint64 // Pebble's estimate of the store's size

@@ -2,6 +2,8 @@ package store
 
 import (
 	"fmt"
+	"slices"
+	"sync/atomic"
 
 	"github.com/tallyward/tallyward/internal/sat"
 )
@@ -32,9 +34,14 @@ type Slot[V Value] struct {
 	size    int
 	dirty   bool
 	evicted bool
-	ref     bool  // used since the clock hand last passed
-	idx     int   // position in Table.slots
-	indexed int64 // expiry bucket of this key's stored index entry; 0 = none
+	ref     bool   // used since the clock hand last passed
+	idx     int    // position in Table.slots
+	indexed int64  // expiry bucket of this key's stored index entry; 0 = none
+	taken   uint64 // the commit (Store.gen) that last took this slot's bytes
+
+	// Handing the value to a commit in flight (see handoff.go).
+	state   atomic.Int32
+	claimed *claimedBytes
 }
 
 // Table is a write-back cache of one kind of record (one key space under a
@@ -65,6 +72,7 @@ type Table[V Value] struct {
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
 	hand   int        // clock hand into slots
 	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
+	frozen []*Slot[V] // slots whose bytes the commit in flight writes; owned by it while in flight
 	keybuf []byte
 	valbuf []byte
 
@@ -109,6 +117,9 @@ func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if sl := t.m[key]; sl != nil {
 		t.hits++
 		sl.ref = true
+		if st := sl.state.Load(); st == slotFrozen || st == slotEncoding {
+			sl.claim()
+		}
 		return sl, nil
 	}
 	if err := t.store.check(); err != nil {
@@ -179,8 +190,9 @@ const slotOverhead = 96
 // evict drops victim from memory, staging it in the pending batch first if
 // it is dirty so that later reads and the next commit still see it.
 func (t *Table[V]) evict(victim *Slot[V]) error {
-	if victim.dirty {
-		if err := t.stage(t.store.pending, victim); err != nil {
+	victim.claim()
+	if victim.dirty || t.store.inFlight(victim.taken) {
+		if err := t.stage(staging{t.store}, victim); err != nil {
 			return err
 		}
 		victim.dirty = false
@@ -188,6 +200,11 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 	t.knownAbsent = false
 	t.drop(victim)
 	t.evictions++
+	// Dropped slots stay in t.dirty until the next commit; once they are
+	// most of it, filter them out so that memory follows the budget.
+	if len(t.dirty) > 1024 && len(t.dirty) > 2*len(t.slots) {
+		t.dirty = slices.DeleteFunc(t.dirty, func(sl *Slot[V]) bool { return !sl.dirty })
+	}
 	return nil
 }
 
@@ -202,6 +219,10 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 	delete(t.m, sl.Key)
 	t.store.budget.used -= int64(sl.size)
 	sl.size = 0
+	// The slot may stay referenced (t.dirty until the next commit, a
+	// caller's variable); its value must not.
+	var zero V
+	sl.Value = zero
 }
 
 // stage writes sl's record, and moves its expiry index entry if its
@@ -216,6 +237,11 @@ func (t *Table[V]) stage(b writer, sl *Slot[V]) error {
 	if err := b.Set(t.keybuf, t.valbuf, nil); err != nil {
 		return err
 	}
+	return t.moveIndex(b, sl)
+}
+
+// moveIndex moves sl's expiry index entry, in b, if its bucket changed.
+func (t *Table[V]) moveIndex(b writer, sl *Slot[V]) error {
 	if nb := t.bucket(sl.Value.LastTime()); nb != sl.indexed {
 		if sl.indexed != 0 {
 			t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, sl.Key)
@@ -252,21 +278,6 @@ func (t *Table[V]) bucket(last int64) int64 {
 	return b
 }
 
-func (t *Table[V]) flushDirty(b writer) error {
-	for _, sl := range t.dirty {
-		if !sl.dirty {
-			continue
-		}
-		if err := t.stage(b, sl); err != nil {
-			return err
-		}
-		sl.dirty = false
-	}
-	clear(t.dirty)
-	t.dirty = t.dirty[:0]
-	return nil
-}
-
 // Delete removes key's record and expiry index entry from the cache and
 // stages their deletion for the next commit. It reports whether a record
 // existed.
@@ -280,7 +291,7 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	}
 	sl.dirty = false
 	t.drop(sl)
-	b := t.store.pending
+	b := staging{t.store}
 	if sl.indexed != 0 {
 		t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, key)
 		if err := b.Delete(t.keybuf, nil); err != nil {
@@ -294,7 +305,7 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	return true, nil
 }
 
-func (t *Table[V]) dirtyCount() int { return len(t.dirty) }
+func (t *Table[V]) frozenCount() int { return len(t.frozen) }
 
 // Len returns the number of cached entries.
 func (t *Table[V]) Len() int { return len(t.m) }

@@ -188,7 +188,7 @@ func (c modelRun) run() (st modelStats, err error) {
 			}
 			delete(cur[ti], k)
 		case p < 0.75:
-			if s.pending.Count() > 1 {
+			if int(s.pending.Count())+len(s.spill.m) > 1 {
 				st.dirtyStaged++
 			}
 			mark = Mark{Seen: uint64(op), Resume: uint64(op) - uint64(r.IntN(op+1)), Watermark: clock, Cursor: fmt.Appendf(nil, "c%d", op)}

@@ -132,7 +132,8 @@ func inspect(fs vfs.FS, dir string, readOnly bool) (in inspection, err error) {
 	}
 	in.exists = true
 	in.options = desc.OptionsFilename
-	if off, size, err := readLog(fs, desc.ManifestFilename, 0, false); err != nil {
+	closed := readClosed(fs, dir)
+	if off, size, err := checkRecordFile(fs, desc.ManifestFilename, 0, closed); err != nil {
 		msg := fmt.Errorf("%w: %s is unreadable from byte %d of %d (%v): the tables listed after it would be lost; open read-only to inspect or salvage",
 			ErrDamaged, desc.ManifestFilename, off, size, err)
 		if !readOnly {
@@ -154,26 +155,20 @@ func inspect(fs vfs.FS, dir string, readOnly bool) (in inspection, err error) {
 			}
 		}
 	}
-	closed, closedOK := readClosed(fs, dir)
 	if len(logs) > 0 {
 		newest := slices.Max(logs)
 		name := fs.PathJoin(dir, fmt.Sprintf("%06d.log", newest))
 		// After a clean Close the log must read to its end exactly; after
 		// a crash a torn last record is the commit the crash interrupted.
-		strict := closedOK && closed.log == fs.PathBase(name)
-		off, size, err := readLog(fs, name, newest, strict)
-		if err == nil && strict && size < closed.size {
-			off, err = size, fmt.Errorf("the log is %d bytes shorter than when the store was closed", closed.size-size)
-		}
-		if err != nil {
+		if off, size, err := checkRecordFile(fs, name, newest, closed); err != nil {
 			in.rollback = true
 			in.notices = append(in.notices, fmt.Sprintf(
 				"the write-ahead log %s is damaged from byte %d of %d (%v): the store was rolled back to the last commit before the damage; the source resumes from there",
 				name, off, size, err))
 		}
 	}
-	if closedOK && !readOnly {
-		// From now on a crash can legitimately tear the log's tail.
+	if closed != nil && !readOnly {
+		// From now on a crash can legitimately tear a file's tail.
 		if err := fs.Remove(fs.PathJoin(dir, closedFile)); err != nil {
 			return in, fmt.Errorf("state: open %q: %w", dir, err)
 		}
@@ -336,35 +331,38 @@ func (s *Store) CountRecords() (n int64, err error) {
 	return n, nil
 }
 
-// closedFile records, after a clean Close, the name and size of the newest
-// write-ahead log: one line "<name> <size>". Open checks the log against
-// it (a torn or short log then is damage, not an interrupted commit) and
-// removes it.
+// closedFile records, after a clean Close, the name and size of the
+// newest write-ahead log and of the MANIFEST, one "<name> <size>" line
+// each. Open checks those files against it (a torn or short file then is
+// damage, not an interrupted write) and removes it.
 const closedFile = "CLOSED-CLEANLY"
 
-type closedState struct {
-	log  string
-	size int64
-}
-
-func readClosed(fs vfs.FS, dir string) (closedState, bool) {
+// readClosed returns the sizes recorded by the last clean Close, by file
+// name (nil if there was none since the last Open).
+func readClosed(fs vfs.FS, dir string) map[string]int64 {
 	f, err := fs.Open(fs.PathJoin(dir, closedFile))
 	if err != nil {
-		return closedState{}, false
+		return nil
 	}
 	defer f.Close()
-	b, err := io.ReadAll(io.LimitReader(f, 256))
+	b, err := io.ReadAll(io.LimitReader(f, 4096))
 	if err != nil {
-		return closedState{}, false
+		return nil
 	}
-	var c closedState
-	if _, err := fmt.Sscanf(string(b), "%s %d\n", &c.log, &c.size); err != nil {
-		return closedState{}, false
+	out := map[string]int64{}
+	for _, l := range strings.Split(strings.TrimSpace(string(b)), "\n") {
+		name, size, ok := strings.Cut(l, " ")
+		n, err := strconv.ParseInt(size, 10, 64)
+		if !ok || err != nil {
+			return nil
+		}
+		out[name] = n
 	}
-	return c, true
+	return out
 }
 
-// writeClosed records the newest log of a store just closed cleanly.
+// writeClosed records the newest log and the MANIFEST of a store just
+// closed cleanly.
 func writeClosed(fs vfs.FS, dir string) error {
 	ls, err := fs.List(dir)
 	if err != nil {
@@ -379,23 +377,41 @@ func writeClosed(fs vfs.FS, dir string) error {
 			}
 		}
 	}
-	if !found {
-		return nil
+	var names []string
+	if found {
+		names = append(names, fmt.Sprintf("%06d.log", newest))
 	}
-	name := fmt.Sprintf("%06d.log", newest)
-	st, err := fs.Stat(fs.PathJoin(dir, name))
-	if err != nil {
-		return err
+	if desc, err := pebble.Peek(dir, fs); err == nil && desc.Exists {
+		names = append(names, fs.PathBase(desc.ManifestFilename))
+	}
+	var b strings.Builder
+	for _, n := range names {
+		st, err := fs.Stat(fs.PathJoin(dir, n))
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(&b, "%s %d\n", n, st.Size())
 	}
 	f, err := fs.Create(fs.PathJoin(dir, closedFile), vfs.WriteCategoryUnspecified)
 	if err != nil {
 		return err
 	}
-	_, err = fmt.Fprintf(f, "%s %d\n", name, st.Size())
+	_, err = io.WriteString(f, b.String())
 	if err == nil {
 		err = f.Sync()
 	}
 	return errors.Join(err, f.Close())
+}
+
+// checkRecordFile reads a MANIFEST or log through (see readLog), strictly
+// if a clean Close recorded its size, and checks it is not shorter.
+func checkRecordFile(fs vfs.FS, name string, logNum uint64, closed map[string]int64) (off, size int64, err error) {
+	want, strict := closed[fs.PathBase(name)]
+	off, size, err = readLog(fs, name, logNum, strict)
+	if err == nil && strict && size < want {
+		off, err = size, fmt.Errorf("the file is %d bytes shorter than when the store was closed", want-size)
+	}
+	return off, size, err
 }
 
 // checkOptions reads the store's OPTIONS file and checks it against the

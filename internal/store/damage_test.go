@@ -220,6 +220,9 @@ func TestLockedByAnotherProcess(t *testing.T) {
 	if !strings.Contains(err.Error(), "another process") {
 		t.Fatalf("message does not name another process: %v", err)
 	}
+	if _, err := Open(Options{Dir: dir, ReadOnly: true}); !errors.Is(err, ErrLocked) {
+		t.Fatalf("read-only open of a store another process holds: %v", err)
+	}
 }
 
 // Erase's promise at the store level: after a key's record is deleted
@@ -307,5 +310,33 @@ func holdStore(t *testing.T, dir string) func() {
 	return func() {
 		stdin.Close()
 		cmd.Wait()
+	}
+}
+
+// A Pebble fatal error on one of its own goroutines cannot be recovered;
+// the process must end with a message a person can read (the store's
+// directory and the error), not an unreadable panic value. (Inside a call
+// of the store the same fatal error is returned: see
+// TestFatalInsideCommitIsAnError.)
+func TestFatalOnBackgroundGoroutineIsReadable(t *testing.T) {
+	if os.Getenv("TALLYWARD_FATAL_CHILD") != "" {
+		l := &logger{dir: "some/store"}
+		done := make(chan struct{})
+		go func() {
+			l.Fatalf("MANIFEST sync failed: %v", syscall.ENOSPC)
+			close(done)
+		}()
+		<-done
+		t.Fatal("Fatalf returned on a background goroutine")
+	}
+	cmd := exec.Command(os.Args[0], "-test.run=^TestFatalOnBackgroundGoroutineIsReadable$", "-test.count=1")
+	cmd.Env = append(os.Environ(), "TALLYWARD_FATAL_CHILD=1")
+	out, err := cmd.CombinedOutput()
+	var ee *exec.ExitError
+	if !errors.As(err, &ee) || ee.ExitCode() != FatalExitCode {
+		t.Fatalf("child: %v\n%s", err, out)
+	}
+	if !strings.Contains(string(out), `fatal storage error in store "some/store"`) || !strings.Contains(string(out), "no space left on device") {
+		t.Fatalf("message:\n%s", out)
 	}
 }

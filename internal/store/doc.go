@@ -9,12 +9,64 @@
 // value to encode itself (encoding.BinaryAppender) when it must be written.
 //
 // Durability is by commit only. Between commits, changes live in the
-// write-back cache (and, for dirty entries evicted to bound memory, in an
-// unsynced indexed batch that later reads see). Commit writes every dirty
-// entry, the caller's [Mark] (source position and watermark) and nothing
-// else, in one synced Pebble batch. A crash therefore exposes exactly the
-// last commit: never part of one. A caller that resumes its source at the
-// stored Mark reproduces its uninterrupted run.
+// write-back cache (and, for dirty entries evicted to bound memory, in a
+// map of staged record writes that later reads see; other staged writes
+// wait in an indexed batch). Commit writes every dirty entry, everything
+// staged and the caller's [Mark] (source position and watermark), and
+// nothing else, in one synced Pebble batch or one ingested table. A crash
+// therefore exposes exactly the last commit: never part of one. A caller
+// that resumes its source at the stored Mark reproduces its uninterrupted
+// run.
+//
+// [Store.CommitAsync] cuts a commit at once and writes it on a goroutine
+// of its own while the caller goes on (see flight.go): dirty records are
+// encoded by that goroutine, or by the caller just before it changes one;
+// reads see the commit's writes while it is in flight; the next commit,
+// Sweep, Snapshot and Close wait for it ([Store.Settle]). Mark and Commits
+// report the last commit that landed.
+//
+// # Damage, full disks and fatal errors
+//
+// Pebble trusts its files more than a store of personal state can afford
+// to: it stops reading a damaged MANIFEST at the damage and deletes the
+// tables listed after it as garbage, replays a write-ahead log up to a
+// damaged tail without a word, ends the process (through its logger) on
+// damage a background job finds, and retries a flush on a full disk
+// forever. So Open, before Pebble touches the directory, refuses unrelated
+// files (ErrNotStore) and a lock held elsewhere (ErrLocked), reads the
+// MANIFEST through (ErrDamaged), checks the OPTIONS file, reads the newest
+// log through (damage there is a rollback, reported by Notices and
+// RolledBack) and checks free space for the log's replay (ErrNoSpace).
+// After a clean Close, which records the sizes of the newest log and the
+// MANIFEST, a torn or short tail in either is damage too; after a crash it
+// is the write the crash interrupted.
+// After Pebble opens, the Mark and the salt, written by the same first
+// commit, must agree; callers compare their own counts with CountRecords.
+// ReadOnly opens a damaged store for inspection: damage becomes notices.
+//
+// Table damage found by a read is an error wrapping ErrDamaged that names
+// the file; found by a background job, or a full disk met by one, it stops
+// the store with that error at its next call. A Pebble fatal error inside
+// a call becomes the store's sticky error; the database is then abandoned
+// (not closed, which would panic on the references Pebble leaves), its
+// files fenced and its lock released, so the same process can reopen it. A
+// fatal error on a Pebble goroutine cannot be recovered: the process
+// prints it with the store's directory and exits with FatalExitCode.
+//
+// # Erasure
+//
+// A deleted record's key leaves the store's files after Compact and Close:
+// logs are never reused with old contents in their tails, Close removes
+// the logs Pebble keeps for reuse and the previous MANIFEST, and the
+// MANIFEST is rewritten as a snapshot soon after the compaction (table
+// bounds in older edits are keys). Files are deleted, not overwritten.
+//
+// # Memory
+//
+// CacheBytes bounds the decoded records of every Table together with the
+// pending batch of records evicted dirty; OverBudget tells the caller to
+// commit once the batch holds half of it. Pebble adds its block cache
+// (BlockCacheBytes) and up to four memtables (MemTableBytes).
 //
 // # Key layout
 //
@@ -40,5 +92,8 @@
 // # Concurrency
 //
 // A Store and its caches are not safe for concurrent use; the pipeline
-// drives them from one goroutine (or under one lock).
+// drives them from one goroutine (or under one lock). The only other
+// goroutine is the one writing a commit in flight, which touches the
+// database, the collected writes and, through an atomic per-slot state,
+// the records it encodes.
 package store

@@ -2,14 +2,9 @@ package store
 
 import (
 	"bytes"
-	"context"
-	"fmt"
 	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
-	"github.com/cockroachdb/pebble/v2/objstorage/objstorageprovider"
-	"github.com/cockroachdb/pebble/v2/sstable"
-	"github.com/cockroachdb/pebble/v2/vfs"
 )
 
 // DefaultIngestThreshold is the default of Options.IngestThreshold.
@@ -31,6 +26,13 @@ type entry struct {
 	key, val []byte
 	seq      int // write order, so the last write of a key wins
 	del      bool
+}
+
+// reset empties c for reuse, keeping its room.
+func (c *collector) reset() {
+	clear(c.ents) // drop references into old arenas
+	c.ents = c.ents[:0]
+	c.arena = c.arena[:0]
 }
 
 func (c *collector) keep(b []byte) []byte {
@@ -64,65 +66,4 @@ func (c *collector) sorted() []entry {
 		out = append(out, e)
 	}
 	return out
-}
-
-// commitIngest is Commit for large commits: the pending batch, every dirty
-// record and the Mark go into one sorted table that Pebble ingests
-// atomically.
-func (s *Store) commitIngest(m Mark) error {
-	var c collector
-	r := s.pending.Reader()
-	for {
-		kind, k, v, ok, err := r.Next()
-		if err != nil {
-			return s.fail(fmt.Errorf("state: read pending batch: %w", err))
-		}
-		if !ok {
-			break
-		}
-		switch kind {
-		case pebble.InternalKeyKindSet:
-			c.Set(k, v, nil)
-		case pebble.InternalKeyKindDelete:
-			c.Delete(k, nil)
-		default:
-			return s.fail(fmt.Errorf("state: unexpected %v in pending batch", kind))
-		}
-	}
-	for _, t := range s.tables {
-		if err := t.flushDirty(&c); err != nil {
-			return s.fail(err)
-		}
-	}
-	buf, _ := m.AppendBinary(nil)
-	c.Set(metaKey(metaMark), buf, nil)
-
-	fs := s.opts.FS
-	path := fs.PathJoin(s.dirName(), fmt.Sprintf("commit-%06d.sst", s.commits+1))
-	f, err := fs.Create(path, vfs.WriteCategoryUnspecified)
-	if err != nil {
-		return s.fail(fmt.Errorf("state: commit table: %w", err))
-	}
-	w := sstable.NewWriter(objstorageprovider.NewFileWritable(f), s.popts.MakeWriterOptions(0, s.db.TableFormat()))
-	for _, e := range c.sorted() {
-		if e.del {
-			err = w.Delete(e.key)
-		} else {
-			err = w.Set(e.key, e.val)
-		}
-		if err != nil {
-			w.Close()
-			return s.fail(fmt.Errorf("state: commit table: %w", err))
-		}
-	}
-	if err := w.Close(); err != nil {
-		return s.fail(fmt.Errorf("state: commit table: %w", err))
-	}
-	if err := s.db.Ingest(context.Background(), []string{path}); err != nil {
-		return s.fail(fmt.Errorf("state: commit: ingest: %w", err))
-	}
-	// Ingest linked or copied the table into the store; the staging file
-	// is ours to remove. A leftover one is harmless garbage.
-	_ = fs.Remove(path)
-	return s.committed(m)
 }

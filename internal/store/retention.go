@@ -221,8 +221,12 @@ func (t *Table[V]) loadLast(entity string) (last int64, found bool, err error) {
 // RebuildExpiry rewrites this table's expiry index entries from its
 // records, for a store whose ttl changed. It stages the writes for the
 // next commit and visits every record of the table.
-func (t *Table[V]) RebuildExpiry() error {
+func (t *Table[V]) RebuildExpiry() (err error) {
+	defer t.store.guard(&err)
 	if err := t.store.check(); err != nil {
+		return err
+	}
+	if err := t.store.spillToPending(); err != nil {
 		return err
 	}
 	b := t.store.pending
@@ -265,9 +269,14 @@ func (t *Table[V]) RebuildExpiry() error {
 // Rewrite passes every stored record of the table to fn and stages what fn
 // returns in its place (nil deletes the record). It is for definition
 // changes at open; cached entries must not be dirty.
-func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) error {
+func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (err error) {
+	defer t.store.guard(&err)
 	lower := RecordKey(nil, t.name, "")
 	upper := prefixEnd(lower)
+	if err := t.store.spillToPending(); err != nil {
+		return err
+	}
+	t.store.pendingRecords = true
 	b := t.store.pending
 	it, err := b.NewIter(&pebble.IterOptions{LowerBound: lower, UpperBound: upper})
 	if err != nil {
@@ -408,7 +417,7 @@ func (s *Store) SetTombstone(table, entity string, on bool) error {
 // copy opens as a store of its own: Options{Dir: dir}.
 func (s *Store) Snapshot(dir string) (err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return err
 	}
 	if err := s.db.Checkpoint(dir, pebble.WithFlushedWAL()); err != nil {

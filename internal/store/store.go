@@ -16,7 +16,6 @@ import (
 	"syscall"
 
 	"github.com/cockroachdb/pebble/v2"
-	"github.com/cockroachdb/pebble/v2/bloom"
 	"github.com/cockroachdb/pebble/v2/vfs"
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -201,14 +200,17 @@ func (l *logger) corruption(info pebble.DataCorruptionInfo) {
 	l.stop(fmt.Errorf("%w: %s: %v", ErrDamaged, info.Path, info.Details))
 }
 
-// inStoreCall reports whether the current goroutine is inside a call of
-// this package (and so under a guard). Only Fatalf asks, which is rare.
+// inStoreCall reports whether the current goroutine is inside a method of
+// a Store or Table (and so under a guard). Only Fatalf asks, which is
+// rare.
 func inStoreCall() bool {
 	buf := make([]byte, 64<<10)
 	buf = buf[:runtime.Stack(buf, false)]
 	for line := range bytes.Lines(buf) {
-		if bytes.Contains(line, []byte("tallyward/internal/store.")) && !bytes.Contains(line, []byte("store.(*logger)")) &&
-			!bytes.HasPrefix(line, []byte("created by")) {
+		if bytes.HasPrefix(line, []byte("created by")) {
+			continue
+		}
+		if bytes.Contains(line, []byte("tallyward/internal/store.(*Store).")) || bytes.Contains(line, []byte("tallyward/internal/store.(*Table[")) {
 			return true
 		}
 	}
@@ -239,16 +241,24 @@ type Store struct {
 	opts    Options
 	cache   *pebble.Cache
 	pending *pebble.Batch // indexed; reads see it; written by the next Commit
-	popts   *pebble.Options
-	dir     string
-	fs      *storeFS
-	lock    *pebble.Lock
-	log     *logger
-	mark    Mark
-	budget  *budget
-	tables  []flusher
-	err     error // sticky: set once a write fails
-	closed  bool
+	spill   *spill        // staged record writes; see spill
+	flight  *flight       // the commit being written, if any
+	// Buffers of the last landed commit, reused by the next (see freeze).
+	spareC     *collector
+	spareSpill *spill
+	// pendingRecords: the pending batch may hold record keys (see spill).
+	pendingRecords bool
+	gen            uint64 // number of commits taken (frozen) since Open
+	popts          *pebble.Options
+	dir            string
+	fs             *storeFS
+	lock           *pebble.Lock
+	log            *logger
+	mark           Mark
+	budget         *budget
+	tables         []flusher
+	err            error // sticky: set once a write fails
+	closed         bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
@@ -265,8 +275,9 @@ type Store struct {
 
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
-	flushDirty(b writer) error
-	dirtyCount() int
+	freezeDirty(c *collector) error
+	encodeFrozen(c *collector) error
+	frozenCount() int
 }
 
 // Open opens (creating if needed) the store described by opts and reads its
@@ -303,41 +314,16 @@ func Open(opts Options) (_ *Store, err error) {
 		return nil, fmt.Errorf("state: open %q read-only: %w", dir, errors.New("no store there"))
 	}
 	log := &logger{dir: dir, user: opts.Logger}
-	cache := pebble.NewCache(opts.BlockCacheBytes)
-	popts := &pebble.Options{
-		FS:                 fs,
-		Cache:              cache,
-		FormatMajorVersion: FormatMajorVersion,
-		Logger:             log,
-		Lock:               in.lock,
-		ReadOnly:           opts.ReadOnly,
-		EventListener: &pebble.EventListener{
-			BackgroundError: log.background,
-			DataCorruption:  log.corruption,
-		},
-		// A commit writes every dirty record in one batch; a memtable
-		// that holds several such batches keeps them from being flushed
-		// as oversized batches one by one, and the stop threshold leaves
-		// room for a flush to finish while the next commit is written.
-		MemTableSize:                uint64(opts.MemTableBytes),
-		MemTableStopWritesThreshold: 4,
-		L0CompactionThreshold:       4,
-		L0StopWritesThreshold:       24,
-		// Table bounds are keys, and every MANIFEST edit keeps the bounds
-		// of the tables it adds until the MANIFEST is rewritten as a
-		// snapshot of the live tables. The smallest size threshold makes
-		// Pebble rewrite it whenever the edits since the last snapshot
-		// name more tables than the snapshot (or the store) holds, so a
-		// deleted key's bounds leave the MANIFEST soon after the tables
-		// holding it are compacted away (see Compact).
-		MaxManifestFileSize: 1,
+	popts := PebbleOptions(opts)
+	cache := popts.Cache
+	popts.FS = fs
+	popts.Logger = log
+	popts.Lock = in.lock
+	popts.ReadOnly = opts.ReadOnly
+	popts.EventListener = &pebble.EventListener{
+		BackgroundError: log.background,
+		DataCorruption:  log.corruption,
 	}
-	// A lookup of an entity never seen before is common; bloom filters on
-	// every level make it cheap.
-	for i := range popts.Levels {
-		popts.Levels[i].FilterPolicy = bloom.FilterPolicy(10)
-	}
-	popts.EnsureDefaults()
 	if err := checkOptions(fs, dir, in.options, popts); err != nil {
 		if in.lock != nil {
 			in.lock.Close()
@@ -358,6 +344,7 @@ func Open(opts Options) (_ *Store, err error) {
 		return nil, err
 	}
 	s.pending = s.db.NewIndexedBatch()
+	s.spill = newSpill()
 	var m Mark
 	found, err := s.getRaw(metaKey(metaMark), func(v []byte) error { return m.UnmarshalBinary(v) })
 	if err != nil {
@@ -399,6 +386,12 @@ func (s *Store) openDB(cache *pebble.Cache) (db *pebble.DB, err error) {
 		}
 		if errors.Is(err, syscall.ENOSPC) {
 			return nil, fmt.Errorf("%w: open %q: %w", ErrNoSpace, s.dir, err)
+		}
+		if errors.Is(err, syscall.EAGAIN) {
+			return nil, lockError(s.dir, err)
+		}
+		if errors.Is(err, os.ErrNotExist) {
+			return nil, fmt.Errorf("%w: open %q: a file the MANIFEST lists is missing: %w", ErrDamaged, s.dir, err)
 		}
 		return nil, fmt.Errorf("state: open %q: %w", s.dir, err)
 	}
@@ -495,7 +488,18 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 	defer s.guard(&err)
 	var v []byte
 	var closer io.Closer
-	if s.pending.Empty() {
+	if key[0] == tagRecord {
+		if sv, del, ok := s.lookupStaged(key); ok {
+			if del {
+				return false, nil
+			}
+			if err := fn(sv); err != nil {
+				return true, fmt.Errorf("state: key %q: %w", key, err)
+			}
+			return true, nil
+		}
+	}
+	if s.pending.Empty() || key[0] == tagRecord && !s.pendingRecords {
 		v, closer, err = s.db.Get(key)
 	} else {
 		v, closer, err = s.pending.Get(key)
@@ -529,7 +533,8 @@ func (s *Store) empty(prefix []byte) bool {
 }
 
 // Definitions returns the stored definition fingerprints by name.
-func (s *Store) Definitions() (map[string][]byte, error) {
+func (s *Store) Definitions() (_ map[string][]byte, err error) {
+	defer s.guard(&err)
 	if err := s.check(); err != nil {
 		return nil, err
 	}
@@ -574,54 +579,35 @@ func (s *Store) DeleteDefinition(name string) error {
 
 // Commit writes every dirty cached entry, anything staged, and m in one
 // synced batch, or for a large commit one ingested table (see
-// Options.IngestThreshold); either is atomic. On error the store is failed: nothing of this commit is
+// Options.IngestThreshold); either is atomic. It returns once the commit
+// is durable. On error the store is failed: nothing of this commit is
 // visible after a reopen, and every later call returns the error.
-func (s *Store) Commit(m Mark) (err error) {
+func (s *Store) Commit(m Mark) error {
+	if err := s.CommitAsync(m); err != nil {
+		return err
+	}
+	return s.Settle()
+}
+
+// CommitAsync is Commit that returns once the commit's writes are taken
+// (dirty records encoded) and leaves writing them to a goroutine of its
+// own; Settle waits for it. The cache and the store stay usable, and reads
+// see the commit's writes, while it is in flight. It first waits for the
+// previous commit, so at most one is in flight; Mark and Commits report
+// the last commit that landed.
+func (s *Store) CommitAsync(m Mark) (err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return err
 	}
 	if s.opts.ReadOnly {
 		return ErrReadOnly
 	}
-	n := int(s.pending.Count())
-	for _, t := range s.tables {
-		n += t.dirtyCount()
-	}
-	if s.opts.IngestThreshold > 0 && n >= s.opts.IngestThreshold {
-		return s.commitIngest(m)
-	}
-	// The commit batch is a plain (unindexed) batch: appending to it is
-	// far cheaper than inserting into the indexed pending batch, which
-	// only exists so that reads see evicted dirty records.
-	b := s.db.NewBatch()
-	defer b.Close()
-	if !s.pending.Empty() {
-		if err := b.Apply(s.pending, nil); err != nil {
-			return s.fail(err)
-		}
-	}
-	for _, t := range s.tables {
-		if err := t.flushDirty(b); err != nil {
-			return s.fail(err)
-		}
-	}
-	buf, _ := m.AppendBinary(nil)
-	if err := b.Set(metaKey(metaMark), buf, nil); err != nil {
-		return s.fail(err)
-	}
-	if err := b.Commit(pebble.Sync); err != nil {
-		return s.fail(fmt.Errorf("state: commit: %w", err))
-	}
-	return s.committed(m)
+	return s.freeze(m)
 }
 
 // committed records a successful commit of m.
 func (s *Store) committed(m Mark) error {
-	if !s.pending.Empty() {
-		s.pending.Close()
-		s.pending = s.db.NewIndexedBatch()
-	}
 	s.mark = m
 	s.mark.Cursor = bytes.Clone(m.Cursor)
 	s.mark.Extra = bytes.Clone(m.Extra)
@@ -642,14 +628,14 @@ func (s *Store) committed(m Mark) error {
 // sweep (the pipeline does) check LastTime themselves.
 func (s *Store) Sweep(w int64) (_ int, err error) {
 	defer s.guard(&err)
-	if err := s.check(); err != nil {
+	if err := s.Settle(); err != nil {
 		return 0, err
 	}
 	b := s.db.NewBatch()
 	defer b.Close()
 	n, err := s.sweep(b, w)
 	if err == nil && !b.Empty() {
-		err = s.pending.Apply(b, nil)
+		err = s.stageBatch(b)
 	}
 	if err != nil {
 		return 0, s.fail(fmt.Errorf("state: expiry sweep: %w", err))
@@ -673,8 +659,9 @@ func (s *Store) Close() (err error) {
 	if s.closed {
 		return nil
 	}
-	s.closed = true
 	defer s.guard(&err)
+	settleErr := s.Settle()
+	s.closed = true
 	var keep int64 = -1
 	if !s.abandoned && !s.opts.ReadOnly {
 		keep = s.db.Metrics().WAL.Files
@@ -693,6 +680,8 @@ func (s *Store) Close() (err error) {
 	})
 	if s.err != nil {
 		err = errors.Join(s.err, err)
+	} else if settleErr != nil {
+		err = errors.Join(settleErr, err)
 	}
 	return err
 }
@@ -780,7 +769,11 @@ func (s *Store) Commits() uint64 { return s.commits }
 // pendingBytes approximates the memory of the pending batch: its
 // encoded writes plus the batch index, about a skiplist node per write.
 func (s *Store) pendingBytes() int64 {
-	return int64(s.pending.Len()) + int64(s.pending.Count())*pendingNodeBytes
+	n := int64(s.pending.Len()) + int64(s.pending.Count())*pendingNodeBytes + s.spill.bytes
+	if s.flight != nil {
+		n += s.flight.spill.bytes
+	}
+	return n
 }
 
 // pendingNodeBytes approximates the index memory per write of an indexed

@@ -1,0 +1,144 @@
+package store
+
+import (
+	"fmt"
+
+	"github.com/cockroachdb/pebble/v2"
+)
+
+// spill holds the record writes (tag 0x03) staged between commits: dirty
+// records evicted from a cache and record deletions. It replaces the
+// indexed batch for them: an indexed batch inserts every write into a
+// skiplist and serves reads through it, and on a cache that churns those
+// comparisons were a large share of all work. Here a write is one map
+// assignment and a read one map lookup. Everything else staged
+// (definitions, tombstones, expiry index entries, salt) stays in the
+// pending batch, where iterators see it.
+//
+// Invariant: a record key is written to the pending batch only by
+// Rewrite, after the spill was moved there (spillToPending), so the newest
+// staged write of a record key is in the spill if it is anywhere in the
+// spill, else in the pending batch.
+type spill struct {
+	m     map[string]spilled
+	arena []byte // values, in chunks
+	bytes int64  // approximate memory, for the budget
+}
+
+// spillEntryBytes approximates a map entry's memory beside key and value.
+const spillEntryBytes = 64
+
+type spilled struct {
+	val []byte
+	del bool
+}
+
+const spillChunk = 1 << 20
+
+func newSpill() *spill { return &spill{m: map[string]spilled{}} }
+
+// reset empties sp for reuse, keeping its map's room and its last chunk.
+func (sp *spill) reset() {
+	clear(sp.m)
+	sp.arena = sp.arena[:0]
+	sp.bytes = 0
+}
+
+func (sp *spill) set(key, val []byte) {
+	if cap(sp.arena)-len(sp.arena) < len(val) {
+		sp.arena = make([]byte, 0, max(spillChunk, len(val)))
+	}
+	sp.arena = append(sp.arena, val...)
+	sp.m[string(key)] = spilled{val: sp.arena[len(sp.arena)-len(val) : len(sp.arena) : len(sp.arena)]}
+	sp.bytes += int64(len(key) + len(val) + spillEntryBytes)
+}
+
+func (sp *spill) delete(key []byte) {
+	sp.m[string(key)] = spilled{del: true}
+	sp.bytes += int64(len(key) + spillEntryBytes)
+}
+
+// get reports whether the spill holds key, and its value (nil if deleted).
+func (sp *spill) get(key []byte) (v []byte, del, ok bool) {
+	e, ok := sp.m[string(key)]
+	return e.val, e.del, ok
+}
+
+// staging is the writer for everything a cache stages between commits:
+// record keys go to the spill, the rest to the pending batch.
+type staging struct{ s *Store }
+
+func (w staging) Set(key, value []byte, _ *pebble.WriteOptions) error {
+	if len(key) > 0 && key[0] == tagRecord {
+		w.s.spill.set(key, value)
+		return nil
+	}
+	return w.s.pending.Set(key, value, nil)
+}
+
+func (w staging) Delete(key []byte, _ *pebble.WriteOptions) error {
+	if len(key) > 0 && key[0] == tagRecord {
+		w.s.spill.delete(key)
+		return nil
+	}
+	return w.s.pending.Delete(key, nil)
+}
+
+// spillToPending moves the spill into the pending batch, for the rare
+// operations (definition changes at open) that iterate staged records.
+func (s *Store) spillToPending() error {
+	if len(s.spill.m) == 0 {
+		return nil
+	}
+	for k, e := range s.spill.m {
+		var err error
+		if e.del {
+			err = s.pending.Delete([]byte(k), nil)
+		} else {
+			err = s.pending.Set([]byte(k), e.val, nil)
+		}
+		if err != nil {
+			return s.fail(err)
+		}
+	}
+	s.pendingRecords = true
+	s.spill = newSpill()
+	return nil
+}
+
+// lookupStaged finds the newest staged write of a record key: the spill,
+// then the spill of the commit in flight. found false: look further.
+func (s *Store) lookupStaged(key []byte) (v []byte, del, found bool) {
+	if v, del, ok := s.spill.get(key); ok {
+		return v, del, true
+	}
+	if s.flight != nil {
+		if v, del, ok := s.flight.spill.get(key); ok {
+			return v, del, true
+		}
+	}
+	return nil, false, false
+}
+
+// stageBatch stages the writes of b, in order.
+func (s *Store) stageBatch(b *pebble.Batch) error {
+	w := staging{s}
+	r := b.Reader()
+	for {
+		kind, k, v, ok, err := r.Next()
+		if err != nil || !ok {
+			return err
+		}
+		switch kind {
+		case pebble.InternalKeyKindSet:
+			err = w.Set(k, v, nil)
+		case pebble.InternalKeyKindDelete:
+			err = w.Delete(k, nil)
+		default:
+			err = fmt.Errorf("state: unexpected %v in batch", kind)
+		}
+		if err != nil {
+			return err
+		}
+	}
+}
