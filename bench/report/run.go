@@ -41,7 +41,7 @@ func Flags(fs *flag.FlagSet) *RunOptions {
 	fs.StringVar(&o.Input, "input", "", "CSV file of key,item[,value[,time]] rows: report on your data")
 	fs.BoolVar(&o.Speed, "speed", false, "also measure speed against the naive Pebble baseline and the in-memory ceiling")
 	fs.BoolVar(&o.SpeedConfig.Huge, "speed.10m", false, "speed at 10M entities too (long, needs several GiB)")
-	fs.IntVar(&o.SpeedConfig.Events, "speed.events", 0, "events per speed run (default 500k)")
+	fs.IntVar(&o.SpeedConfig.Events, "speed.events", 0, "events per speed run (default 1M)")
 	fs.IntVar(&o.SpeedConfig.Entities, "speed.entities", 0, "accounts (and devices) of the speed matrix (default 1M)")
 	return o
 }

@@ -9,20 +9,21 @@ import (
 	"syscall"
 	"time"
 
-	"github.com/cockroachdb/pebble/v2"
+	"github.com/cockroachdb/pebble/v2/vfs"
 	"gonum.org/v1/plot"
 	"gonum.org/v1/plot/plotter"
 	"gonum.org/v1/plot/vg"
 
 	"github.com/tallyward/tallyward"
 	"github.com/tallyward/tallyward/bench/workload"
+	"github.com/tallyward/tallyward/internal/store"
 )
 
 // SpeedConfig sizes the speed report. Zero fields mean their defaults.
 type SpeedConfig struct {
 	// Huge adds the 10M-entity runs. Default false.
 	Huge bool
-	// Events per pipeline run. Default 500k.
+	// Events per pipeline run. Default 1M.
 	Events int
 	// NaiveEvents is the prefix the naive baseline processes, for when it
 	// is too slow to run every event. Default: every event, so both do the
@@ -36,7 +37,7 @@ type SpeedConfig struct {
 }
 
 func (c SpeedConfig) withDefaults() SpeedConfig {
-	c.Events = cmpOr(c.Events, 500_000)
+	c.Events = cmpOr(c.Events, 1_000_000)
 	c.NaiveEvents = cmpOr(c.NaiveEvents, c.Events)
 	c.Entities = cmpOr(c.Entities, 1_000_000)
 	return c
@@ -148,7 +149,9 @@ func runCeiling(ev []workload.Payment) run {
 }
 
 func runNaive(ev []workload.Payment, dir string) (run, error) {
-	n, err := workload.OpenNaive(dir, &pebble.Options{Logger: quietLog{}})
+	popts := store.PebbleOptions(store.Options{FS: vfs.Default, Logger: quietLog{}})
+	n, err := workload.OpenNaive(dir, popts)
+	popts.Cache.Unref()
 	if err != nil {
 		return run{}, err
 	}
@@ -195,10 +198,10 @@ func Speed(r *Report, c SpeedConfig) error {
 	t := &Table{
 		Title: "Speed: six features over two entity kinds",
 		Measures: fmt.Sprintf("%d events of the benchmark workload (package bench/workload: per account a 10 min count, 1 h sum, 24 h distinct devices, decayed mean, velocity; per device 1 h distinct accounts) over %d accounts and %d devices, one pass from an empty store, Flush included. "+
-			"In memory: Options.Dir empty (Pebble on an in-memory filesystem); on disk: a directory. Cache %d MiB. The naive baseline runs %d events on disk with Pebble's default options; the ceiling keeps the same aggregates in a Go map and persists nothing. "+
+			"In memory: Options.Dir empty (Pebble on an in-memory filesystem); on disk: a directory. Cache %d MiB. The naive baseline runs %d events on disk, Pebble opened with exactly the store's settings (store.PebbleOptions); the ceiling keeps the same aggregates in a Go map and persists nothing. "+
 			"Ratios are events/s over the baseline's events/s (wall) and the baseline's CPU per event over the run's (CPU); CPU is process CPU time, every goroutine included. The machine is shared, so the CPU ratios are the steadier figures. "+
 			"Go heap per cached entity: heap growth after a GC over the records the cache holds (Pebble's block cache and memtables are outside the Go heap, except on the in-memory filesystem); store bytes: Pebble's size estimate over live entities.", c.Events, c.Entities, c.Entities, cacheFor(c.Entities)>>20, c.NaiveEvents),
-		Header: []string{"keys", "run", "events/s", "CPU us/event", "x naive (wall)", "x naive (CPU)", "x ceiling (wall)", "x ceiling (CPU)", "hit rate", "Go heap B/cached entity", "store B/entity"},
+		Header: []string{"keys", "run", "live entities", "events/s", "CPU us/event", "x naive (wall)", "x naive (CPU)", "x ceiling (wall)", "x ceiling (CPU)", "hit rate", "Go heap B/cached entity", "store B/entity"},
 	}
 	type point struct{ entities, eps float64 }
 	plotPts := map[string][]point{}
@@ -233,7 +236,7 @@ func Speed(r *Report, c SpeedConfig) error {
 			plotPts["ceiling"] = append(plotPts["ceiling"], point{float64(c.Entities), ceil.eventsPerSecond})
 		}
 		for _, rr := range append(runs, naive, ceil) {
-			t.add(keys, rr.name, rr.eventsPerSecond, rr.cpuPerEvent(),
+			t.add(keys, rr.name, rr.entities, rr.eventsPerSecond, rr.cpuPerEvent(),
 				rr.eventsPerSecond/naive.eventsPerSecond, naive.cpuPerEvent()/rr.cpuPerEvent(),
 				rr.eventsPerSecond/ceil.eventsPerSecond, ceil.cpuPerEvent()/rr.cpuPerEvent(), rr.hitRate, rr.heapPerEntity, rr.storePerEntity)
 		}
@@ -264,7 +267,7 @@ func Speed(r *Report, c SpeedConfig) error {
 	}
 	pl := plot.New()
 	pl.Title.Text = fmt.Sprintf("Six-feature workload, Zipf(1.1) keys, %d events: events/s against entities", c.Events)
-	pl.X.Label.Text = "accounts (and devices)"
+	pl.X.Label.Text = "accounts (and devices) keys drawn from"
 	pl.Y.Label.Text = "events/s"
 	pl.X.Scale, pl.Y.Scale = plot.LogScale{}, plot.LogScale{}
 	pl.X.Tick.Marker, pl.Y.Tick.Marker = plot.LogTicks{Prec: -1}, plot.LogTicks{Prec: -1}
