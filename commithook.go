@@ -29,9 +29,15 @@ type CommitPoint struct {
 // its output to what this commit covers and re-reads its input from
 // Resume. A nil cursor keeps the one given to Commit (or the stored one).
 //
+// Automatic commits may write the state in the background after fn
+// returns; a crash before that write lands resumes from the commit
+// before, whose cursor names a shorter committed length, so the order
+// (output durable first, state second) still holds.
+//
 // If fn fails, the commit is not written and the pipeline fails: later
 // calls return the error. fn runs on the goroutine that called Commit (or
-// Process) and must not call back into the pipeline. nil removes the hook.
+// Process) and must not call back into the pipeline: such a call returns
+// ErrReentered. nil removes the hook.
 func (p *Pipeline[E]) SetCommitHook(fn func(CommitPoint) (cursor []byte, err error)) {
 	p.beforeCommit = fn
 }
@@ -40,7 +46,13 @@ func (p *Pipeline[E]) runCommitHook(m *store.Mark) error {
 	if p.beforeCommit == nil {
 		return nil
 	}
-	cursor, err := p.beforeCommit(CommitPoint{Resume: m.Resume, NextSeq: m.Seen, Watermark: m.Watermark, Emitted: p.c.emitted})
+	var cursor []byte
+	var err error
+	// A callback like Emit: a call back into the pipeline returns
+	// ErrReentered.
+	runCallback(&p.emitting, func() {
+		cursor, err = p.beforeCommit(CommitPoint{Resume: m.Resume, NextSeq: m.Seen, Watermark: m.Watermark, Emitted: p.c.emitted})
+	})
 	if err != nil {
 		p.err = err
 		return err

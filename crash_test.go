@@ -26,7 +26,7 @@ import (
 func crashOpts() Options {
 	// A low ingest threshold sends most commits down the ingested-table
 	// path, the rest (fewer writes) down the batch path.
-	return Options{Mode: Settled, MaxDisorder: 3 * time.Second, CommitEvery: -1, CacheBytes: 256 << 10, IngestThreshold: 600}
+	return Options{Mode: Settled, MaxDisorder: 3 * time.Second, CommitEvery: -1, CacheBytes: 256 << 10, IngestThreshold: 600, ItemKey: testItemKey}
 }
 
 const crashCommitEvery = 1000
@@ -156,7 +156,7 @@ func TestKillAndRestartProcess(t *testing.T) {
 				break
 			}
 		}
-		p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
+		p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second, ItemKey: testItemKey})
 		require.NoError(t, err)
 		require.Equal(t, wantRecords, dumpRecords(t, p.store.DB()), "round %d", round)
 		require.NoError(t, p.Close())

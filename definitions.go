@@ -36,8 +36,18 @@ func ttlFor[E any](features []Feature[E], opts Options) int64 {
 //	feature/<entity>.<feature>  the feature's Kind.Describe()
 //	entity/<entity>             "features=" + the feature names in record order
 //	ttl/<entity>                the expiry in ns ("0": never)
+//	pipeline/max-disorder       Options.MaxDisorder in ns
+//	items/hash                  how items are hashed (see itemHashing)
+//
+// "<entity>.<feature>" is unambiguous because Spec validation refuses two
+// features whose joined names are equal (entity "a" with feature "b.c"
+// and entity "a.b" with feature "c"); the entity/ lists tell stores apart
+// across spec changes.
 func (p *Pipeline[E]) definitions() map[string]string {
-	defs := map[string]string{}
+	defs := map[string]string{
+		defMaxDisorder: strconv.FormatInt(int64(p.opts.MaxDisorder), 10),
+		defItemHash:    p.items.describe(),
+	}
 	for _, es := range p.ents {
 		names := make([]string, len(es.ent.Features))
 		for i, f := range es.ent.Features {
@@ -59,7 +69,13 @@ func (p *Pipeline[E]) checkDefinitions() error {
 	if err != nil {
 		return err
 	}
+	if err := p.chooseItemHashing(stored); err != nil {
+		return err
+	}
 	want := p.definitions()
+	if err := p.checkResetNames(stored); err != nil {
+		return err
+	}
 	if len(stored) == 0 {
 		return p.writeDefinitions(stored, want)
 	}
@@ -81,11 +97,19 @@ func (p *Pipeline[E]) checkDefinitions() error {
 		changed[ent][feat] = true
 		p.notices = append(p.notices, fmt.Sprintf("feature %s %s: its state was reset and starts empty; backfill from history to rebuild it", name, what))
 	}
-	storedEntities := map[string][]string{}
-	for name, v := range stored {
-		if ent, ok := strings.CutPrefix(name, "entity/"); ok {
-			storedEntities[ent] = strings.Split(strings.TrimPrefix(string(v), "features="), ",")
-		}
+	storedEntities := storedFeatures(stored)
+	// MaxDisorder is part of what shaped stored state, like a window
+	// length: every aggregate keeps its events exact for exactly the
+	// horizon it was built with, and its decoder checks that. Adapting the
+	// state on read instead would silently fold events (a smaller
+	// setting) or promise exactness the old state cannot give (a larger
+	// one), in every format of package window and sketch. So a change is
+	// a definition change of every feature, with the same error and the
+	// same way out (Options.ResetFeatures).
+	oldDisorder, hasDisorder := stored[defMaxDisorder]
+	disorderChanged := hasDisorder && string(oldDisorder) != want[defMaxDisorder]
+	if !hasDisorder && len(storedEntities) > 0 {
+		p.notices = append(p.notices, fmt.Sprintf("the store predates recording MaxDisorder: taken to be unchanged (%v) and recorded now", p.opts.MaxDisorder))
 	}
 	for _, es := range p.ents {
 		ent := es.ent.Name
@@ -97,6 +121,8 @@ func (p *Pipeline[E]) checkDefinitions() error {
 				note(ent, f.Name, "is new")
 			case string(got) != f.Kind.Describe():
 				note(ent, f.Name, fmt.Sprintf("changed from %q to %q", got, f.Kind.Describe()))
+			case disorderChanged:
+				note(ent, f.Name, fmt.Sprintf("was built for MaxDisorder %sns, now %sns (stored state is exact for the old setting only; or keep the old MaxDisorder)", oldDisorder, want[defMaxDisorder]))
 			}
 		}
 		for _, f := range old {
@@ -237,6 +263,40 @@ func newDropTable[E any](p *Pipeline[E], ent string) *store.Table[*record] {
 	})
 }
 
+// storedFeatures reads the entity/ definitions: feature names by entity.
+func storedFeatures(stored map[string][]byte) map[string][]string {
+	out := map[string][]string{}
+	for name, v := range stored {
+		if ent, ok := strings.CutPrefix(name, "entity/"); ok {
+			out[ent] = strings.Split(strings.TrimPrefix(string(v), "features="), ",")
+		}
+	}
+	return out
+}
+
+// checkResetNames refuses Options.ResetFeatures names that match no
+// feature of the spec and no stored one: a typo would otherwise leave the
+// intended feature unreset and the error it meant to clear in place.
+func (p *Pipeline[E]) checkResetNames(stored map[string][]byte) error {
+	known := map[string]bool{}
+	for _, n := range p.names {
+		known[n] = true
+	}
+	for ent, feats := range storedFeatures(stored) {
+		for _, f := range feats {
+			known[ent+"."+f] = true
+		}
+	}
+	var errs []error
+	for _, n := range p.opts.ResetFeatures {
+		if !known[n] {
+			errs = append(errs, fmt.Errorf("%w: Options.ResetFeatures lists %q, which is neither a feature of the spec nor a stored one", ErrUnknownFeature, n))
+		}
+	}
+	return errors.Join(errs...)
+}
+
 // Notices returns what Open did beyond the usual: features reset by
-// Options.ResetFeatures, each needing a backfill.
+// Options.ResetFeatures, each needing a backfill, and how an older store
+// was carried forward (unkeyed item hashes, MaxDisorder recorded).
 func (p *Pipeline[E]) Notices() []string { return slices.Clone(p.notices) }

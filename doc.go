@@ -15,9 +15,13 @@
 // The watermark is the newest event time minus Options.MaxDisorder and
 // never decreases. An event below it on arrival is late: it is counted and
 // then dropped, applied or diverted according to Options.Lateness. Events
-// with a zero time, a NaN or infinite value, or a time beyond
-// Options.FutureSkew are rejected with a *RejectError and counted; they
-// never reach state.
+// with a zero time, a time outside [Options.EarliestTime,
+// Options.LatestTime], a value that is NaN, infinite or beyond ±MaxValue,
+// or a time beyond Options.FutureSkew of the newest time (in live mode
+// also beyond FutureSkew ahead of, or PastSkew behind, the clock) are
+// rejected with a *RejectError and counted; they never reach state. A
+// stray event within the range can still set a wrong newest time, and
+// that is durable: [Pipeline.ResetNewest] is the way out.
 //
 // # Emission
 //
@@ -79,5 +83,19 @@
 // # Concurrency
 //
 // A Pipeline is not safe for concurrent use; [Live] serialises goroutines
-// onto one.
+// onto one, and has its own Erase, LiftErasure, Snapshot and ResetNewest.
+// Spec.Emit and Spec.OnLate must not call back into the pipeline or its
+// Live: such a call returns [ErrReentered] and changes nothing.
+//
+// # Item hashes
+//
+// Item kinds keep 64-bit hashes of items (Feature.Item) in the records of
+// the entities that saw them. They are keyed per store with SipHash-2-4.
+// Under the random key a new store draws and keeps, hashes cannot be
+// matched across stores or against tables computed in advance; under
+// Options.ItemKey, which the store does not keep, the store alone does not
+// let anyone test a list of candidate items against them. Two stores give
+// the same rows only under the same key: give a backfill the live store's
+// [Pipeline.ItemKey]. Stores made before keyed hashing keep unkeyed
+// hashes (Notices says so).
 package tallyward

@@ -108,7 +108,7 @@ func TestInjectedFaultsAreReportedAndResumeExactly(t *testing.T) {
 				out, ee := runChild(t, dir, "TALLYWARD_KILL_AT=-1", "TALLYWARD_INGEST="+faultIngest[name])
 				require.Nil(t, ee, "restart failed: %s", out)
 			}
-			p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second})
+			p, err := Open(richSpec(func(Row[login]) {}), Options{Dir: filepath.Join(dir, "db"), Mode: Settled, MaxDisorder: 3 * time.Second, ItemKey: testItemKey})
 			require.NoError(t, err)
 			require.Equal(t, wantRecords, dumpRecords(t, p.store.DB()), "%s trial %d", name, trial)
 			require.NoError(t, p.Close())

@@ -3,6 +3,8 @@ package tallyward
 import (
 	"bytes"
 	"errors"
+	"os"
+	"path/filepath"
 	"testing"
 	"time"
 
@@ -73,8 +75,16 @@ func FuzzRecordDecode(f *testing.F) {
 }
 
 func FuzzProgressDecode(f *testing.F) {
-	pr := progress{hasMax: true, maxT: t0, c: counters{events: 9, applied: 7, live: 3, rejected: [numReasons]uint64{1, 2, 3}}, futureRejected: []uint64{4, 8, 15}}
+	pr := progress{hasMax: true, maxT: t0, c: counters{events: 9, applied: 7, live: 3, rejected: [numReasons]uint64{1, 2, 3, 4, 5}},
+		skipReread: []uint64{4, 8, 15}, resumeNewest: newestTime{true, t0 - 5}, hasReset: true, resetSeq: 9, resetTo: t0 - 9, resetWm: t0 - 2}
 	f.Add(pr.append(nil))
+	for _, name := range []string{"progress_v1.bin", "progress_v2.bin"} {
+		b, err := os.ReadFile(filepath.Join("testdata", name))
+		if err != nil {
+			f.Fatal(err)
+		}
+		f.Add(b)
+	}
 	f.Add([]byte{1, 0})
 	f.Fuzz(func(t *testing.T, b []byte) {
 		var out progress

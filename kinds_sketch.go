@@ -15,9 +15,16 @@ import (
 )
 
 // Distinct counts the distinct items (Feature.Item) an entity saw in a
-// sliding window: distinct accounts per device in 24 hours, say. Exact up
-// to an item count, then a sliding HyperLogLog with relative standard
-// error 1.04/√2^Precision (package sketch).
+// sliding window: distinct accounts per device in 24 hours, say. Exact
+// while at most ExactLimit items are in the window, then a sliding
+// HyperLogLog with relative standard error 1.04/√2^Precision (package
+// sketch).
+//
+// Limit: the window and the pipeline's allowed disorder together span at
+// most 512 panes: Window/Resolution + ⌈(MaxDisorder+1ns)/Resolution⌉ + 1
+// ≤ 512. Validate checks the window alone; Open checks it with
+// MaxDisorder and names the feature. A large MaxDisorder (Settled mode
+// over a slow source, say) needs a coarser Resolution.
 type Distinct struct {
 	// Window is the window length. Required; a multiple of Resolution.
 	Window time.Duration
@@ -25,17 +32,27 @@ type Distinct struct {
 	Resolution time.Duration
 	// Precision is the HyperLogLog precision p (4..18). Default: 12.
 	Precision uint8
+	// ExactLimit is how many distinct items are kept exactly (with their
+	// times) before the count switches to HyperLogLog registers for good;
+	// each costs about 16 bytes per entity. 1..4096. Default: 128.
+	ExactLimit int
 }
 
 func (k Distinct) spec(h int64) sketch.DistinctSpec {
 	return sketch.DistinctSpec{Window: k.Window, Resolution: cmp.Or(k.Resolution, k.Window/60),
-		Horizon: time.Duration(h), Precision: cmp.Or(k.Precision, 12)} // 12: the sketch package's default
+		Horizon: time.Duration(h), Precision: cmp.Or(k.Precision, 12), ExactLimit: cmp.Or(k.ExactLimit, 128)} // the sketch package's defaults
 }
 
-// Describe implements Kind.
+// Describe implements Kind. The exact limit appears only when it is not
+// the default, so stores made before it was settable keep their
+// definitions.
 func (k Distinct) Describe() string {
 	s := k.spec(0)
-	return fmt.Sprintf("distinct window=%d resolution=%d precision=%d", s.Window, s.Resolution, s.Precision)
+	d := fmt.Sprintf("distinct window=%d resolution=%d precision=%d", s.Window, s.Resolution, s.Precision)
+	if s.ExactLimit != 128 {
+		d += fmt.Sprintf(" exact-limit=%d", s.ExactLimit)
+	}
+	return d
 }
 
 // Validate implements Kind.

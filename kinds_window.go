@@ -232,6 +232,9 @@ func (k Recency) NewAggregate(horizon time.Duration) Aggregate {
 	switch k.Stat {
 	case SinceLast:
 		at = func(t int64) float64 {
+			if t == math.MinInt64 {
+				return math.NaN() // nothing is strictly before; t-1 would wrap
+			}
 			last, ok := r.LastSeenAt(t - 1)
 			return seconds(t-last, ok)
 		}

@@ -2,7 +2,13 @@ package tallyward
 
 import (
 	"context"
-	"sync"
+	"errors"
+	"fmt"
+	"log/slog"
+	"math/bits"
+	"reflect"
+	"runtime"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -10,66 +16,203 @@ import (
 
 // Live is the live driver: a thin, goroutine-safe shell around a Pipeline.
 // Submissions from many goroutines are serialised onto the one core; the
-// injected clock drives only the future-time check and the idle watermark
-// advance, so with a clock that never triggers those, a live run is
-// identical to a replay of the same sequence.
+// injected clock drives only the time checks against it (FutureSkew ahead,
+// PastSkew behind) and the idle watermark advance, so with a clock that
+// never triggers those, a live run is identical to a replay of the same
+// sequence.
+//
+// # The clock contract
+//
+// The Clock must tell Unix nanoseconds on the same scale as event times,
+// and must not run behind them by more than Options.FutureSkew: an event
+// whose time is more than FutureSkew ahead of the clock is rejected
+// (FutureTime), and one more than Options.PastSkew behind it is rejected
+// too (PastTime). A clock set to the wrong epoch or unit therefore rejects
+// every event. The submitting calls return that rejection; Run, which has
+// no caller to return it to, counts it (Stats.Rejected) and logs it to
+// Options.Logger.
+//
+// # Contexts
+//
+// Calls that can wait take a context: for the core while another
+// goroutine holds it (a commit, which syncs to disk, can take tens of
+// milliseconds), or, in SubmitInOrder, for earlier events. A call whose
+// context ends before it got the core returns the context's error and
+// changes nothing; once it has the core it runs to completion.
 type Live[E any] struct {
-	mu      sync.Mutex
-	turn    *sync.Cond
+	// sem is the lock on the core: a channel, so that waiting for it can
+	// be abandoned when a context ends.
+	sem     chan struct{}
 	p       *Pipeline[E]
 	clock   Clock
-	next    uint64 // ticket of the next event SubmitInOrder lets through
-	lastArr int64  // clock time of the last arrival
+	log     *slog.Logger
+	next    uint64        // ticket of the next event SubmitInOrder lets through
+	moved   chan struct{} // closed and replaced when next moves while waiters > 0
+	waiters int
+	lastArr int64 // clock time of the last arrival
+	runRej  uint64
+	closed  bool // Close ran: waiting SubmitInOrder calls return ErrClosed
 }
 
 // NewLive wraps p. The caller must not use p directly while Live is in
-// use.
+// use: every operation of the pipeline that changes it (Erase,
+// LiftErasure, Snapshot, ResetNewest, Commit, Flush, Close) has a Live
+// counterpart that takes the same lock.
+//
+// Spec.Emit and Spec.OnLate run on the goroutine that holds the lock. A
+// call back into this Live (or into the pipeline) from inside them returns
+// ErrReentered instead of deadlocking; reading Stats is the exception and
+// is allowed. If rows must cause events, hand them to another goroutine
+// and do not wait for it inside the callback. The spec's other functions
+// (Time, Key, Where, Value, Item) must not call into the Live at all: the
+// call would wait for itself.
 func NewLive[E any](p *Pipeline[E], clock Clock) *Live[E] {
-	l := &Live[E]{p: p, clock: clock, next: p.seen}
-	l.turn = sync.NewCond(&l.mu)
+	l := &Live[E]{sem: make(chan struct{}, 1), p: p, clock: clock, log: p.opts.Logger, next: p.seen, moved: make(chan struct{})}
 	l.lastArr = clock.Now()
 	return l
 }
 
+// lock takes the core, or returns ErrReentered when the caller is the
+// goroutine that holds it, inside Spec.Emit or Spec.OnLate: waiting would
+// wait for itself forever. Go has no goroutine identity, so the test is
+// whether the caller's own stack runs through the pipeline's callback
+// frame; it costs a stack walk only when the core is busy while a
+// callback runs.
+func (l *Live[E]) lock(ctx context.Context) error {
+	select {
+	case l.sem <- struct{}{}:
+		return nil
+	default:
+	}
+	if l.p.emitting.Load() && calledFromEmit() {
+		return ErrReentered
+	}
+	select {
+	case l.sem <- struct{}{}:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+func (l *Live[E]) unlock() { <-l.sem }
+
 // Submit processes e as the next event of the sequence (arrival order at
-// the lock) and returns Process's error.
-func (l *Live[E]) Submit(e E) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	_, err := l.submitLocked(e, nil, false)
+// the core) and returns Process's error.
+func (l *Live[E]) Submit(ctx context.Context, e E) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	_, err := l.submitLocked(e, l.clock.Now(), nil, false)
 	return err
 }
 
 // Score is Submit that also appends e's features to dst (Eager mode).
-func (l *Live[E]) Score(e E, dst []float64) ([]float64, error) {
+func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, error) {
 	if l.p.opts.Mode != Eager {
 		return dst, ErrNotEager
 	}
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	return l.submitLocked(e, dst, true)
+	if err := l.lock(ctx); err != nil {
+		return dst, err
+	}
+	defer l.unlock()
+	return l.submitLocked(e, l.clock.Now(), dst, true)
+}
+
+// SubmitBatch processes es in order as consecutive events of the
+// sequence, all or none: it first checks every event against the
+// pipeline's state as it would be when that event's turn came, and if one
+// would be rejected, or refused as late (unless Options.Lateness is
+// ApplyLate), it returns a *BatchError naming it and consumes nothing, so
+// no event of a refused batch reaches state or the counters. Otherwise it
+// holds the core for the whole batch, so no other submission interleaves,
+// and, if want, appends each event's features to dst (Eager mode). first
+// is the sequence number the batch's first event got.
+//
+// Any other error is a storage failure or ctx's. The automatic commit
+// (Options.CommitEvery) waits for the end of the batch, so no commit
+// splits one; a storage failure can stop a batch part way, but the
+// pipeline is then unusable and a restart resumes from the last commit.
+func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, dst []float64, want bool) (first uint64, _ []float64, _ error) {
+	if want && l.p.opts.Mode != Eager {
+		return 0, dst, ErrNotEager
+	}
+	if err := l.lock(ctx); err != nil {
+		return 0, dst, err
+	}
+	defer l.unlock()
+	now := l.clock.Now()
+	first = l.p.seen
+	if err := l.p.precheck(es, now); err != nil {
+		return first, dst, err
+	}
+	l.p.inBatch = true
+	for _, e := range es {
+		var err error
+		if dst, err = l.submitLocked(e, now, dst, want); err != nil {
+			l.p.inBatch = false
+			return first, dst, err
+		}
+	}
+	l.p.inBatch = false
+	return first, dst, l.p.autoCommit()
 }
 
 // SubmitInOrder processes e as event number n of the sequence: it waits
 // until events n0..n-1 have been submitted (n0 = ResumeSeq() when Live was
 // made), so several goroutines that decode or fetch a source in parallel
 // still feed the core one ordered sequence. Each n must be submitted once.
-func (l *Live[E]) SubmitInOrder(n uint64, e E) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
-	for l.next != n {
-		l.turn.Wait()
+// If ctx ends while it waits, it returns ctx's error and e is not
+// submitted; the events after n then wait for n until it is. A call still
+// waiting when Close runs returns ErrClosed; a call for a number already
+// submitted returns an error at once.
+func (l *Live[E]) SubmitInOrder(ctx context.Context, n uint64, e E) error {
+	for {
+		if err := l.lock(ctx); err != nil {
+			return err
+		}
+		if l.closed {
+			l.unlock()
+			return ErrClosed
+		}
+		if n < l.next {
+			// Its turn has passed: waiting would never end.
+			l.unlock()
+			return fmt.Errorf("tallyward: SubmitInOrder(%d): event %d was already submitted", n, n)
+		}
+		if l.next == n {
+			break
+		}
+		l.waiters++
+		moved := l.moved
+		l.unlock()
+		select {
+		case <-moved:
+		case <-ctx.Done():
+		}
+		// Deregister under the lock whatever woke us; a lock that the
+		// context forbids is taken anyway, for a moment, to keep count.
+		l.sem <- struct{}{}
+		l.waiters--
+		l.unlock()
+		if err := ctx.Err(); err != nil {
+			return err
+		}
 	}
-	_, err := l.submitLocked(e, nil, false)
+	defer l.unlock()
+	_, err := l.submitLocked(e, l.clock.Now(), nil, false)
 	return err
 }
 
-func (l *Live[E]) submitLocked(e E, dst []float64, want bool) ([]float64, error) {
-	now := l.clock.Now()
+func (l *Live[E]) submitLocked(e E, now int64, dst []float64, want bool) ([]float64, error) {
 	l.lastArr = now
 	dst, err := l.p.process(e, now, dst, want)
 	l.next++
-	l.turn.Broadcast()
+	if l.waiters > 0 {
+		close(l.moved)
+		l.moved = make(chan struct{})
+	}
 	return dst, err
 }
 
@@ -77,9 +220,11 @@ func (l *Live[E]) submitLocked(e E, dst []float64, want bool) ([]float64, error)
 // for Options.IdleAdvance of clock time, the watermark rises to
 // clock − MaxDisorder − IdleAdvance. Run calls it periodically; tests call
 // it directly with a fake clock.
-func (l *Live[E]) Tick() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Tick(ctx context.Context) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	idle := int64(l.p.opts.IdleAdvance)
 	if idle == 0 {
 		return l.p.usable()
@@ -92,8 +237,13 @@ func (l *Live[E]) Tick() error {
 }
 
 // Run consumes ch until it is closed or ctx ends, ticking every tick of
-// real time (no ticking if tick is 0). Per-event rejections are counted,
-// not returned.
+// real time (no ticking if tick is 0). It returns nil when ch is closed,
+// ctx's error when ctx ends, and any storage failure at once.
+//
+// Events the pipeline rejects or finds late are counted in Stats as
+// always; Run also logs rejections to Options.Logger (at Warn, the 1st,
+// 2nd, 4th, 8th... of this Run, each with the running count, so a clock
+// that rejects everything is visible without flooding the log).
 func (l *Live[E]) Run(ctx context.Context, ch <-chan E, tick time.Duration) error {
 	var tc <-chan time.Time
 	if tick > 0 {
@@ -109,41 +259,192 @@ func (l *Live[E]) Run(ctx context.Context, ch <-chan E, tick time.Duration) erro
 			if !ok {
 				return nil
 			}
-			if err := l.Submit(e); err != nil && !benign(err) {
+			err := l.Submit(ctx, e)
+			switch {
+			case err == nil:
+			case benign(err):
+				l.noteRejected(err)
+			default:
 				return err
 			}
 		case <-tc:
-			if err := l.Tick(); err != nil {
+			if err := l.Tick(ctx); err != nil {
 				return err
 			}
 		}
 	}
 }
 
+func (l *Live[E]) noteRejected(err error) {
+	var re *RejectError
+	if !errors.As(err, &re) {
+		return
+	}
+	l.runRej++
+	if bits.OnesCount64(l.runRej) != 1 {
+		return
+	}
+	attrs := []any{"reason", re.Reason.String(), "seq", re.Seq, "event_time", re.Time, "rejected_so_far", l.runRej}
+	if re.Reason == FutureTime {
+		attrs = append(attrs, "clock", l.clock.Now(), "future_skew", l.p.opts.FutureSkew)
+	}
+	if re.Feature != "" {
+		attrs = append(attrs, "feature", re.Feature)
+	}
+	l.log.Warn("live: event rejected", attrs...)
+}
+
+// Advance raises the watermark to w; see Pipeline.Advance.
+func (l *Live[E]) Advance(ctx context.Context, w int64) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Advance(w)
+}
+
 // Commit commits the pipeline; see Pipeline.Commit.
-func (l *Live[E]) Commit(cursor []byte) error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Commit(ctx context.Context, cursor []byte) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	return l.p.Commit(cursor)
 }
 
 // Flush flushes the pipeline; see Pipeline.Flush.
-func (l *Live[E]) Flush() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+func (l *Live[E]) Flush(ctx context.Context) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
 	return l.p.Flush()
 }
 
-// Stats returns the pipeline's stats.
+// Names returns the feature names in row order; see Pipeline.Names.
+func (l *Live[E]) Names() []string { return slices.Clone(l.p.names) }
+
+// Stats returns the pipeline's stats. It waits for the core without a
+// context: the wait is bounded by one event or one commit. Unlike the
+// other methods it may be called from inside Spec.Emit.
 func (l *Live[E]) Stats() Stats {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+	if l.p.emitting.Load() && calledFromEmit() {
+		return l.p.Stats() // the caller already holds the core
+	}
+	l.sem <- struct{}{}
+	defer l.unlock()
 	return l.p.Stats()
 }
 
-// Close closes the pipeline (committing).
+// Close closes the pipeline (committing) and wakes every SubmitInOrder
+// call still waiting for its turn with ErrClosed. It waits for the core.
 func (l *Live[E]) Close() error {
-	l.mu.Lock()
-	defer l.mu.Unlock()
+	if err := l.lock(context.Background()); err != nil {
+		return err
+	}
+	defer l.unlock()
+	l.closed = true
+	close(l.moved)
+	l.moved = make(chan struct{})
 	return l.p.Close()
+}
+
+// ResetNewest sets the newest event time and the watermark; see
+// Pipeline.ResetNewest.
+func (l *Live[E]) ResetNewest(ctx context.Context, newest int64) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.ResetNewest(newest)
+}
+
+// Lookup is Pipeline.Lookup on the core: safe while other goroutines
+// submit events.
+func (l *Live[E]) Lookup(ctx context.Context, entity, key string, t int64, dst []float64) ([]float64, bool, error) {
+	if err := l.lock(ctx); err != nil {
+		return dst, false, err
+	}
+	defer l.unlock()
+	return l.p.Lookup(entity, key, t, dst)
+}
+
+// Erase erases one entity key; see Pipeline.Erase. It runs between two
+// submissions.
+func (l *Live[E]) Erase(ctx context.Context, entity, key string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Erase(entity, key)
+}
+
+// LiftErasure lifts an erasure; see Pipeline.LiftErasure. It runs between
+// two submissions.
+func (l *Live[E]) LiftErasure(ctx context.Context, entity, key string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.LiftErasure(entity, key)
+}
+
+// Snapshot writes a consistent copy of the state to dir; see
+// Pipeline.Snapshot. Submissions wait while it runs.
+func (l *Live[E]) Snapshot(ctx context.Context, dir string) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.Snapshot(dir)
+}
+
+// Entities returns the entity names and, for each, its features' names
+// (without the entity prefix), in row order.
+func (l *Live[E]) Entities() (names []string, features [][]string) {
+	for _, es := range l.p.ents {
+		names = append(names, es.ent.Name)
+		fs := make([]string, len(es.ent.Features))
+		for i, f := range es.ent.Features {
+			fs[i] = f.Name
+		}
+		features = append(features, fs)
+	}
+	return names, features
+}
+
+// ResumeSeq returns the sequence number the last commit covers events
+// up to: after a crash, events from there on were lost and must be sent
+// again. See Pipeline.ResumeSeq.
+func (l *Live[E]) ResumeSeq() uint64 {
+	l.sem <- struct{}{}
+	defer l.unlock()
+	return l.p.ResumeSeq()
+}
+
+// runCallbackName is runCallback's symbol name, whatever the module path.
+var runCallbackName = runtime.FuncForPC(reflect.ValueOf(runCallback).Pointer()).Name()
+
+// calledFromEmit reports whether the calling goroutine's stack contains
+// runCallback, the frame through which the pipeline calls user callbacks.
+func calledFromEmit() bool {
+	pcs := make([]uintptr, 64)
+	for {
+		n := runtime.Callers(2, pcs)
+		if n < len(pcs) {
+			pcs = pcs[:n]
+			break
+		}
+		pcs = make([]uintptr, 2*len(pcs))
+	}
+	frames := runtime.CallersFrames(pcs)
+	for {
+		f, more := frames.Next()
+		if f.Function == runCallbackName {
+			return true
+		}
+		if !more {
+			return false
+		}
+	}
 }

@@ -181,7 +181,7 @@ func TestDefinitionReset(t *testing.T) {
 // stop the pipeline.
 func TestCorruptRecordNamesKey(t *testing.T) {
 	dir := t.TempDir()
-	p, err := Open(loginSpec(nil), Options{Dir: dir})
+	p, err := Open(loginSpec(nil), Options{Dir: dir, ItemKey: testItemKey})
 	require.NoError(t, err)
 	// A committed record, then its bytes overwritten behind the commit
 	// protocol (the record count stays right).

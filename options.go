@@ -1,8 +1,10 @@
 package tallyward
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
+	"log/slog"
 	"time"
 
 	"github.com/cockroachdb/pebble/v2/vfs"
@@ -71,13 +73,33 @@ type Options struct {
 
 	// MaxDisorder is how far behind the newest event time an event may
 	// arrive and still not be late: the watermark is the newest event time
-	// minus MaxDisorder. Default: 0.
+	// minus MaxDisorder. Stored state is shaped by it (aggregates keep
+	// events exact for that long), so the store records it and a later
+	// change is a definition change of every feature (see ResetFeatures).
+	// Default: 0.
 	MaxDisorder time.Duration
 
 	// FutureSkew rejects events more than this far ahead of the newest
 	// event time seen (and, in live mode, of the injected clock).
 	// Default: 1 hour.
 	FutureSkew time.Duration
+
+	// PastSkew, in live mode, rejects events more than this far behind the
+	// injected clock (reason PastTime): with a correct clock, an event
+	// from months ago is a broken producer, not history. Longer than the
+	// usual retention of a message log, so a consumer catching up on its
+	// backlog is not refused. Replay has no clock and is not affected.
+	// Negative disables the check. Default: 30 days.
+	PastSkew time.Duration
+
+	// EarliestTime and LatestTime bound plausible event times (Unix
+	// nanoseconds, inclusive). An event outside them is rejected (reason
+	// OutOfRange) before it can move the newest event time: one stray
+	// time of -1, of seconds read as nanoseconds, or of the year 2200
+	// would otherwise make every later event late or too far in the
+	// future. Set math.MinInt64 or math.MaxInt64 to lift a bound.
+	// Default: 2000-01-01T00:00:00Z and 2100-01-01T00:00:00Z.
+	EarliestTime, LatestTime int64
 
 	// Lateness is the policy for late events. Default: DropLate.
 	Lateness Lateness
@@ -142,12 +164,37 @@ type Options struct {
 	// differ from the given one: on Open their state is discarded and
 	// starts empty, and Notices says a backfill is needed. A changed, new
 	// or removed feature that is not listed makes Open fail with
-	// ErrDefinitionChanged. Default: none.
+	// ErrDefinitionChanged; a changed MaxDisorder changes every feature.
+	// A name that is neither a feature of the spec nor a stored one makes
+	// Open fail with ErrUnknownFeature. Default: none.
 	ResetFeatures []string
+
+	// ItemKey is the 16-byte key Feature.Item values are hashed with
+	// (SipHash-2-4), so that the item hashes kept in other entities'
+	// records cannot be tested against candidate items without it. A new
+	// store made without ItemKey draws a random key and keeps it (its
+	// snapshots carry it; Pipeline.ItemKey returns it), so whoever holds
+	// the store holds the key; a store made with ItemKey keeps only a
+	// check value, and every later Open must pass the same key. Set it
+	// also to give two stores the same rows, e.g. a backfill compared
+	// with a live store. A store made before keyed hashing keeps hashing
+	// without a key (Notices says so) and refuses a key. Default: nil.
+	ItemKey []byte
+
+	// UnkeyedItems makes a new store hash items without a key (XXH64),
+	// like stores made before keyed hashing: only to build a store that
+	// must give the same rows as such an older one. Default: false.
+	UnkeyedItems bool
 
 	// MetricsClock times commits for Stats. It is read for metrics only,
 	// never for any decision about data. Default: SystemClock.
 	MetricsClock Clock
+
+	// Logger receives what the pipeline has to say beyond its return
+	// values: features reset on Open, events the live driver's Run rejects
+	// (which it counts and does not return), and the storage engine's own
+	// messages (attribute component=pebble). Default: discard.
+	Logger *slog.Logger
 
 	// IdleAdvance, in live mode, raises the watermark to clock − MaxDisorder
 	// − IdleAdvance once no event has arrived for IdleAdvance of clock
@@ -156,16 +203,34 @@ type Options struct {
 	IdleAdvance time.Duration
 }
 
+// Default plausible event times: 2000-01-01 and 2100-01-01, UTC.
+const (
+	defaultEarliest = int64(946_684_800) * int64(time.Second)
+	defaultLatest   = int64(4_102_444_800) * int64(time.Second)
+)
+
 // EnsureDefaults fills zero fields with their defaults.
 func (o *Options) EnsureDefaults() {
 	if o.FutureSkew == 0 {
 		o.FutureSkew = time.Hour
+	}
+	if o.PastSkew == 0 {
+		o.PastSkew = 30 * 24 * time.Hour
+	}
+	if o.EarliestTime == 0 {
+		o.EarliestTime = defaultEarliest
+	}
+	if o.LatestTime == 0 {
+		o.LatestTime = defaultLatest
 	}
 	if o.CommitEvery == 0 {
 		o.CommitEvery = 100_000
 	}
 	if o.MetricsClock == nil {
 		o.MetricsClock = SystemClock{}
+	}
+	if o.Logger == nil {
+		o.Logger = slog.New(slog.DiscardHandler)
 	}
 }
 
@@ -183,6 +248,15 @@ func (o *Options) Validate() error {
 	}
 	if o.FutureSkew < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: FutureSkew %v < 0", o.FutureSkew))
+	}
+	if lo, hi := cmp.Or(o.EarliestTime, defaultEarliest), cmp.Or(o.LatestTime, defaultLatest); lo > hi {
+		errs = append(errs, fmt.Errorf("tallyward: EarliestTime %d > LatestTime %d", lo, hi))
+	}
+	if o.ItemKey != nil && len(o.ItemKey) != ItemKeySize {
+		errs = append(errs, fmt.Errorf("tallyward: ItemKey has %d bytes, want %d", len(o.ItemKey), ItemKeySize))
+	}
+	if o.ItemKey != nil && o.UnkeyedItems {
+		errs = append(errs, errors.New("tallyward: ItemKey and UnkeyedItems are both set"))
 	}
 	if o.CacheBytes < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: CacheBytes %d < 0", o.CacheBytes))

@@ -43,11 +43,15 @@ func (p *Pipeline[E]) Peek(entity, key string, t int64, dst []float64) ([]float6
 	for j, a := range aggs {
 		at := t
 		if es.ent.Features[j].BeforeEvent {
-			at--
+			if at == math.MinInt64 {
+				a = es.zero[j] // nothing is before the first instant
+			} else {
+				at--
+			}
 		}
 		var item uint64 // as the pipeline hashes an event without an item
 		if es.ent.Features[j].Item != nil {
-			item = hashItem("")
+			item = p.items.hash("")
 		}
 		dst = append(dst, a.At(at, item))
 	}

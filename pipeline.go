@@ -2,13 +2,16 @@ package tallyward
 
 import (
 	"errors"
+	"fmt"
 	"math"
 	"slices"
+	"sync/atomic"
 	"time"
 
 	"github.com/google/btree"
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/store"
+	"github.com/tallyward/tallyward/sketch"
 )
 
 // Pipeline computes the features of a Spec over a sequence of events and
@@ -34,17 +37,34 @@ type Pipeline[E any] struct {
 	maxT    int64
 	wm      int64
 	flushed bool
-	// futureRejected holds the sequence numbers of events rejected as too
-	// far in the future whose seq >= the resume point, so a restart that
-	// re-reads them rejects them again even though the newest time has
-	// moved on. Sorted.
-	futureRejected []uint64
+	// skipReread holds the sequence numbers, at or after the resume
+	// point, of events whose fate hung on the live clock: rejected against
+	// it, or dropped as late only because an idle advance had raised the
+	// watermark past the newest time. A restart that re-reads them skips
+	// them; every other re-read event is judged again exactly, from rr.
+	// Sorted, and at most maxSkipReread long so the progress record
+	// rewritten at each commit stays small whatever the input.
+	skipReread []uint64
+	// rr is the newest event time as re-reading rebuilds it (seq <
+	// reread): restored as it was just before the resume point.
+	rr newestTime
+	// The last ResetNewest, so that re-reading across it applies it at
+	// the same point: before event resetSeq, the newest time became
+	// resetTo. resetWm is the highest watermark before it: events read
+	// before the reset and below it were emitted or late then, so a
+	// re-read must not hold them again although the watermark went down.
+	hasReset       bool
+	resetSeq       uint64
+	resetTo        newestTime
+	resetWm        int64
 	lastCommitSeen uint64
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
+	commitHist                   [len(CommitBuckets) + 1]uint64
 
-	c  counters
-	in inputs // scratch for the current event
+	items itemHashing // how Feature.Item values are hashed; set on Open
+	c     counters
+	in    inputs // scratch for the current event
 	// recs[i] is the record of entity i that apply just updated (nil if
 	// none), so the Eager row reads it without a second lookup.
 	recs    []*record
@@ -53,8 +73,19 @@ type Pipeline[E any] struct {
 	batch   []*held[E]              // Settled: scratch for one timestamp's events
 	slab    holdSlab[E]             // Settled: where held events are carved from
 	closed  bool
-	err     error    // sticky storage error
-	notices []string // what Open did beyond the usual (resets)
+	inBatch bool // Live.SubmitBatch: no automatic commit inside a batch
+	// tieItems holds, under a keyed item hash in Settled mode, each
+	// feature's unkeyed item hash for the canonical tie-break; scratch.
+	tieItems []uint64
+	dryRun   bool // precheck: extract counts nothing
+	// emitting is set while Spec.Emit or Spec.OnLate runs, so a call back
+	// into the pipeline is refused (ErrReentered) rather than corrupting
+	// the row being emitted. Atomic because Live reads it from goroutines
+	// waiting for the lock.
+	emitting atomic.Bool
+	inEvent  bool     // process is running (same goroutine only)
+	err      error    // sticky storage error
+	notices  []string // what Open did beyond the usual (resets)
 	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
 	beforeCommit func(CommitPoint) ([]byte, error)
 }
@@ -133,6 +164,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	}
 	p.in = inputs{keys: make([]string, len(p.ents)), on: make([]bool, p.nfeat), v: make([]float64, p.nfeat), item: make([]uint64, p.nfeat)}
 	p.vals = make([]float64, p.nfeat)
+	p.tieItems = make([]uint64, p.nfeat)
 	p.recs = make([]*record, len(p.ents))
 	if err := p.restore(st.Mark()); err != nil {
 		st.Close()
@@ -145,6 +177,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 	if err := p.checkDefinitions(); err != nil {
 		st.Close()
 		return nil, err
+	}
+	for _, n := range p.notices {
+		opts.Logger.Warn(n)
 	}
 	if len(p.notices) > 0 && !opts.ReadOnly {
 		// Make the reset durable before any event is processed, with the
@@ -191,8 +226,9 @@ func (p *Pipeline[E]) Watermark() int64 { return p.wm }
 //
 // A rejected event returns a *RejectError; a late event that is dropped
 // or diverted returns ErrLate. Both are counted and leave state untouched;
-// the caller may log them and carry on. Any other error is a storage
-// failure that stops the pipeline.
+// the caller may log them and carry on. A call from inside Spec.Emit or
+// Spec.OnLate returns ErrReentered and changes nothing. Any other error is
+// a storage failure that stops the pipeline.
 func (p *Pipeline[E]) Process(e E) error {
 	_, err := p.process(e, 0, nil, false)
 	return err
@@ -209,6 +245,8 @@ func (p *Pipeline[E]) Score(e E, dst []float64) ([]float64, error) {
 
 func (p *Pipeline[E]) usable() error {
 	switch {
+	case p.inEvent || p.emitting.Load():
+		return ErrReentered
 	case p.closed:
 		return ErrClosed
 	case p.err != nil:
@@ -222,6 +260,11 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if err := p.usable(); err != nil {
 		return dst, err
 	}
+	// The spec's functions (Time, Key, Where, Value, Item) run inside
+	// this call too; one calling back in would overwrite the event being
+	// extracted.
+	p.inEvent = true
+	defer func() { p.inEvent = false }()
 	seq := p.seen
 	p.seen++
 	if seq < p.reread {
@@ -232,18 +275,26 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		p.c.late++
 		return dst, ErrFlushed
 	}
-	if err := p.extract(e, seq, now); err != nil {
+	before := newestTime{p.hasMax, p.maxT}
+	if err := p.extract(e, seq, now, before); err != nil {
+		var re *RejectError
+		if errors.As(err, &re) && (re.Reason == PastTime || re.Reason == FutureTime && !re.FromNewest) {
+			p.skip(seq)
+		}
 		return dst, err
 	}
 	t := p.in.t
 	late := t < p.wm
 	if late {
 		p.c.late++
+		if p.opts.Lateness != ApplyLate && (!p.hasMax || t > p.maxT) {
+			p.skip(seq) // late only because the watermark was raised past the newest time
+		}
 		switch p.opts.Lateness {
 		case DropLate:
 			return dst, ErrLate
 		case DivertLate:
-			p.spec.OnLate(e)
+			runCallback(&p.emitting, func() { p.spec.OnLate(e) })
 			return dst, ErrLate
 		}
 	}
@@ -260,55 +311,93 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			dst = append(dst, p.vals...)
 		}
 	} else {
-		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
+		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
+		h.before = before
+		p.held.ReplaceOrInsert(h)
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
-	if p.err == nil && !p.opts.ReadOnly && (p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
-		// Off the caller's path: the write runs while processing goes
-		// on; only the next commit waits for it.
-		if err := p.commit(nil, true); err != nil {
-			return dst, err
-		}
+	if err := p.autoCommit(); err != nil {
+		return dst, err
 	}
 	return dst, p.err
 }
 
+// autoCommit commits if Options.CommitEvery events came since the last
+// commit (and no batch is in progress).
+func (p *Pipeline[E]) autoCommit() error {
+	if p.err == nil && !p.inBatch && !p.opts.ReadOnly &&
+		(p.opts.CommitEvery > 0 && p.seen-p.lastCommitSeen >= uint64(p.opts.CommitEvery) || p.store.OverBudget()) {
+		// Off the caller's path: the write runs while processing goes
+		// on; only the next commit waits for it.
+		return p.commit(nil, true)
+	}
+	return nil
+}
+
 // reconsume handles an event re-read after a restart (seq < reread): it
 // was counted before, and either handled (time below the stored
-// watermark, or rejected) or still held; held ones are held again.
+// watermark, or rejected) or still held; held ones are held again. Its
+// fate is decided as it was the first time: by the newest time as it was
+// then (rr, rebuilt event by event), or by the skip list where the live
+// clock decided.
 func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
-	if _, found := slices.BinarySearch(p.futureRejected, seq); found {
+	if p.hasReset && seq == p.resetSeq {
+		p.rr = p.resetTo
+	}
+	if _, found := slices.BinarySearch(p.skipReread, seq); found {
 		return nil
 	}
-	if err := p.extract(e, seq, 0); err != nil {
+	before := p.rr
+	if err := p.extract(e, seq, 0, before); err != nil {
 		return nil // rejected the first time too; already counted
 	}
-	if p.opts.Mode == Settled && p.in.t >= p.wm {
-		p.held.ReplaceOrInsert(p.slab.hold(seq, p.in.tieBreak(), e, &p.in))
+	if !p.rr.has || p.in.t > p.rr.t {
+		p.rr = newestTime{true, p.in.t}
+	}
+	w := p.wm
+	if p.hasReset && seq < p.resetSeq {
+		w = max(w, p.resetWm)
+	}
+	if p.opts.Mode == Settled && p.in.t >= w {
+		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
+		h.before = before
+		p.held.ReplaceOrInsert(h)
 	}
 	return nil
 }
 
 // extract fills p.in from e and validates it. Nothing is touched on error
-// except the rejection counters.
-func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
+// except the rejection counters. now is the live clock (0: none); newest
+// is the newest event time before e, which the future check is against.
+func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) error {
 	t := p.spec.Time(e)
 	p.in.t = t
-	reject := func(r Reason, feature string) error {
-		if seq >= p.reread {
+	reject := func(r Reason, feature string, limit int64, fromNewest bool) error {
+		if seq >= p.reread && !p.dryRun {
 			p.c.rejected[r]++
 		}
-		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature}
+		return &RejectError{Reason: r, Seq: seq, Time: t, Feature: feature, Limit: limit, FromNewest: fromNewest}
 	}
 	if t == 0 {
-		return reject(ZeroTime, "")
+		return reject(ZeroTime, "", 0, false)
+	}
+	if t < p.opts.EarliestTime {
+		return reject(OutOfRange, "", p.opts.EarliestTime, false)
+	}
+	if t > p.opts.LatestTime {
+		return reject(OutOfRange, "", p.opts.LatestTime, false)
 	}
 	skew := int64(p.opts.FutureSkew)
-	if (p.hasMax && t > sat.Add(p.maxT, skew)) || (now != 0 && t > sat.Add(now, skew)) {
-		if seq >= p.reread {
-			p.futureRejected = append(p.futureRejected, seq)
+	if newest.has && t > sat.Add(newest.t, skew) {
+		return reject(FutureTime, "", sat.Add(newest.t, skew), true)
+	}
+	if now != 0 {
+		if lim := sat.Add(now, skew); t > lim {
+			return reject(FutureTime, "", lim, false)
 		}
-		return reject(FutureTime, "")
+		if lim := sat.Sub(now, int64(p.opts.PastSkew)); p.opts.PastSkew > 0 && t < lim {
+			return reject(PastTime, "", lim, false)
+		}
 	}
 	for i, es := range p.ents {
 		key := es.ent.Key(e)
@@ -318,11 +407,18 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 			fi := es.first + j
 			on := key != "" && (f.Where == nil || f.Where(e))
 			p.in.on[fi] = on
-			p.in.v[fi], p.in.item[fi] = 0, 0
+			p.in.v[fi], p.in.item[fi], p.tieItems[fi] = 0, 0, 0
 			if key != "" && f.Item != nil {
 				// Extracted even when the event does not update the
 				// feature: a frequency answers about the asking item.
-				p.in.item[fi] = hashItem(f.Item(e))
+				s := f.Item(e)
+				p.in.item[fi] = p.items.hash(s)
+				if p.items.keyed && p.opts.Mode == Settled {
+					// The canonical order must not depend on the store's
+					// item key, or two stores (a backfill and the live
+					// one) would emit tied rows in different orders.
+					p.tieItems[fi] = sketch.HashString(s)
+				}
 			}
 			if !on {
 				continue
@@ -332,8 +428,8 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64) error {
 				if f.Value != nil {
 					v = f.Value(e)
 				}
-				if math.IsNaN(v) || math.IsInf(v, 0) {
-					return reject(BadValue, p.names[fi])
+				if !(math.Abs(v) <= MaxValue) {
+					return reject(BadValue, p.names[fi], 0, false)
 				}
 				p.in.v[fi] = v
 			}
@@ -412,7 +508,11 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 		for j, a := range aggs {
 			t := in.t
 			if es.ent.Features[j].BeforeEvent {
-				t--
+				if t == math.MinInt64 {
+					a = es.zero[j] // nothing is before the first instant; t-1 would wrap
+				} else {
+					t--
+				}
 			}
 			out[es.first+j] = a.At(t, in.item[es.first+j])
 		}
@@ -422,8 +522,19 @@ func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
 func (p *Pipeline[E]) emit(seq uint64, t int64, e E, late bool) {
 	p.c.emitted++
 	if p.spec.Emit != nil {
-		p.spec.Emit(Row[E]{Seq: seq, Time: t, Event: e, Late: late, Values: p.vals})
+		runCallback(&p.emitting, func() { p.spec.Emit(Row[E]{Seq: seq, Time: t, Event: e, Late: late, Values: p.vals}) })
 	}
+}
+
+// runCallback runs a user callback with flag set. Live recognises a call
+// made from inside a callback by this frame on the caller's stack, so it
+// must stay a named, non-inlined function.
+//
+//go:noinline
+func runCallback(flag *atomic.Bool, fn func()) {
+	flag.Store(true)
+	defer flag.Store(false)
+	fn()
 }
 
 // raiseWatermark moves the watermark up to w (never down) and, in Settled
@@ -500,18 +611,68 @@ func (p *Pipeline[E]) Flush() error {
 	return nil
 }
 
-// Commit durably stores all state changed since the last commit together
-// with the source position (and the caller's cursor, if not nil; nil keeps
-// the previous one), in one synced batch.
-func (p *Pipeline[E]) Commit(cursor []byte) error { return p.commit(cursor, false) }
-
-// commit is Commit; async leaves the write to the store's background
-// goroutine (automatic commits: the caller does not need it durable on
-// return, and a crash before it lands resumes from the one before).
-func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
+// ResetNewest sets the newest event time to newest and the watermark to
+// newest − MaxDisorder (lower or higher than now), then commits. It is
+// the way out, short of deleting the store, when a stray event within
+// [EarliestTime, LatestTime] set a wrong newest time: one far ahead makes
+// every later event late (Stats.Late climbs while Stats.Applied stands
+// still); one far behind, as the first event, makes every later event a
+// FutureTime rejection whose error names the newest time as its limit.
+// The newest time and the watermark are durable, so restarting does not
+// help, and this is the only call that moves the watermark back.
+//
+// What it does not undo:
+//   - records the stray event was applied to (Eager mode, ApplyLate)
+//     keep it, and an aggregate refuses updates far behind its own newest
+//     time (Stats.TooOld): Erase those keys and LiftErasure them, or let
+//     them expire;
+//   - Settled events held above the new watermark stay held until it
+//     passes them (Flush emits them at the end of a replay);
+//   - rows already emitted stand, and events dropped as late are gone:
+//     re-feed them from the source, as new events, if they matter;
+//   - TTL expiry follows the newest time, so lowering it can revive
+//     records not yet swept.
+//
+// newest must be within [EarliestTime, LatestTime]; after Flush it is
+// refused with ErrFlushed.
+func (p *Pipeline[E]) ResetNewest(newest int64) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	if p.flushed {
+		return ErrFlushed
+	}
+	if newest < p.opts.EarliestTime || newest > p.opts.LatestTime || newest == 0 {
+		return fmt.Errorf("tallyward: ResetNewest(%d): %w [%d, %d]", newest, ErrOutOfRange, p.opts.EarliestTime, p.opts.LatestTime)
+	}
+	if !p.hasReset {
+		p.resetWm = p.wm
+	}
+	p.hasMax, p.maxT = true, newest
+	p.hasReset, p.resetSeq, p.resetTo, p.resetWm = true, p.seen, newestTime{true, newest}, max(p.resetWm, p.wm)
+	if w := sat.Sub(newest, int64(p.opts.MaxDisorder)); w < p.wm {
+		p.wm = w
+	} else {
+		p.raiseWatermark(w)
+	}
+	return p.Commit(nil)
+}
+
+// Commit durably stores all state changed since the last commit together
+// with the source position (and the caller's cursor, if not nil; nil keeps
+// the previous one), in one synced batch.
+func (p *Pipeline[E]) Commit(cursor []byte) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	return p.commit(cursor, false)
+}
+
+// commit is Commit without the re-entry check (the automatic commit runs
+// inside process); async leaves the write to the store's background
+// goroutine (automatic commits: the caller does not need it durable on
+// return, and a crash before it lands resumes from the one before).
+func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if p.opts.ReadOnly {
 		return ErrReadOnly
 	}
@@ -526,13 +687,19 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
 	}
+	resumeNewest := newestTime{p.hasMax, p.maxT}
 	p.held.Ascend(func(h *held[E]) bool {
-		m.Resume = min(m.Resume, h.seq)
+		if h.seq < m.Resume {
+			m.Resume, resumeNewest = h.seq, h.before
+		}
 		return true
 	})
-	// Only rejections at or after the resume point can be re-read.
-	i, _ := slices.BinarySearch(p.futureRejected, m.Resume)
-	p.futureRejected = slices.Delete(p.futureRejected, 0, i)
+	// Only events at or after the resume point can be re-read.
+	i, _ := slices.BinarySearch(p.skipReread, m.Resume)
+	p.skipReread = slices.Delete(p.skipReread, 0, i)
+	if p.hasReset && p.resetSeq < m.Resume {
+		p.hasReset = false
+	}
 	if err := p.runCommitHook(&m); err != nil {
 		return err
 	}
@@ -543,7 +710,9 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	}
 	p.c.expired += uint64(n)
 	p.c.live -= int64(n)
-	m.Extra = p.progress().append(nil)
+	pr := p.progress()
+	pr.resumeNewest = resumeNewest
+	m.Extra = pr.append(nil)
 	write := p.store.Commit
 	if async {
 		write = p.store.CommitAsync
@@ -555,6 +724,7 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	p.lastCommitSeen = p.seen
 	p.lastCommitNanos = p.opts.MetricsClock.Now() - began
 	p.commitNanos += p.lastCommitNanos
+	p.commitHist[commitBucket(time.Duration(p.lastCommitNanos))]++
 	return nil
 }
 
@@ -562,6 +732,9 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 func (p *Pipeline[E]) Close() error {
 	if p.closed {
 		return nil
+	}
+	if p.inEvent || p.emitting.Load() {
+		return ErrReentered
 	}
 	var err error
 	if p.err == nil && !p.opts.ReadOnly {
@@ -573,10 +746,27 @@ func (p *Pipeline[E]) Close() error {
 
 // held is an event waiting for the watermark in Settled mode.
 type held[E any] struct {
-	seq uint64
-	tie uint64
-	e   E
-	in  inputs
+	seq    uint64
+	tie    uint64
+	e      E
+	in     inputs
+	before newestTime // the newest event time just before it arrived
+}
+
+// newestTime is an optional newest event time.
+type newestTime struct {
+	has bool
+	t   int64
+}
+
+// maxSkipReread bounds Pipeline.skipReread. Past it, a re-read event
+// whose fate hung on the live clock is judged by event times alone.
+const maxSkipReread = 1024
+
+func (p *Pipeline[E]) skip(seq uint64) {
+	if len(p.skipReread) < maxSkipReread {
+		p.skipReread = append(p.skipReread, seq)
+	}
 }
 
 // heldLess orders held events canonically: by time, then by a hash of the
@@ -591,4 +781,49 @@ func heldLess[E any](a, b *held[E]) bool {
 		return a.tie < b.tie
 	}
 	return a.seq < b.seq
+}
+
+// precheck reports the first of es, taken as the next events in order,
+// that process would refuse (rejected, late under a policy that does not
+// apply late events, or after Flush), as a *BatchError, without consuming
+// or counting anything: so a batch can be taken whole or not at all.
+func (p *Pipeline[E]) precheck(es []E, now int64) error {
+	if err := p.usable(); err != nil {
+		return err
+	}
+	hasMax, maxT, wm := p.hasMax, p.maxT, p.wm
+	for i, e := range es {
+		seq := p.seen + uint64(i)
+		if seq < p.reread {
+			continue // a re-read is never refused
+		}
+		if p.flushed {
+			return &BatchError{Index: i, Err: ErrFlushed}
+		}
+		p.dryRun = true
+		err := p.extract(e, seq, now, newestTime{hasMax, maxT})
+		p.dryRun = false
+		if err != nil {
+			return &BatchError{Index: i, Err: err}
+		}
+		t := p.in.t
+		if t < wm && p.opts.Lateness != ApplyLate {
+			return &BatchError{Index: i, Err: &LateError{Time: t, Watermark: wm}}
+		}
+		if !hasMax || t > maxT {
+			hasMax, maxT = true, t
+		}
+		wm = max(wm, sat.Sub(maxT, int64(p.opts.MaxDisorder)))
+	}
+	return nil
+}
+
+// tieItemHashes is the item hash of each feature that the canonical
+// tie-break folds: the unkeyed one, whatever the store's item key, so the
+// order of tied events is the same in every store.
+func (p *Pipeline[E]) tieItemHashes() []uint64 {
+	if p.items.keyed {
+		return p.tieItems
+	}
+	return p.in.item
 }

@@ -155,7 +155,7 @@ func TestReplayEqualsLive(t *testing.T) {
 				go func() {
 					defer wg.Done()
 					for i := w; i < len(evs); i += workers {
-						if err := live.SubmitInOrder(uint64(i), evs[i]); err != nil && !benign(err) {
+						if err := live.SubmitInOrder(context.Background(), uint64(i), evs[i]); err != nil && !benign(err) {
 							t.Error(err)
 							return
 						}
@@ -163,8 +163,8 @@ func TestReplayEqualsLive(t *testing.T) {
 				}()
 			}
 			wg.Wait()
-			require.NoError(t, live.Flush())
-			require.NoError(t, live.Commit(nil))
+			require.NoError(t, live.Flush(context.Background()))
+			require.NoError(t, live.Commit(context.Background(), nil))
 
 			require.Len(t, replayed.rows, len(evs))
 			require.Equal(t, replayed.rows, lived.rows)
@@ -212,14 +212,14 @@ func TestLiveIdleAdvance(t *testing.T) {
 	p := openTest(t, loginSpec(rows.add), Options{Mode: Settled, MaxDisorder: 5 * time.Second, IdleAdvance: 10 * time.Second})
 	clock := &fakeClock{now: t0}
 	live := NewLive(p, clock)
-	require.NoError(t, live.Submit(login{T: t0, Account: "a", Addr: "x"}))
-	require.NoError(t, live.Tick())
+	require.NoError(t, live.Submit(context.Background(), login{T: t0, Account: "a", Addr: "x"}))
+	require.NoError(t, live.Tick(context.Background()))
 	require.Empty(t, rows.rows, "held until the watermark passes")
 	clock.now += int64(9 * time.Second)
-	require.NoError(t, live.Tick())
+	require.NoError(t, live.Tick(context.Background()))
 	require.Empty(t, rows.rows, "not idle long enough")
 	clock.now += int64(7 * time.Second) // idle 16 s: watermark = now - 5 s - 10 s > t0
-	require.NoError(t, live.Tick())
+	require.NoError(t, live.Tick(context.Background()))
 	require.Len(t, rows.rows, 1)
 }
 

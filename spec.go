@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"strings"
 	"time"
+
+	"github.com/tallyward/tallyward/window"
 )
 
 // Spec describes what a pipeline computes over events of type E.
@@ -46,6 +48,9 @@ type Entity[E any] struct {
 // Feature is one aggregate kept per entity key.
 type Feature[E any] struct {
 	// Name identifies the feature within its entity, e.g. "failed_10m".
+	// Rows and stored definitions call it "<entity>.<feature>", which must
+	// be unique across the spec: entity "a" with feature "b.c" and entity
+	// "a.b" with feature "c" are refused.
 	Name string
 	// Kind is the aggregate and its parameters, e.g. SlidingCount{...}.
 	Kind Kind
@@ -53,7 +58,8 @@ type Feature[E any] struct {
 	// event. Rows report the feature for every event regardless.
 	Where func(E) bool
 	// Value extracts the number aggregated by value kinds. Nil means 1.
-	// NaN and infinite values reject the whole event.
+	// A value that is NaN, infinite or beyond ±MaxValue rejects the whole
+	// event (reason BadValue).
 	Value func(E) float64
 	// Item extracts the thing counted by item kinds (distinct counts,
 	// frequencies). Nil means the empty item.
@@ -63,6 +69,14 @@ type Feature[E any] struct {
 	// default includes them.
 	BeforeEvent bool
 }
+
+// MaxValue bounds the magnitude of Feature.Value. It is the bound the
+// decayed statistics need to keep variance from overflowing (package
+// window's MaxDecayedValue), applied to every kind alike so that no kind
+// silently refuses a value another takes, and so that a sliding sum of
+// values within it cannot reach ±Inf: 2^1024 / 1e30 ≈ 1.8e278 events
+// would be needed.
+const MaxValue = window.MaxDecayedValue
 
 // Row is the features of one event.
 type Row[E any] struct {
@@ -92,7 +106,9 @@ type Row[E any] struct {
 // NewAggregate returns an empty aggregate. horizon is how far behind its
 // newest event an aggregate must still answer as-of queries exactly and
 // accept events (the pipeline's MaxDisorder plus 1 ns); events older than
-// that may be folded coarsely or refused.
+// that may be folded coarsely or refused. The store records MaxDisorder,
+// and a change of it is a definition change of every feature, so an
+// aggregate is only ever decoded under the horizon it was built with.
 //
 // # The encoding contract
 //
@@ -134,11 +150,13 @@ type HorizonChecker interface {
 type Inputs uint8
 
 const (
-	// TakesValue: the kind aggregates Feature.Value (1 when nil). NaN and
-	// infinite values reject the whole event before any state changes.
+	// TakesValue: the kind aggregates Feature.Value (1 when nil). NaN,
+	// infinite values and values beyond ±MaxValue reject the whole event
+	// before any state changes.
 	TakesValue Inputs = 1 << iota
 	// TakesItem: the kind counts Feature.Item, which the pipeline hashes
-	// to 64 bits before Add and At see it.
+	// to 64 bits before Add and At see it, with the store's item key (see
+	// the package doc, Item hashes).
 	TakesItem
 )
 
@@ -176,6 +194,10 @@ func (s *Spec[E]) validate(horizon int64) error {
 		errs = append(errs, errors.New("tallyward: Spec.Entities is empty"))
 	}
 	seen := map[string]bool{}
+	// Rows, stored definitions and Options.ResetFeatures name a feature
+	// "entity.feature"; names may contain dots, so two different pairs
+	// can join to one name. Such a spec is refused.
+	joined := map[string][2]string{}
 	for i, ent := range s.Entities {
 		switch {
 		case !validName(ent.Name):
@@ -200,6 +222,12 @@ func (s *Spec[E]) validate(horizon int64) error {
 				errs = append(errs, fmt.Errorf("%s defined twice", where))
 			}
 			fseen[f.Name] = true
+			if name := ent.Name + "." + f.Name; validName(ent.Name) && validName(f.Name) {
+				if prev, ok := joined[name]; ok && prev != [2]string{ent.Name, f.Name} {
+					errs = append(errs, fmt.Errorf("tallyward: entity %q feature %q and entity %q feature %q both read %q: rename one", prev[0], prev[1], ent.Name, f.Name, name))
+				}
+				joined[name] = [2]string{ent.Name, f.Name}
+			}
 			if f.Kind == nil {
 				errs = append(errs, fmt.Errorf("%s: Kind is required", where))
 				continue

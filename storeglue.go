@@ -3,6 +3,7 @@ package tallyward
 import (
 	"errors"
 	"fmt"
+	"log/slog"
 
 	"github.com/tallyward/tallyward/internal/store"
 )
@@ -41,10 +42,16 @@ var (
 const StoreFatalExitCode = store.FatalExitCode
 
 func openStore(opts Options) (*store.Store, error) {
-	return store.Open(store.Options{
+	so := store.Options{
 		Dir: opts.Dir, FS: opts.FS, CacheBytes: opts.CacheBytes, IngestThreshold: opts.IngestThreshold,
 		BlockCacheBytes: opts.BlockCacheBytes, MemTableBytes: opts.MemTableBytes, ReadOnly: opts.ReadOnly,
-	})
+	}
+	// The default logger discards: leave the store's own quiet default
+	// rather than format every Pebble message for nothing.
+	if opts.Logger != nil && opts.Logger.Handler() != slog.DiscardHandler {
+		so.Logger = store.SlogLogger(opts.Logger)
+	}
+	return store.Open(so)
 }
 
 // checkStored compares the readable store with the progress of its last

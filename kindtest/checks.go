@@ -196,14 +196,14 @@ func checkReplayLive(t tb, c *Config) {
 				go func() {
 					defer wg.Done()
 					for n := w; n < len(evs); n += workers {
-						if err := live.SubmitInOrder(uint64(n), evs[n]); err != nil && errs[w] == nil {
+						if err := live.SubmitInOrder(context.Background(), uint64(n), evs[n]); err != nil && errs[w] == nil {
 							errs[w] = fmt.Errorf("event %d: %w", n, err)
 						}
 					}
 				}()
 			}
 			wg.Wait()
-			err := errors.Join(append(errs, live.Flush(), live.Commit(nil))...)
+			err := errors.Join(append(errs, live.Flush(context.Background()), live.Commit(context.Background(), nil))...)
 			ls := live.Stats()
 			err = errors.Join(err, live.Close())
 			if err != nil {

@@ -165,10 +165,18 @@ func (t *parquetTable) convert(r *bufio.Reader) error {
 	}
 	w := parquet.NewWriter(out, schema, parquet.Compression(&parquet.Zstd), parquet.CreatedBy("tallyward", "", ""))
 	ncols := 1 + len(fieldCols) + len(featCols)
-	rows := make([]parquet.Row, 0, 1024)
+	// Rows and string bytes are reused batch after batch: WriteRows
+	// copies values into the writer's column buffers.
+	const batch = 1024
+	rows := make([]parquet.Row, 0, batch)
+	spare := make([]parquet.Row, batch)
+	for i := range spare {
+		spare[i] = make(parquet.Row, ncols)
+	}
+	var arena []byte
 	flush := func() error {
 		_, err := w.WriteRows(rows)
-		rows = rows[:0]
+		rows, arena = rows[:0], arena[:0]
 		return err
 	}
 	for {
@@ -179,7 +187,7 @@ func (t *parquetTable) convert(r *bufio.Reader) error {
 		if err != nil {
 			return errors.Join(fmt.Errorf("sink: staged rows of %s: %w", t.path, err), out.Close())
 		}
-		row := make(parquet.Row, ncols)
+		row := spare[len(rows)]
 		row[timeCol] = parquet.Int64Value(tm).Level(0, 0, timeCol)
 		var u [8]byte
 		for i, f := range t.cols.Fields {
@@ -192,7 +200,13 @@ func (t *parquetTable) convert(r *bufio.Reader) error {
 				}
 				var str []byte
 				if err1 == nil {
-					str = make([]byte, n)
+					if cap(arena)-len(arena) < int(n) {
+						// A new arena: slices of the old one are still
+						// referenced by this batch's rows.
+						arena = make([]byte, 0, max(1<<20, int(n)))
+					}
+					str = arena[len(arena) : len(arena)+int(n)]
+					arena = arena[:len(arena)+int(n)]
 					_, err1 = io.ReadFull(r, str)
 				}
 				err = err1

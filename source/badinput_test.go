@@ -2,11 +2,13 @@ package source_test
 
 import (
 	"errors"
+	"math"
 	"os"
 	"path/filepath"
 	"strings"
 	"testing"
 
+	"github.com/parquet-go/parquet-go"
 	"github.com/tallyward/tallyward/source"
 	"github.com/tallyward/tallyward/specfile"
 )
@@ -159,5 +161,34 @@ func TestCursorMismatch(t *testing.T) {
 		} else if !errors.Is(err, source.ErrCursor) {
 			t.Errorf("%v does not match ErrCursor", err)
 		}
+	}
+}
+
+// TestBadParquetRows: a Parquet row with a null required field or a
+// non-finite number is rejected with the file and row number.
+func TestBadParquetRows(t *testing.T) {
+	type prow struct {
+		TS      int64   `parquet:"ts"`
+		Kind    string  `parquet:"kind"`
+		Account *string `parquet:"account,optional"`
+		Amount  float64 `parquet:"amount"`
+	}
+	a := "a1"
+	rows := []prow{{1767225600000, "login", &a, 1}, {1767225600001, "login", nil, 1}, {1767225600002, "login", &a, math.Inf(1)}, {1767225600003, "login", &a, 2}}
+	path := filepath.Join(t.TempDir(), "in.parquet")
+	if err := parquet.WriteFile(path, rows); err != nil {
+		t.Fatal(err)
+	}
+	var bad []string
+	r, err := source.Open([]string{path}, schema(t), source.Options{MaxBadRows: -1, OnBadRow: func(e *source.RowError) { bad = append(bad, e.Error()) }}, nil, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer r.Close()
+	evs := readAll(t, r, -1)
+	if len(evs) != 2 || len(bad) != 2 ||
+		!strings.Contains(bad[0], "in.parquet: row 1: field \"account\": missing field") ||
+		!strings.Contains(bad[1], "in.parquet: row 2: field \"amount\": bad field value") {
+		t.Fatalf("%d events; bad rows %q", len(evs), bad)
 	}
 }

@@ -29,7 +29,8 @@
 // kept for CursorAt costs 40 bytes, from the last commit's resume point
 // to now.
 //
-// Handover and FromChannel join a finite history to a live source.
+// Handover joins a finite history to a live source such as FromChannel or
+// Lines (JSON lines from standard input or a pipe).
 //
 // A Reader is not safe for concurrent use.
 package source

@@ -4,27 +4,34 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"strconv"
 
 	"github.com/parquet-go/parquet-go"
+	"github.com/parquet-go/parquet-go/format"
 	"github.com/tallyward/tallyward/specfile"
 )
 
 // parquetReader reads a Parquet file's rows by column name. Columns must
 // be top-level (flat); strings are BYTE_ARRAY, numbers any integer or
-// floating type, booleans BOOLEAN; the time column is text for text
-// formats and a number (in the spec's unit) for the unix formats.
+// floating type, booleans BOOLEAN; the time column is a TIMESTAMP (read
+// by its own unit), or text for the text formats and a number in the
+// spec's unit for the unix formats.
 type parquetReader struct {
 	name string
 	s    *specfile.Schema
 	f    *os.File
 	r    *parquet.Reader
 	cols []int // per leaf column: field index, colTime or colSkip
-	buf  []parquet.Row
-	n, i int
-	p    pos
-	seen []bool
+	// timeUnit is the length of one step of a time column annotated as a
+	// Parquet TIMESTAMP; such a column is read by its annotation whatever
+	// the spec's time format. 0: not annotated.
+	timeUnit int64
+	buf      []parquet.Row
+	n, i     int
+	p        pos
+	seen     []bool
 }
 
 func openParquet(path string, s *specfile.Schema, at pos, counter *int64) (_ *parquetReader, err error) {
@@ -68,6 +75,13 @@ func openParquet(path string, s *specfile.Schema, at pos, counter *int64) (_ *pa
 	for fi, ok := range found {
 		if !ok && !s.Fields[fi].Optional {
 			return nil, fmt.Errorf("source: %s: no %q column (a required field)", path, s.Fields[fi].Name)
+		}
+	}
+	if leaf, ok := pf.Schema().Lookup(s.TimeField); ok {
+		if lt := leaf.Node.Type().LogicalType(); lt != nil {
+			if ts, ok := lt.Value.(*format.TimestampType); ok && ts.Unit.Value != nil {
+				pr.timeUnit = int64(ts.Unit.Value.Duration())
+			}
 		}
 	}
 	pr.r = parquet.NewReader(pf)
@@ -142,7 +156,11 @@ func (pr *parquetReader) decode(row parquet.Row) (specfile.Event, error) {
 			case parquet.ByteArray, parquet.FixedLenByteArray:
 				t, err = s.TimeText(string(v.ByteArray()))
 			case parquet.Int32, parquet.Int64:
-				t, err = s.TimeInt(intOf(v))
+				if pr.timeUnit > 0 {
+					t, err = timestamp(intOf(v), pr.timeUnit, s.TimeField)
+				} else {
+					t, err = s.TimeInt(intOf(v))
+				}
 			case parquet.Float, parquet.Double:
 				t, err = s.TimeNumber(v.Double())
 			default:
@@ -190,4 +208,13 @@ func intOf(v parquet.Value) int64 {
 		return int64(v.Int32())
 	}
 	return v.Int64()
+}
+
+// timestamp converts a Parquet TIMESTAMP value of the given unit (ns per
+// step) to Unix nanoseconds.
+func timestamp(n, unit int64, field string) (int64, error) {
+	if n > math.MaxInt64/unit || n < math.MinInt64/unit {
+		return 0, &specfile.FieldError{Field: field, Err: fmt.Errorf("%w: %d is out of range", specfile.ErrBadTime, n)}
+	}
+	return n * unit, nil
 }

@@ -7,6 +7,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward"
@@ -104,6 +105,11 @@ func Open(paths []string, s *specfile.Schema, opts Options, cursor []byte, seq u
 	}
 	if len(paths) == 0 {
 		return nil, errors.New("source: no input files")
+	}
+	for i, p := range paths {
+		if slices.Contains(paths[:i], p) {
+			return nil, fmt.Errorf("source: %s is given twice (its events would count twice)", p)
+		}
 	}
 	r := &Reader{s: s, opts: opts, seq: seq, logBase: seq}
 	var states []fileState

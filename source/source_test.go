@@ -11,6 +11,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/klauspost/compress/zstd"
 	"github.com/parquet-go/parquet-go"
@@ -171,6 +172,14 @@ func sameEvents(t *testing.T, got, want []specfile.Event) {
 // yields exactly the events from r on of one uninterrupted read, with the
 // same bad-row count, for every format and compression at once.
 func TestResumeFromCursorEqualsOneRead(t *testing.T) {
+	for _, sorted := range []bool{false, true} {
+		t.Run(map[bool]string{false: "streamed", true: "sorted"}[sorted], func(t *testing.T) {
+			testResume(t, sorted)
+		})
+	}
+}
+
+func testResume(t *testing.T, sorted bool) {
 	n := 3000
 	if testing.Short() {
 		n = 600
@@ -178,7 +187,7 @@ func TestResumeFromCursorEqualsOneRead(t *testing.T) {
 	dir := t.TempDir()
 	paths := fiveFiles(t, dir, n)
 	s := schema(t)
-	opts := source.Options{MaxDisorder: 60e9, MaxBadRows: -1}
+	opts := source.Options{MaxDisorder: 60e9, MaxBadRows: -1, SortFiles: sorted}
 	r, err := source.Open(paths, s, opts, nil, 0)
 	if err != nil {
 		t.Fatal(err)
@@ -298,5 +307,33 @@ func TestDisorderNamesFileAndRow(t *testing.T) {
 		if len(evs) != 100 || !slices.IsSortedFunc(evs, func(a, b specfile.Event) int { return int(a.Time - b.Time) }) {
 			t.Errorf("%s: SortFiles gave %d events, sorted: %v", name, len(evs), slices.IsSortedFunc(evs, func(a, b specfile.Event) int { return int(a.Time - b.Time) }))
 		}
+	}
+}
+
+// TestParquetTimestampColumn: a time column annotated TIMESTAMP is read
+// by its unit, whatever the spec's time format says (here rfc3339).
+func TestParquetTimestampColumn(t *testing.T) {
+	type row struct {
+		TS      time.Time `parquet:"ts,timestamp(microsecond)"`
+		Kind    string    `parquet:"kind"`
+		Account string    `parquet:"account"`
+	}
+	at := time.Date(2026, 3, 1, 12, 0, 0, 123456000, time.UTC)
+	p := filepath.Join(t.TempDir(), "ts.parquet")
+	if err := parquet.WriteFile(p, []row{{at, "login", "a1"}, {at.Add(time.Second), "login", "a2"}}); err != nil {
+		t.Fatal(err)
+	}
+	f, err := specfile.Parse("s.yaml", []byte(strings.Replace(specText, "format: unix_ms", "format: rfc3339", 1)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	r, err := source.Open([]string{p}, f.Schema, source.Options{}, nil, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer r.Close()
+	evs := readAll(t, r, -1)
+	if len(evs) != 2 || evs[0].Time != at.UnixNano() || evs[1].Time != at.Add(time.Second).UnixNano() {
+		t.Fatalf("got %+v, want times %d and +1s", evs, at.UnixNano())
 	}
 }

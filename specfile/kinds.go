@@ -2,6 +2,7 @@ package specfile
 
 import (
 	"fmt"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward"
@@ -118,6 +119,24 @@ var kinds = map[string]kindInfo{
 			return tallyward.Distinct{Window: d[pWindow], Resolution: d[pResolution], Precision: uint8(p)}, nil
 		},
 	},
+	"distinct_ever": {
+		params: []string{pPrecision},
+		input:  fixed(inItem),
+		build: func(f *featureDoc, _ durations) (tallyward.Kind, error) {
+			p := deref(f.Precision)
+			if p < 0 || p > 255 {
+				return nil, fmt.Errorf("%s: %d is out of range", pPrecision, p)
+			}
+			return tallyward.DistinctEver{Precision: uint8(p)}, nil
+		},
+	},
+	"surge": {
+		params: []string{pWindow, pHalfLife, pResolution, pSmoothing},
+		input:  fixed(inNone),
+		build: func(f *featureDoc, d durations) (tallyward.Kind, error) {
+			return tallyward.Surge{Window: d[pWindow], HalfLife: d[pHalfLife], Resolution: d[pResolution], Smoothing: deref(f.Smoothing)}, nil
+		},
+	},
 	"frequency": {
 		params: []string{pEpsilon, pDelta},
 		input:  fixed(inItem),
@@ -188,4 +207,14 @@ func (f *featureDoc) setParams() []string {
 func (f *featureDoc) durationParams() map[string]string {
 	return map[string]string{pWindow: f.Window, pResolution: f.Resolution, pHalfLife: f.HalfLife,
 		pShort: f.Short, pLong: f.Long, pGap: f.Gap}
+}
+
+// KindNames lists the kind names a spec file accepts, sorted.
+func KindNames() []string {
+	names := make([]string, 0, len(kinds))
+	for k := range kinds {
+		names = append(names, k)
+	}
+	slices.Sort(names)
+	return names
 }

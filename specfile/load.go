@@ -453,12 +453,7 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 	feat := tallyward.Feature[Event]{Name: fd.Name, BeforeEvent: fd.BeforeEvent}
 	info, ok := kinds[fd.Kind]
 	if !ok {
-		var names []string
-		for k := range kinds {
-			names = append(names, k)
-		}
-		slices.Sort(names)
-		l.add(path+".kind", "%q is not a kind (one of %s)", fd.Kind, strings.Join(names, ", "))
+		l.add(path+".kind", "%q is not a kind (one of %s)", fd.Kind, strings.Join(KindNames(), ", "))
 		return feat, false
 	}
 	before := len(l.problems)
@@ -473,6 +468,8 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 			d[key] = l.duration(path+"."+key, text)
 		}
 	}
+	// A parameter that did not parse would only add noise below.
+	paramsOK := len(l.problems) == before
 	switch info.input(fd) {
 	case inNone:
 		if fd.Value != "" {
@@ -500,6 +497,9 @@ func (l *loader) feature(s *Schema, path string, fd *featureDoc) (tallyward.Feat
 	}
 	if len(fd.When) > 0 {
 		feat.Where = l.conditions(s, path+".when", fd.When)
+	}
+	if !paramsOK {
+		return feat, false
 	}
 	k, err := info.build(fd, d)
 	if err != nil {

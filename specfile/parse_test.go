@@ -6,6 +6,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/tallyward/tallyward"
 	"github.com/tallyward/tallyward/specfile"
 )
 
@@ -141,4 +142,43 @@ func FuzzParse(f *testing.F) {
 			}
 		}
 	})
+}
+
+// TestEveryKindCovered: testdata/all_kinds.yaml uses every kind the spec
+// file knows, and what each feature reads agrees with its kind's Inputs.
+func TestEveryKindCovered(t *testing.T) {
+	f, err := specfile.Load("testdata/all_kinds.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	seen := map[string]bool{}
+	for _, ent := range f.Spec.Entities {
+		for _, ft := range ent.Features {
+			desc := ft.Kind.Describe()
+			seen[strings.Fields(desc)[0]] = true
+			in := ft.Kind.Inputs()
+			if (ft.Item != nil) != (in&tallyward.TakesItem != 0) {
+				t.Errorf("%s.%s (%s): item set %v, kind takes items %v", ent.Name, ft.Name, desc, ft.Item != nil, in&tallyward.TakesItem != 0)
+			}
+			if ft.Value != nil && in&tallyward.TakesValue == 0 {
+				t.Errorf("%s.%s (%s): value set but the kind takes none", ent.Name, ft.Name, desc)
+			}
+		}
+	}
+	for _, k := range specfile.KindNames() {
+		if !seen[strings.ReplaceAll(k, "_", "-")] && !seen[descName(k)] {
+			t.Errorf("kind %s is not used in testdata/all_kinds.yaml", k)
+		}
+	}
+}
+
+// descName maps a spec-file kind name to the first word of its Describe.
+func descName(k string) string {
+	switch k {
+	case "decayed":
+		return "decayed-count"
+	case "recency":
+		return "recency-since-last"
+	}
+	return strings.ReplaceAll(k, "_", "-")
 }

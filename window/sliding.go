@@ -133,7 +133,7 @@ func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
 	g.n = int64(spec.Window / spec.Resolution)
 	// Small to start: most entities are sparse. Storage grows by append and
 	// is then reused, so the steady state allocates nothing.
-	g.panes.buf = make([]pane, 0, min(g.n+1, 4))
+	g.panes.buf = make([]pane, 0, min(g.n, 3)+1) // n+1 would overflow at n = MaxInt64
 	g.raw.buf = make([]event, 0, 4)
 	return nil
 }

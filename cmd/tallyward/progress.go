@@ -68,7 +68,7 @@ func (pr *progress) tick() {
 	read, total := pr.rd.Progress()
 	eta := "?"
 	if read > 0 && total > read {
-		eta = (time.Duration(el*float64(total-read)/float64(read)) * time.Second / time.Second).Round(time.Second).String()
+		eta = time.Duration(el * float64(total-read) / float64(read) * float64(time.Second)).Round(time.Second).String()
 	} else if total > 0 && read >= total {
 		eta = "0s"
 	}

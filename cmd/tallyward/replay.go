@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"os"
 	"os/signal"
+	"slices"
 	"strings"
 	"syscall"
 
@@ -75,6 +76,9 @@ type replayFlags struct {
 //	uvarint  the table's committed length
 //	bytes    the source cursor (package source)
 const replayCursorVersion = 1
+
+// maxShownBad bounds the bad rows printed one by one.
+const maxShownBad = 100
 
 func replay(e *env, o *replayFlags, inputs []string) int {
 	if len(inputs) == 0 {
@@ -151,11 +155,19 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 		e.errorf("%v", err)
 		return exitFailure
 	}
+	shownBad := 0
 	srcOpts := source.Options{
 		MaxDisorder: f.Options.MaxDisorder,
 		SortFiles:   o.sortFiles,
 		MaxBadRows:  o.maxBad,
-		OnBadRow:    func(re *source.RowError) { e.errorf("bad row: %v", re) },
+		OnBadRow: func(re *source.RowError) {
+			// The first ones are told; after that only the count, at the end.
+			if shownBad++; shownBad <= maxShownBad {
+				e.errorf("bad row: %v", re)
+			} else if shownBad == maxShownBad+1 {
+				e.errorf("more bad rows; not showing them")
+			}
+		},
 	}
 	rd, err := source.Open(inputs, f.Schema, srcOpts, srcCursor, p.ResumeSeq())
 	if err != nil {
@@ -207,12 +219,18 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 		return exitFailure
 	}
 	st := p.Stats()
-	var rejected uint64
-	for _, n := range st.Rejected {
-		rejected += n
+	var rejected []string
+	for r, n := range st.Rejected {
+		if n > 0 {
+			rejected = append(rejected, fmt.Sprintf("%d %v", n, r))
+		}
 	}
-	fmt.Fprintf(e.stderr, "replay: %d events, %d rows, %d bad rows, %d rejected, %d late; table %s\n",
-		st.Events, st.Emitted, rd.BadRows(), rejected, st.Late, o.out)
+	slices.Sort(rejected)
+	fmt.Fprintf(e.stderr, "replay: %d events, %d rows, %d bad rows, rejected: [%s], %d late; table %s\n",
+		st.Events, st.Emitted, rd.BadRows(), strings.Join(rejected, ", "), st.Late, o.out)
+	if st.Rejected[tallyward.FutureTime] > 0 {
+		e.errorf("hint: events after a quiet spell longer than run.future_skew (default 1h) are rejected as future-time; history with nights or weekends needs a larger future_skew")
+	}
 	if err := p.Close(); err != nil {
 		e.errorf("%v", err)
 		return exitFailure

@@ -118,7 +118,7 @@ func run(n int, seed uint64) error {
 	if err := live.Run(context.Background(), ch, 0); err != nil {
 		return err
 	}
-	if err := live.Flush(); err != nil {
+	if err := live.Flush(context.Background()); err != nil {
 		return err
 	}
 	lived := time.Since(start)
@@ -129,8 +129,12 @@ func run(n int, seed uint64) error {
 
 	fmt.Printf("replayed %d sign-in attempts in %v, then %d live in %v; store in %s\n",
 		split, replayed.Round(time.Millisecond), len(events)-split, lived.Round(time.Millisecond), dir)
+	var rejected uint64
+	for _, n := range st.Rejected {
+		rejected += n
+	}
 	fmt.Printf("applied %d, emitted %d rows, late %d, rejected %d, %d entities stored\n\n",
-		st.Applied, st.Emitted, st.Late, st.Rejected[tallyward.ZeroTime]+st.Rejected[tallyward.BadValue]+st.Rejected[tallyward.FutureTime], st.LiveEntities)
+		st.Applied, st.Emitted, st.Late, rejected, st.LiveEntities)
 
 	all := make([]peak, 0, len(peaks))
 	for _, p := range peaks {

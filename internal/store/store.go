@@ -88,9 +88,10 @@ type Options struct {
 	// refuse (ErrDamaged) is reported by Notices instead. Default: false.
 	ReadOnly bool
 
-	// Logger receives Pebble's informational and error messages. Pebble's
-	// fatal messages are handled by the store whatever the logger (see
-	// Store.Close). Default: a logger that discards them.
+	// Logger receives Pebble's informational and error messages
+	// (SlogLogger adapts a slog.Logger). Pebble's fatal messages are
+	// handled by the store whatever the logger (see Store.Close); the
+	// logger sees them as errors. Default: a logger that discards them.
 	Logger pebble.Logger
 }
 
