@@ -73,6 +73,15 @@
 // against a brute-force reference with the invariant tests the built-ins
 // pass; examples/kinds holds one worked kind.
 //
+// # Lookups and joins
+//
+// [Pipeline.Lookup] (and [Live.Lookup]) answer one entity key's features
+// as of a time without applying an event, flagging answers older than the
+// exact horizon. Package join builds label joins (training rows with
+// point-in-time features and matured labels), interval joins and as-of
+// joins on a pipeline's rows and watermark (Spec.Emit, Spec.OnWatermark),
+// with their state committed in the pipeline's store.
+//
 // # What it is not
 //
 // Features are signals for a model or a human reviewer, not verdicts;

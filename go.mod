@@ -5,6 +5,7 @@ go 1.26.0
 require (
 	github.com/axiomhq/hyperloglog v0.3.0
 	github.com/cespare/xxhash/v2 v2.3.0
+	github.com/cockroachdb/datadriven v1.0.3-0.20250407164829-2945557346d5
 	github.com/cockroachdb/pebble/v2 v2.1.7
 	github.com/goccy/go-yaml v1.19.2
 	github.com/google/btree v1.1.3
@@ -52,6 +53,7 @@ require (
 	github.com/parquet-go/jsonlite v1.5.5 // indirect
 	github.com/pierrec/lz4/v4 v4.1.33 // indirect
 	github.com/pkg/errors v0.9.1 // indirect
+	github.com/pmezard/go-difflib v1.0.0 // indirect
 	github.com/prometheus/procfs v0.16.1 // indirect
 	github.com/rogpeppe/go-internal v1.10.0 // indirect
 	github.com/twpayne/go-geom v1.6.1 // indirect

@@ -13,7 +13,7 @@ var ErrEmptyKey = errors.New("tallyward: empty entity key")
 // As-of semantics are those of rows: nothing newer than t counts, and an
 // event at t counts (BeforeEvent does not apply: a lookup is not an event;
 // ask for t−1 to leave time t out). Item features that answer about the
-// asking event's item (Frequency) answer about the empty item.
+// asking event's item (Frequency) answer as for an event with no item.
 //
 // exact reports whether the answer is exact. Each aggregate is exact for a
 // t no further than the pipeline's horizon (MaxDisorder + 1 ns) behind the

@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"github.com/google/btree"
+	"github.com/tallyward/tallyward/internal/attach"
 	"github.com/tallyward/tallyward/internal/sat"
 	"github.com/tallyward/tallyward/internal/store"
 	"github.com/tallyward/tallyward/sketch"
@@ -192,6 +193,7 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		}
 	}
 	p.notices = append(p.notices, st.Notices()...)
+	attach.Register(p, st)
 	return p, nil
 }
 
@@ -568,6 +570,9 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		}
 		clear(p.batch)
 	}
+	if p.err == nil && p.spec.OnWatermark != nil {
+		p.spec.OnWatermark(p.wm)
+	}
 }
 
 // expiryClock is the time records expire by: the watermark as the data
@@ -741,6 +746,7 @@ func (p *Pipeline[E]) Close() error {
 		err = p.Commit(nil)
 	}
 	p.closed = true
+	attach.Unregister(p)
 	return errors.Join(err, p.store.Close())
 }
 

@@ -31,6 +31,14 @@ type Spec[E any] struct {
 	// OnLate receives late events under the DivertLate policy. Required for
 	// that policy.
 	OnLate func(E)
+
+	// OnWatermark, if set, is called each time the watermark rises, with
+	// the new watermark, after every row the rise releases has gone to
+	// Emit: from then on every row with a time below w has been emitted
+	// (Settled mode), and any later event below w is late. Joins use it to
+	// release what waited for time to pass. Flush calls it with
+	// math.MaxInt64. Default: nil.
+	OnWatermark func(w int64)
 }
 
 // Entity is one kind of keyed subject and the features kept per key.

@@ -78,6 +78,7 @@
 //	0x03 record      0x03 | uvarint len(table) | table | entity key -> record bytes
 //	0x04 expiry      0x04 | 8-byte big-endian bucket (sign bit flipped) | uvarint len(table) | table | entity key -> empty
 //	0x05 tombstone   0x05 | 16-byte salted SHA-256 of (table, entity key) -> empty
+//	0x06 part        0x06 | uvarint len(part) | part | part key -> part value (see part.go)
 //
 // Values under 0x03 are the caller's versioned encodings. The Mark under
 // meta name "mark" is encoded as documented on [Mark.AppendBinary].
