@@ -1,6 +1,7 @@
 // Package bench holds benchmarks that compare tallyward against baselines
-// measured in the same run, on seeded, pre-generated inputs. It has no
-// non-test code of its own beyond this page.
+// measured in the same run, on seeded, pre-generated inputs. The workload
+// they share with the speed report lives in bench/workload; the accuracy
+// and speed report in bench/report (see bench/README.md).
 //
 // Run:
 //

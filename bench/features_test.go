@@ -1,21 +1,17 @@
 package bench
 
 import (
-	"encoding/binary"
-	"errors"
 	"flag"
-	"fmt"
 	"math"
-	"math/rand/v2"
 	"runtime"
 	"slices"
 	"syscall"
 	"testing"
 	"time"
 
-	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/vfs"
 	"github.com/tallyward/tallyward"
+	"github.com/tallyward/tallyward/bench/workload"
 	"github.com/tallyward/tallyward/internal/store"
 )
 
@@ -42,13 +38,9 @@ var (
 	featNaive    = flag.Int("features.naive-events", 300_000, "events of the naive baseline (a prefix: it runs ~40x slower)")
 )
 
-// payment is one card payment: who paid, from which device, how much.
-type payment struct {
-	T       int64
-	Account string
-	Device  string
-	Amount  float64
-}
+// payment is the workload's event (package workload holds the generator,
+// the spec and both references, shared with the speed report).
+type payment = workload.Payment
 
 type featureData struct {
 	accounts, devices, days int
@@ -63,32 +55,7 @@ func featureEvents() *featureData {
 	if d := featCached; d != nil && d.accounts == na && d.devices == nd && len(d.events) == ne && d.days == days {
 		return d
 	}
-	r := rand.New(rand.NewPCG(9, 9))
-	za := rand.NewZipf(r, 1.1, 1, uint64(na-1))
-	zd := rand.NewZipf(r, 1.1, 1, uint64(nd-1))
-	acct := make([]string, na)
-	for i := range acct {
-		acct[i] = fmt.Sprintf("acct-%07d", i)
-	}
-	dev := make([]string, nd)
-	for i := range dev {
-		dev[i] = fmt.Sprintf("dev-%08d", i)
-	}
-	span := int64(days) * int64(24*time.Hour)
-	ev := make([]payment, ne)
-	for i := range ev {
-		a := int(za.Uint64())
-		d := int((uint64(a) * 2654435761) % uint64(nd)) // the account's own device
-		if r.IntN(10) == 0 {
-			d = int(zd.Uint64())
-		}
-		ev[i] = payment{
-			T:       start + int64(i)*(span/int64(ne)),
-			Account: acct[a],
-			Device:  dev[d],
-			Amount:  math.Round(r.ExpFloat64()*5000) / 100,
-		}
-	}
+	ev := workload.Generate(workload.Params{Accounts: na, Devices: nd, Events: ne, Days: days})
 	featCached = &featureData{accounts: na, devices: nd, days: days, events: ev}
 	return featCached
 }
@@ -100,33 +67,8 @@ func featureCacheBytes() int64 {
 	return int64(float64(256<<20) * float64(*featAccounts) / 1e6)
 }
 
-var (
-	payCount    = tallyward.SlidingCount{Window: 10 * time.Minute}
-	paySum      = tallyward.SlidingSum{Window: time.Hour}
-	payDevices  = tallyward.Distinct{Window: 24 * time.Hour}
-	payMean     = tallyward.Decayed{HalfLife: time.Hour, Stat: tallyward.DecayedMean}
-	payVelocity = tallyward.Velocity{Short: 5 * time.Minute, Long: time.Hour}
-	devAccounts = tallyward.Distinct{Window: time.Hour}
-)
-
 func featureSpec(emit func(tallyward.Row[payment])) tallyward.Spec[payment] {
-	amount := func(p payment) float64 { return p.Amount }
-	return tallyward.Spec[payment]{
-		Time: func(p payment) int64 { return p.T },
-		Emit: emit,
-		Entities: []tallyward.Entity[payment]{
-			{Name: "account", Key: func(p payment) string { return p.Account }, Features: []tallyward.Feature[payment]{
-				{Name: "payments_10m", Kind: payCount},
-				{Name: "amount_1h", Kind: paySum, Value: amount},
-				{Name: "devices_24h", Kind: payDevices, Item: func(p payment) string { return p.Device }},
-				{Name: "mean_amount", Kind: payMean, Value: amount},
-				{Name: "velocity", Kind: payVelocity},
-			}},
-			{Name: "device", Key: func(p payment) string { return p.Device }, Features: []tallyward.Feature[payment]{
-				{Name: "accounts_1h", Kind: devAccounts, Item: func(p payment) string { return p.Account }},
-			}},
-		},
-	}
+	return workload.Spec(emit)
 }
 
 // memDelta measures allocations and process CPU time between two
@@ -254,7 +196,7 @@ func BenchmarkFeatures(b *testing.B) {
 				naive.event(b, e)
 			}
 			b.StopTimer()
-			naive.db.Close()
+			naive.Close()
 			b.StartTimer()
 		}
 		b.ReportMetric(float64(b.N)*float64(min(*featNaive, len(data.events)))/b.Elapsed().Seconds(), "events/s")
@@ -265,143 +207,33 @@ func BenchmarkFeatures(b *testing.B) {
 			c := newCeiling()
 			b.StartTimer()
 			for _, e := range data.events {
-				c.event(e)
+				c.Event(e)
 			}
 		}
 		b.ReportMetric(float64(b.N)*float64(len(data.events))/b.Elapsed().Seconds(), "events/s")
 	})
 }
 
-// ceiling keeps the same aggregates per key in Go maps and persists
-// nothing: what the workload costs with no store at all.
-type ceiling struct {
-	acct, dev map[string][]tallyward.Aggregate
-	out       [6]float64
-}
+func newCeiling() *workload.Ceiling { return workload.NewCeiling() }
 
-func newCeiling() *ceiling {
-	return &ceiling{acct: map[string][]tallyward.Aggregate{}, dev: map[string][]tallyward.Aggregate{}}
-}
-
-const horizon = time.Nanosecond
-
-func acctAggs() []tallyward.Aggregate {
-	return []tallyward.Aggregate{payCount.NewAggregate(horizon), paySum.NewAggregate(horizon),
-		payDevices.NewAggregate(horizon), payMean.NewAggregate(horizon), payVelocity.NewAggregate(horizon)}
-}
-
-func devAggs() []tallyward.Aggregate {
-	return []tallyward.Aggregate{devAccounts.NewAggregate(horizon)}
-}
-
-func (c *ceiling) event(e payment) {
-	a := c.acct[e.Account]
-	if a == nil {
-		a = acctAggs()
-		c.acct[e.Account] = a
-	}
-	d := c.dev[e.Device]
-	if d == nil {
-		d = devAggs()
-		c.dev[e.Device] = d
-	}
-	applyPayment(a, d, e, &c.out)
-}
-
-// itemHash stands in for the pipeline's item hash (any good 64-bit hash
-// costs the same here).
-func itemHash(s string) uint64 {
-	h := uint64(14695981039346656037)
-	for i := 0; i < len(s); i++ {
-		h ^= uint64(s[i])
-		h *= 1099511628211
-	}
-	return h
-}
-
-func applyPayment(a, d []tallyward.Aggregate, e payment, out *[6]float64) {
-	dh, ah := itemHash(e.Device), itemHash(e.Account)
-	a[0].Add(e.T, 1, 0)
-	a[1].Add(e.T, e.Amount, 0)
-	a[2].Add(e.T, 0, dh)
-	a[3].Add(e.T, e.Amount, 0)
-	a[4].Add(e.T, 1, 0)
-	d[0].Add(e.T, 0, ah)
-	for i, g := range a {
-		out[i] = g.At(e.T, dh)
-	}
-	out[5] = d[0].At(e.T, ah)
-}
-
-// naiveStore is the baseline: per event and entity a Pebble Get, a decode
-// of every aggregate, the update, an encode and a Set; Pebble opened with
+// naiveStore is the baseline of package workload on Pebble opened with
 // exactly the store's settings.
-type naiveStore struct {
-	db   *pebble.DB
-	key  []byte
-	buf  []byte
-	aggA []tallyward.Aggregate
-	aggD []tallyward.Aggregate
-	out  [6]float64
-}
+type naiveStore struct{ *workload.Naive }
 
-func openNaive(b *testing.B) *naiveStore {
+func openNaive(b *testing.B) naiveStore {
 	popts := store.PebbleOptions(store.Options{FS: vfs.Default, Logger: quiet{}})
-	db, err := pebble.Open(b.TempDir(), popts)
+	n, err := workload.OpenNaive(b.TempDir(), popts)
 	popts.Cache.Unref()
 	if err != nil {
 		b.Fatal(err)
 	}
-	return &naiveStore{db: db}
+	return naiveStore{n}
 }
 
-func (n *naiveStore) load(b *testing.B, key string, fresh func() []tallyward.Aggregate) []tallyward.Aggregate {
-	aggs := fresh()
-	n.key = append(n.key[:0], key...)
-	v, closer, err := n.db.Get(n.key)
-	if errors.Is(err, pebble.ErrNotFound) {
-		return aggs
-	}
-	if err != nil {
+func (n naiveStore) event(b *testing.B, e payment) {
+	if err := n.Event(e); err != nil {
 		b.Fatal(err)
 	}
-	defer closer.Close()
-	for _, a := range aggs {
-		l, k := binary.Uvarint(v)
-		if k <= 0 || uint64(len(v)-k) < l {
-			b.Fatal("naive: short value")
-		}
-		if err := a.UnmarshalBinary(v[k : k+int(l)]); err != nil {
-			b.Fatal(err)
-		}
-		v = v[k+int(l):]
-	}
-	return aggs
-}
-
-func (n *naiveStore) save(b *testing.B, key string, aggs []tallyward.Aggregate) {
-	n.buf = n.buf[:0]
-	var one []byte
-	var err error
-	for _, a := range aggs {
-		if one, err = a.AppendBinary(one[:0]); err != nil {
-			b.Fatal(err)
-		}
-		n.buf = binary.AppendUvarint(n.buf, uint64(len(one)))
-		n.buf = append(n.buf, one...)
-	}
-	n.key = append(n.key[:0], key...)
-	if err := n.db.Set(n.key, n.buf, pebble.NoSync); err != nil {
-		b.Fatal(err)
-	}
-}
-
-func (n *naiveStore) event(b *testing.B, e payment) {
-	a := n.load(b, "a"+e.Account, acctAggs)
-	d := n.load(b, "d"+e.Device, devAggs)
-	applyPayment(a, d, e, &n.out)
-	n.save(b, "a"+e.Account, a)
-	n.save(b, "d"+e.Device, d)
 }
 
 // BenchmarkFeaturesLatency times every inline Score call of the

@@ -10,6 +10,7 @@
 //	inspect   show the stored state of one entity key as of a time
 //	erase     delete every stored trace of one entity key, durably
 //	snapshot  write a consistent copy of a state directory
+//	accuracy  measure sketch error against exact counts; write a report with plots
 //	serve     run the features of a spec file as an HTTP/JSON service
 //
 // Exit codes:
