@@ -81,6 +81,21 @@ func (p *Pipeline[E]) LiftErasure(entity, key string) error {
 	return p.Commit(nil)
 }
 
+// Erased reports whether Erase left a tombstone for (entity, key) that
+// LiftErasure has not lifted: its state is gone and later events naming it
+// are skipped. For tools and audits; Lookup answers an erased key like a
+// new one.
+func (p *Pipeline[E]) Erased(entity, key string) (bool, error) {
+	if err := p.usable(); err != nil {
+		return false, err
+	}
+	_, es, err := p.entity(entity)
+	if err != nil {
+		return false, err
+	}
+	return p.store.Erased(es.ent.Name, key), nil
+}
+
 // Snapshot commits and writes a consistent copy of the pipeline's state
 // (records, definitions, source position and watermark) to dir, which must
 // not exist, on the pipeline's filesystem. Opening a pipeline with

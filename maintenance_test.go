@@ -111,7 +111,15 @@ func TestEraseLeavesNoBytes(t *testing.T) {
 		}
 	}
 
+	erased, err := p.Erased("account", victim)
+	require.NoError(t, err)
+	require.True(t, erased)
 	require.NoError(t, p.LiftErasure("account", victim))
+	erased, err = p.Erased("account", victim)
+	require.NoError(t, err)
+	require.False(t, erased)
+	_, err = p.Erased("no-such-entity", victim)
+	require.ErrorIs(t, err, ErrUnknownEntity)
 	got, err := Open(loginSpec(rows.add), Options{})
 	require.NoError(t, err)
 	got.Close()

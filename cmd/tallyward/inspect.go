@@ -56,7 +56,7 @@ Example:
 	})
 }
 
-// inspect reads the key's features with Pipeline.Peek, on a copy of the
+// inspect reads the key's features with Pipeline.Lookup, on a copy of the
 // state (closing a pipeline commits, and a commit may sweep expired
 // records).
 func inspect(e *env, f *specfile.File, dir, entity, key string, t int64) int {
@@ -71,7 +71,12 @@ func inspect(e *env, f *specfile.File, dir, entity, key string, t int64) int {
 			return exitUsage
 		}
 	}
-	vals, err := p.Peek(entity, key, t, nil)
+	erased, err := p.Erased(entity, key)
+	if err == nil && erased {
+		fmt.Fprintf(e.stdout, "%s %q is erased: its state was removed and later events naming it are skipped\n", entity, key)
+		return exitOK
+	}
+	vals, exact, err := p.Lookup(entity, key, t, nil)
 	if err != nil {
 		e.errorf("%v", err)
 		if errors.Is(err, tallyward.ErrUnknownEntity) {
@@ -80,6 +85,9 @@ func inspect(e *env, f *specfile.File, dir, entity, key string, t int64) int {
 		return exitFailure
 	}
 	fmt.Fprintf(e.stdout, "%s %q as of %s\n", entity, key, specfile.FormatTime(t))
+	if !exact {
+		fmt.Fprintln(e.stdout, "  (older than the exact horizon behind the key's newest event: each feature follows its kind's degraded as-of rule)")
+	}
 	for _, ent := range f.Spec.Entities {
 		if ent.Name != entity {
 			continue
