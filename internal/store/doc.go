@@ -23,7 +23,10 @@
 // encoded by that goroutine, or by the caller just before it changes one;
 // reads see the commit's writes while it is in flight; the next commit,
 // Sweep, Snapshot and Close wait for it ([Store.Settle]). Mark and Commits
-// report the last commit that landed.
+// report the last commit that landed. A panic on that goroutine (Pebble
+// panics when the database is closed under a running commit, as the crash
+// tests do to abandon a store) becomes the store's sticky failure instead
+// of ending the process; a programming error there surfaces the same way.
 //
 // # Damage, full disks and fatal errors
 //
