@@ -153,6 +153,9 @@ func TestLookupFlagsDegradedAnswers(t *testing.T) {
 }
 
 func TestLookupAllocatesNothingOnHit(t *testing.T) {
+	if raceEnabled {
+		t.Skip("the race detector's instrumentation allocates")
+	}
 	p := openTest(t, richSpec(nil), Options{})
 	for _, e := range genLogins(5, 2000, 50, 50, 0) {
 		_, err := p.Score(e, nil)

@@ -1,0 +1,5 @@
+//go:build !race
+
+package tallyward
+
+const raceEnabled = false
