@@ -116,6 +116,9 @@ type Options struct {
 	// Clock tells "now" for lookups without ?at=. Default:
 	// tallyward.SystemClock.
 	Clock tallyward.Clock
+	// MetricsClock times requests and commits for logs and metrics only,
+	// never for a decision about data. Default: tallyward.SystemClock.
+	MetricsClock tallyward.Clock
 }
 
 // EnsureDefaults fills zero fields with their defaults.
@@ -147,6 +150,15 @@ func (o *Options) EnsureDefaults() {
 	if o.Clock == nil {
 		o.Clock = tallyward.SystemClock{}
 	}
+	if o.MetricsClock == nil {
+		o.MetricsClock = tallyward.SystemClock{}
+	}
+}
+
+// since is the metrics-clock time since began (Unix ns), for logs and
+// metrics.
+func (s *Server[E]) since(began int64) time.Duration {
+	return time.Duration(s.opts.MetricsClock.Now() - began)
 }
 
 // Validate reports every problem with o at once.
@@ -277,13 +289,13 @@ func New[E any](live *tallyward.Live[E], codec Codec[E], opts Options) (*Server[
 	})
 	s.handler = http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		sw := &statusWriter{ResponseWriter: w, code: http.StatusOK}
-		began := time.Now()
+		began := s.opts.MetricsClock.Now()
 		mux.ServeHTTP(sw, r)
 		if sw.code >= 300 && !sw.logged {
 			// A refusal of the router itself: 404, or 405 for a known path.
 			s.requests.WithLabelValues("other", strconv.Itoa(sw.code)).Inc()
 			s.log.Warn("request refused", "method", r.Method, "path", r.URL.Path, "status", sw.code,
-				"seconds", time.Since(began).Seconds(), "remote", r.RemoteAddr)
+				"seconds", s.since(began).Seconds(), "remote", r.RemoteAddr)
 		}
 	})
 	s.ready.Store(true)
@@ -329,7 +341,7 @@ func badRequest(code int, format string, args ...any) *apiError {
 // response log.
 func (s *Server[E]) route(mux *http.ServeMux, pattern, name string, admit bool, h func(http.ResponseWriter, *http.Request) *apiError) {
 	mux.HandleFunc(pattern, func(w http.ResponseWriter, r *http.Request) {
-		began := time.Now()
+		began := s.opts.MetricsClock.Now()
 		if name != "healthz" && name != "readyz" && !s.authorized(r) {
 			w.Header().Set("WWW-Authenticate", `Bearer realm="tallyward"`)
 			s.finish(w, r, name, began, badRequest(http.StatusUnauthorized, "missing or wrong bearer token"))
@@ -364,13 +376,13 @@ func (s *Server[E]) authorized(r *http.Request) bool {
 
 // finish writes a refusal if there is one, counts the request and logs
 // every non-2xx response.
-func (s *Server[E]) finish(w http.ResponseWriter, r *http.Request, route string, began time.Time, e *apiError) {
+func (s *Server[E]) finish(w http.ResponseWriter, r *http.Request, route string, began int64, e *apiError) {
 	code := http.StatusOK
 	if e != nil {
 		code = e.code
 		writeJSON(w, code, e.body())
 	}
-	d := time.Since(began)
+	d := s.since(began)
 	if sw, ok := w.(*statusWriter); ok {
 		sw.logged = true
 	}
@@ -442,7 +454,7 @@ func (s *Server[E]) Commit(ctx context.Context, why string) error {
 	s.commitMu.Lock()
 	defer s.commitMu.Unlock()
 	before := s.committed.Load()
-	began := time.Now()
+	began := s.opts.MetricsClock.Now()
 	if err := s.live.Commit(ctx, nil); err != nil {
 		if ctx.Err() == nil {
 			s.storageFailure(err)
@@ -450,7 +462,7 @@ func (s *Server[E]) Commit(ctx context.Context, why string) error {
 		return err
 	}
 	seq := s.noteCommitted()
-	s.log.Info("commit", "why", why, "committed_seq", seq, "events", seq-before, "seconds", time.Since(began).Seconds())
+	s.log.Info("commit", "why", why, "committed_seq", seq, "events", seq-before, "seconds", s.since(began).Seconds())
 	return nil
 }
 
