@@ -326,20 +326,10 @@ func (d *decoder) uvarint() uint64 {
 	return v
 }
 
+// varint reads what binary.AppendVarint wrote: a zig-zag uvarint.
 func (d *decoder) varint() int64 {
-	if d.err != nil {
-		return 0
-	}
-	v, n := binary.Varint(d.b)
-	if n <= 0 {
-		d.err = errShort
-		if n < 0 {
-			d.err = errors.New("varint overflows 64 bits")
-		}
-		return 0
-	}
-	d.b = d.b[n:]
-	return v
+	u := d.uvarint()
+	return int64(u>>1) ^ -int64(u&1)
 }
 
 // before reads a difference back from ref and returns ref minus it,
