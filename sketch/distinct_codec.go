@@ -27,30 +27,30 @@ func (d *Distinct) Merge(o *Distinct) error {
 	}
 	d.cacheOK = false
 	floor := d.floorPane()
-	if o.regs == nil {
+	if o.sk == nil {
 		for _, e := range o.exact {
 			if d.pane(e.t) < floor {
 				continue
 			}
-			if d.regs != nil {
+			if d.sk != nil {
 				d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
 			} else {
-				d.addExact(e)
+				d.addExact(e.fp, e.t)
 			}
 		}
-		if d.regs != nil {
+		if d.sk != nil {
 			d.settleTail()
 		}
 		return nil
 	}
-	if d.regs == nil {
+	if d.sk == nil {
 		d.normalizeExact()
 		d.promote()
 	}
 	var arr [64]uint16
-	for j := range o.regs.words {
-		for _, e := range o.regs.load(uint32(j), arr[:0]) {
-			d.fold(o.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
+	for j := range o.sk.regs.words {
+		for _, e := range o.sk.regs.load(uint32(j), arr[:0]) {
+			d.fold(o.sk.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
 		}
 	}
 	for _, e := range o.liveTail() {
@@ -79,7 +79,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		return append(dst, 0), nil
 	}
 	flags := byte(flagHasNewest)
-	if d.regs != nil {
+	if d.sk != nil {
 		flags |= flagSketch
 	}
 	dst = append(dst, flags)
@@ -87,7 +87,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 	newestPane := d.pane(d.newest)
 	settled := d.newest - int64(s.Horizon)
 	floor := d.floorPane()
-	if d.regs == nil {
+	if d.sk == nil {
 		d.normalizeExact()
 		nSettled := 0
 		for _, e := range d.exact {
@@ -124,7 +124,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		return dst, nil
 	}
 	var arr [64]uint16
-	r := d.regs
+	r := d.sk.regs
 	for j := range r.words {
 		list := r.load(uint32(j), arr[:0])
 		n := 0
@@ -287,7 +287,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 			if t > S {
 				return corruptf("settled entry %d at %d after settled time %d", i, t, S)
 			}
-			d.exact = append(d.exact, exactEntry{uint32(fp), t})
+			d.exact = append(d.exact, exactEntry{fp: uint32(fp), t: t})
 		}
 		if !br.padOK() {
 			return corruptf("settled bit stream length or padding")
@@ -317,10 +317,10 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 			return corruptf("duplicate entry")
 		}
 	}
-	d.nfp = countFP(d.exact)
-	if d.nfp > limit {
-		return corruptf("%d items exceed ExactLimit %d", d.nfp, limit)
+	if countFP(d.exact) > limit {
+		return corruptf("%d items exceed ExactLimit %d", countFP(d.exact), limit)
 	}
+	d.relink()
 	return nil
 }
 
@@ -343,7 +343,7 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 	if len(r.B) < m {
 		return corruptf("%d registers need at least %d bytes, %d remain", m, m, len(r.B))
 	}
-	d.regs = newSlidingRegs(p, F)
+	d.sk = &distinctSketch{regs: newSlidingRegs(p, F)}
 	var list [64]uint16
 	for j := range m {
 		n := int(r.Byte())
@@ -368,7 +368,7 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 			return r.Err
 		}
 		if n > 0 {
-			d.regs.store(uint32(j), l)
+			d.sk.regs.store(uint32(j), l)
 		}
 	}
 	nt := r.Count(2, uint64(len(r.B)))
@@ -383,10 +383,10 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 			return corruptf("unsettled entry %d (key %d, age %d)", i, key, age)
 		}
 		e := tailEntry{t: d.newest - int64(age), key: uint32(key)}
-		if i > 0 && cmpTail(d.tail[i-1], e) >= 0 {
+		if i > 0 && cmpTail(d.sk.tail[i-1], e) >= 0 {
 			return corruptf("unsettled entry %d out of order", i)
 		}
-		d.tail = append(d.tail, e)
+		d.sk.tail = append(d.sk.tail, e)
 	}
 	return r.Err
 }
