@@ -2,11 +2,11 @@ package sketch
 
 import (
 	"cmp"
-	"unsafe"
 	"github.com/tallyward/tallyward/internal/check"
 	"math"
 	"slices"
 	"time"
+	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/sat"
 )
