@@ -136,6 +136,9 @@ type Distinct struct {
 	exact []exactEntry
 	nfp   int
 	index []uint32 // open addressing on fp: 1 + the chain's first entry; 0 = empty
+	// einl is exact's first storage, inside the value: most entities see
+	// an item or two. A value is therefore never copied once built.
+	einl [inlineExact]exactEntry
 
 	// Sketch mode: allocated at the switch, so an exact summary (most
 	// entities) carries none of it.
@@ -167,8 +170,9 @@ type exactEntry struct {
 }
 
 const (
-	linkLater = 1 << 31
-	linkNext  = linkLater - 1
+	linkLater   = 1 << 31
+	linkNext    = linkLater - 1
+	inlineExact = 2
 	// smallExact: up to this many entries a linear scan finds a chain
 	// faster than a hash index, which costs memory.
 	smallExact = 8
@@ -182,11 +186,27 @@ type tailEntry struct {
 // NewDistinct returns an empty windowed distinct count for spec, or an
 // error wrapping ErrInvalidSpec.
 func NewDistinct(spec DistinctSpec) (*Distinct, error) {
-	if err := spec.Validate(); err != nil {
+	d := new(Distinct)
+	if err := d.Init(spec); err != nil {
 		return nil, err
 	}
-	spec = spec.withDefaults()
-	return &Distinct{spec: spec, k: int64(spec.Window / spec.Resolution)}, nil
+	return d, nil
+}
+
+// Init makes d an empty count over spec in place, whatever d held, or
+// returns an error wrapping ErrInvalidSpec (d is then unusable: it
+// refuses adds and answers 0). It allocates nothing, so a Distinct can
+// live by value inside a larger object; its first entries are stored
+// inside the value, so d must not be copied afterwards.
+func (d *Distinct) Init(spec DistinctSpec) error {
+	*d = Distinct{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	d.spec = spec.withDefaults()
+	d.k = int64(d.spec.Window / d.spec.Resolution)
+	d.exact = d.einl[:0]
+	return nil
 }
 
 // Spec returns the spec with defaults applied.
@@ -222,7 +242,7 @@ func (d *Distinct) floorPane() int64 {
 // outside ±2^62 or if t's pane is older than every window a query at or
 // after Newest()-Horizon can read (such an add could never be counted).
 func (d *Distinct) Add(t int64, h uint64) bool {
-	if t < minTime || t > maxTime {
+	if t < minTime || t > maxTime || d.k == 0 {
 		return false
 	}
 	if !d.has || t > d.newest {
@@ -427,7 +447,7 @@ func (d *Distinct) promote() {
 			d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
 		}
 	}
-	d.exact, d.nfp, d.index = nil, 0, nil
+	d.exact, d.nfp, d.index = d.einl[:0], 0, nil
 }
 
 func cmpTail(a, b tailEntry) int {
@@ -544,7 +564,7 @@ func (d *Distinct) view(start int64, withTail bool) *regView {
 // t (see Distinct for the window and the error). It never counts an item
 // added with a time newer than t.
 func (d *Distinct) DistinctAt(t int64) uint64 {
-	if !d.has || t < minTime || t > maxTime {
+	if !d.has || t < minTime || t > maxTime || d.k == 0 {
 		return 0
 	}
 	if d.cacheOK && d.cacheT == t {
@@ -625,15 +645,10 @@ func (d *Distinct) Reset() {
 
 // SizeBytes approximates the heap footprint in bytes.
 func (d *Distinct) SizeBytes() int {
-	return int(unsafe.Sizeof(*d)) + d.HeapBytes()
-}
-
-// HeapBytes is the part of SizeBytes held outside the Distinct value
-// itself: its entries, its index and, in sketch mode, its registers. A
-// Distinct embedded by value in a larger object costs this plus its own
-// size.
-func (d *Distinct) HeapBytes() int {
-	n := int(unsafe.Sizeof(exactEntry{}))*cap(d.exact) + 4*cap(d.index)
+	n := int(unsafe.Sizeof(*d)) + 4*cap(d.index)
+	if cap(d.exact) > 0 && unsafe.SliceData(d.exact) != &d.einl[0] {
+		n += int(unsafe.Sizeof(exactEntry{})) * cap(d.exact)
+	}
 	if s := d.sk; s != nil {
 		n += int(unsafe.Sizeof(*s)) + int(unsafe.Sizeof(tailEntry{}))*cap(s.tail) + 4*cap(s.scratch) + s.regs.sizeBytes()
 		for i := range s.views {

@@ -231,6 +231,7 @@ func (d *Distinct) unmarshal(b []byte) error {
 			return err
 		}
 		*d = *nd
+		d.exact = d.einl[:0]
 		return nil
 	}
 	nd.has = true
@@ -254,6 +255,9 @@ func (d *Distinct) unmarshal(b []byte) error {
 		return err
 	}
 	*d = *nd
+	if d.sk == nil && len(d.exact) <= inlineExact {
+		d.exact = append(d.einl[:0], d.exact...)
+	}
 	return nil
 }
 

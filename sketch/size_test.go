@@ -40,3 +40,23 @@ func TestSmallEncodings(t *testing.T) {
 		}
 	}
 }
+
+// Init builds a Distinct in place with no allocation, and its first two
+// items fit the storage inside the value (a count, not a timing).
+func TestDistinctInitInPlaceAllocs(t *testing.T) {
+	var d Distinct
+	spec := DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 1}
+	got := testing.AllocsPerRun(100, func() {
+		if err := d.Init(spec); err != nil {
+			t.Fatal(err)
+		}
+		d.Add(100*sec, HashString("a"))
+		d.Add(101*sec, HashString("b"))
+		if d.DistinctAt(101*sec) != 2 {
+			t.Fatal("wrong count")
+		}
+	})
+	if got != 0 {
+		t.Fatalf("%v allocations per Init and two adds, want 0", got)
+	}
+}

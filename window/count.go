@@ -43,11 +43,19 @@ type SlidingCount struct{ ring }
 // spec.Validate.
 func NewSlidingCount(spec SlidingSpec) (*SlidingCount, error) {
 	c := &SlidingCount{}
-	if err := c.init(spec, opCount, kindSlidingCount); err != nil {
+	if err := c.Init(spec); err != nil {
 		return nil, err
 	}
 	return c, nil
 }
+
+// Init makes c an empty count over spec in place, whatever c held, or
+// returns the errors of spec.Validate (c is then unusable, like the zero
+// value). It allocates nothing, so a count can live by value inside a
+// larger object (one allocation for many aggregates): its first panes
+// and raw events are stored inside the value, so c must not be copied
+// afterwards. The sliding sum, min, max and mean have the same Init.
+func (c *SlidingCount) Init(spec SlidingSpec) error { return c.init(spec, opCount, kindSlidingCount) }
 
 // Add records one event at time t. It returns false, changing nothing, when
 // pane(t) is older than the floor (see the type doc); the caller counts the

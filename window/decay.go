@@ -122,19 +122,34 @@ type Decayed struct {
 	nextT       int64 // the next landmark: startOf(land+1, step)
 	w, mean, m2 float64
 	raw         seq[event]
+	rinl        [inlineEvents]event // raw's first storage; never copied once built
 }
 
 // NewDecayed returns empty decayed statistics over spec, or the errors of
 // spec.Validate.
 func NewDecayed(spec DecaySpec) (*Decayed, error) {
-	if err := spec.Validate(); err != nil {
+	d := new(Decayed)
+	if err := d.Init(spec); err != nil {
 		return nil, err
 	}
-	spec.RebaseEvery = spec.rebase()
-	d := &Decayed{spec: spec, valid: true}
-	d.step = spec.rebase() * int64(spec.HalfLife)
-	d.raw.buf = make([]event, 0, 8)
 	return d, nil
+}
+
+// Init makes d empty statistics over spec in place, whatever d held, or
+// returns the errors of spec.Validate (d is then unusable, like the zero
+// value). It allocates nothing, so a Decayed can live by value inside a
+// larger object; d must not be copied afterwards (its first storage is
+// inside it).
+func (d *Decayed) Init(spec DecaySpec) error {
+	*d = Decayed{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	spec.RebaseEvery = spec.rebase()
+	d.spec, d.valid = spec, true
+	d.step = spec.rebase() * int64(spec.HalfLife)
+	d.raw.buf = d.rinl[:0]
+	return nil
 }
 
 // Spec returns the spec the aggregate was built with, defaults applied.
@@ -152,7 +167,7 @@ func (d *Decayed) Newest() (t int64, ok bool) { return d.maxT, d.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (d *Decayed) SizeBytes() int {
-	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})), d.rinl[:])
 }
 
 func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, int64(d.spec.Horizon)) }

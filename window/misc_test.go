@@ -190,3 +190,35 @@ func TestDecayedExtremeValues(t *testing.T) {
 		t.Fatalf("variance %v", v)
 	}
 }
+
+// Init builds an aggregate in place with no allocation, and a first event
+// fits the storage inside the value (a count, not a timing).
+func TestInitInPlaceAllocs(t *testing.T) {
+	var c SlidingCount
+	var s SlidingSum
+	var v Velocity
+	var d Decayed
+	var r Recency
+	spec := SlidingSpec{Window: hour, Resolution: minute, Horizon: 1}
+	got := testing.AllocsPerRun(100, func() {
+		if c.Init(spec) != nil || s.Init(spec) != nil || d.Init(DecaySpec{HalfLife: hour, Horizon: 1}) != nil ||
+			v.Init(VelocitySpec{Short: 5 * time.Minute, Long: time.Hour, Horizon: 1}) != nil || r.Init(RecencySpec{}) != nil {
+			t.Fatal("Init failed")
+		}
+		c.Add(hour)
+		s.Add(hour, 2)
+		v.Add(hour)
+		d.Add(hour, 3)
+		r.Add(hour)
+	})
+	if got != 0 {
+		t.Fatalf("%v allocations per Init and first Add, want 0", got)
+	}
+	if c.CountAt(hour) != 1 || s.SumAt(hour) != 2 || d.MeanAt(hour) != 3 {
+		t.Fatal("aggregates built in place answer wrongly")
+	}
+	// Init again empties the value: it answers like a new one.
+	if err := c.Init(spec); err != nil || c.CountAt(hour) != 0 {
+		t.Fatalf("Init did not empty the count: %v, %d", err, c.CountAt(hour))
+	}
+}

@@ -121,9 +121,24 @@ type ring struct {
 	cutPane, cutStart, cutNext int64
 	panes                      seq[pane]
 	raw                        seq[event]
+	// Storage inside the value for the first panes and raw events, so
+	// that a sparse aggregate (most entities) holds no slice of its own.
+	// A value is therefore never copied once built.
+	pinl [inlinePanes]pane
+	rinl [inlineEvents]event
 }
 
+// Inline capacities: most entities have an event or two in a window.
+const (
+	inlinePanes  = 2
+	inlineEvents = 1
+)
+
+// init makes g an empty aggregate over spec in place, whatever it held:
+// no allocation (storage starts on the inline arrays and grows by
+// append, then is reused, so the steady state allocates nothing).
 func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
+	*g = ring{}
 	if err := spec.Validate(); err != nil {
 		return err
 	}
@@ -131,10 +146,8 @@ func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
 	g.spec, g.op, g.kind, g.valid = spec, o, kind, true
 	g.res, g.hor = int64(spec.Resolution), int64(spec.Horizon)
 	g.n = int64(spec.Window / spec.Resolution)
-	// Small to start: most entities are sparse. Storage grows by append and
-	// is then reused, so the steady state allocates nothing.
-	g.panes.buf = make([]pane, 0, min(g.n, 3)+1) // n+1 would overflow at n = MaxInt64
-	g.raw.buf = make([]event, 0, 4)
+	g.panes.buf = g.pinl[:0]
+	g.raw.buf = g.rinl[:0]
 	return nil
 }
 
@@ -156,8 +169,8 @@ func (g *ring) Count() uint64 { return g.total }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (g *ring) SizeBytes() int {
-	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{}))) +
-		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{})), g.pinl[:]) +
+		g.raw.sizeBytes(int(unsafe.Sizeof(event{})), g.rinl[:])
 }
 
 func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.res) }

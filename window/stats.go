@@ -53,6 +53,18 @@ func newValued[T any](spec SlidingSpec, o op, kind byte, inner func(*T) *valued)
 	return x, nil
 }
 
+// Init makes s an empty sum over spec in place; see SlidingCount.Init.
+func (s *SlidingSum) Init(spec SlidingSpec) error { return s.init(spec, opSum, kindSlidingSum) }
+
+// Init makes s an empty minimum over spec in place; see SlidingCount.Init.
+func (s *SlidingMin) Init(spec SlidingSpec) error { return s.init(spec, opMin, kindSlidingMin) }
+
+// Init makes s an empty maximum over spec in place; see SlidingCount.Init.
+func (s *SlidingMax) Init(spec SlidingSpec) error { return s.init(spec, opMax, kindSlidingMax) }
+
+// Init makes s an empty mean over spec in place; see SlidingCount.Init.
+func (s *SlidingMean) Init(spec SlidingSpec) error { return s.init(spec, opSum, kindSlidingMean) }
+
 // NewSlidingSum returns an empty sum over spec, or the errors of
 // spec.Validate.
 func NewSlidingSum(spec SlidingSpec) (*SlidingSum, error) {

@@ -85,16 +85,28 @@ type Velocity struct {
 // NewVelocity returns an empty velocity ratio over spec, or the errors of
 // spec.Validate.
 func NewVelocity(spec VelocitySpec) (*Velocity, error) {
-	if err := spec.Validate(); err != nil {
+	v := new(Velocity)
+	if err := v.Init(spec); err != nil {
 		return nil, err
+	}
+	return v, nil
+}
+
+// Init makes v an empty ratio over spec in place, whatever v held, or
+// returns the errors of spec.Validate (v is then unusable, like the zero
+// value). It allocates nothing; v must not be copied afterwards.
+func (v *Velocity) Init(spec VelocitySpec) error {
+	*v = Velocity{}
+	if err := spec.Validate(); err != nil {
+		return err
 	}
 	spec = spec.withDefaults()
-	v := &Velocity{vspec: spec}
 	if err := v.init(spec.sliding(), opCount, kindVelocity); err != nil {
-		return nil, err
+		return err
 	}
+	v.vspec = spec
 	v.short = int64(spec.Short / spec.Resolution)
-	return v, nil
+	return nil
 }
 
 // Spec returns the spec the aggregate was built with, defaults applied.
