@@ -98,7 +98,8 @@ type entityState[E any] struct {
 	first   int         // index of the entity's first feature in a row
 	zero    []Aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
-	ttl     int64 // records idle this long (by the watermark) expire; 0 never
+	ttl     int64         // records idle this long (by the watermark) expire; 0 never
+	lay     *recordLayout // how its records are laid out in memory (record.go)
 }
 
 // expired reports whether rec has been idle for the entity's ttl as of
@@ -108,13 +109,7 @@ func (es *entityState[E]) expired(rec *record, w int64) bool {
 	return es.ttl > 0 && sat.Add(rec.last, es.ttl) <= w
 }
 
-func (es *entityState[E]) fresh() []Aggregate {
-	aggs := make([]Aggregate, len(es.kinds))
-	for i, k := range es.kinds {
-		aggs[i] = k.NewAggregate(time.Duration(es.horizon))
-	}
-	return aggs
-}
+func (es *entityState[E]) fresh() []Aggregate { return es.lay.fresh() }
 
 // inputs are the values extracted from one event, validated before any
 // state is touched.
@@ -154,10 +149,11 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 			es.kinds = append(es.kinds, f.Kind)
 			p.names = append(p.names, ent.Name+"."+f.Name)
 		}
+		es.lay = newRecordLayout(es.kinds, time.Duration(horizon))
 		es.zero = es.fresh()
 		es.ttl = ttlFor(ent.Features, opts)
 		es.table = store.NewTable(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
-			return decodeRecord(b, es.fresh)
+			return es.lay.decode(b)
 		})
 		es.table.PeekLast = peekLast
 		p.nfeat += len(ent.Features)
@@ -458,10 +454,10 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 				p.c.erasedSkips++
 				continue
 			}
-			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
+			sl = es.table.Insert(key, es.lay.newRecord(in.t))
 			p.c.live++
 		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
-			sl.Value.aggs = es.fresh()
+			sl.Value.reset()
 		}
 		rec := sl.Value
 		for j, a := range rec.aggs {

@@ -121,10 +121,11 @@ func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }
 // per pane boundary). Not safe for concurrent use, including concurrent
 // queries.
 type Distinct struct {
-	spec   DistinctSpec // defaults applied
-	k      int64        // panes per window
-	has    bool
+	sh     *distinctShape // nil: not built from a valid spec
 	newest int64
+	has    bool
+	// cacheOK: the query cache below is valid.
+	cacheOK bool
 
 	// Exact mode (sk == nil). Entries are in no particular order; the
 	// entries of one fingerprint form a chain (exactEntry.link) that
@@ -145,9 +146,20 @@ type Distinct struct {
 	sk *distinctSketch
 
 	// Query cache: the last answer, valid until the next mutation.
-	cacheOK bool
-	cacheT  int64
-	cacheV  uint64
+	cacheT int64
+	cacheV uint64
+}
+
+// distinctShape is what a spec fixes, shared by every summary InitLike
+// builds from one prototype.
+type distinctShape struct {
+	spec DistinctSpec // defaults applied
+	k    int64        // panes per window
+}
+
+func newDistinctShape(spec DistinctSpec) *distinctShape {
+	spec = spec.withDefaults()
+	return &distinctShape{spec: spec, k: int64(spec.Window / spec.Resolution)}
 }
 
 // distinctSketch is the state of sketch mode.
@@ -195,22 +207,35 @@ func NewDistinct(spec DistinctSpec) (*Distinct, error) {
 
 // Init makes d an empty count over spec in place, whatever d held, or
 // returns an error wrapping ErrInvalidSpec (d is then unusable: it
-// refuses adds and answers 0). It allocates nothing, so a Distinct can
-// live by value inside a larger object; its first entries are stored
-// inside the value, so d must not be copied afterwards.
+// refuses adds and answers 0). A Distinct can so live by value inside a
+// larger object; its first entries are stored inside the value, so d
+// must not be copied afterwards. Init allocates the small immutable
+// parameters; InitLike shares those of a summary already built, with no
+// allocation.
 func (d *Distinct) Init(spec DistinctSpec) error {
 	*d = Distinct{}
 	if err := spec.Validate(); err != nil {
 		return err
 	}
-	d.spec = spec.withDefaults()
-	d.k = int64(d.spec.Window / d.spec.Resolution)
-	d.exact = d.einl[:0]
+	d.InitLike(&Distinct{sh: newDistinctShape(spec)})
 	return nil
 }
 
+// InitLike makes d an empty count with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. d
+// must not be copied afterwards.
+func (d *Distinct) InitLike(proto *Distinct) {
+	*d = Distinct{sh: proto.sh}
+	d.exact = d.einl[:0]
+}
+
 // Spec returns the spec with defaults applied.
-func (d *Distinct) Spec() DistinctSpec { return d.spec }
+func (d *Distinct) Spec() DistinctSpec {
+	if d.sh == nil {
+		return DistinctSpec{}
+	}
+	return d.sh.spec
+}
 
 // Newest returns the largest time added so far, and false if nothing was.
 func (d *Distinct) Newest() (int64, bool) { return d.newest, d.has }
@@ -225,24 +250,24 @@ func (d *Distinct) RelativeError() float64 {
 	if d.sk == nil {
 		return 0
 	}
-	return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision))
+	return 1.04 / math.Sqrt(float64(uint64(1)<<d.sh.spec.Precision))
 }
 
-func (d *Distinct) res() int64 { return int64(d.spec.Resolution) }
-func (d *Distinct) hor() int64 { return int64(d.spec.Horizon) }
+func (d *Distinct) res() int64 { return int64(d.sh.spec.Resolution) }
+func (d *Distinct) hor() int64 { return int64(d.sh.spec.Horizon) }
 
 func (d *Distinct) pane(t int64) int64 { return sat.FloorDiv(t, d.res()) }
 
 // floorPane is the oldest pane any query at t >= newest-Horizon reads.
 func (d *Distinct) floorPane() int64 {
-	return d.pane(d.newest-d.hor()) - d.k + 1
+	return d.pane(d.newest-d.hor()) - d.sh.k + 1
 }
 
 // Add records item h at time t. It returns false, changing nothing, if t is
 // outside ±2^62 or if t's pane is older than every window a query at or
 // after Newest()-Horizon can read (such an add could never be counted).
 func (d *Distinct) Add(t int64, h uint64) bool {
-	if t < minTime || t > maxTime || d.k == 0 {
+	if t < minTime || t > maxTime || d.sh == nil {
 		return false
 	}
 	if !d.has || t > d.newest {
@@ -253,7 +278,7 @@ func (d *Distinct) Add(t int64, h uint64) bool {
 	}
 	d.cacheOK = false
 	if d.sk != nil {
-		d.addSketch(t, fpKey(uint32(h>>32), d.spec.Precision))
+		d.addSketch(t, fpKey(uint32(h>>32), d.sh.spec.Precision))
 		return true
 	}
 	d.addExact(uint32(h>>32), t)
@@ -309,9 +334,9 @@ func (d *Distinct) addExact(fp uint32, t int64) {
 	if len(d.exact) == smallExact+1 && len(d.index) == 0 {
 		d.buildIndex()
 	}
-	if d.nfp > d.spec.ExactLimit || len(d.exact) > 2*d.nfp+16 {
+	if d.nfp > d.sh.spec.ExactLimit || len(d.exact) > 2*d.nfp+16 {
 		d.normalizeExact()
-		if d.nfp > d.spec.ExactLimit {
+		if d.nfp > d.sh.spec.ExactLimit {
 			d.promote()
 		}
 	}
@@ -441,10 +466,10 @@ func (d *Distinct) normalizeExact() {
 func (d *Distinct) promote() {
 	floor := d.floorPane()
 	slices.SortFunc(d.exact, cmpExact)
-	d.sk = &distinctSketch{regs: newSlidingRegs(d.spec.Precision, floor)}
+	d.sk = &distinctSketch{regs: newSlidingRegs(d.sh.spec.Precision, floor)}
 	for _, e := range d.exact {
 		if d.pane(e.t) >= floor {
-			d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+			d.addSketch(e.t, fpKey(e.fp, d.sh.spec.Precision))
 		}
 	}
 	d.exact, d.nfp, d.index = d.einl[:0], 0, nil
@@ -539,7 +564,7 @@ func (d *Distinct) view(start int64, withTail bool) *regView {
 		}
 	}
 	v := &d.sk.views[slot]
-	m := 1 << d.spec.Precision
+	m := 1 << d.sh.spec.Precision
 	if len(v.regs) != m {
 		v.regs = make([]uint8, m)
 	}
@@ -564,13 +589,13 @@ func (d *Distinct) view(start int64, withTail bool) *regView {
 // t (see Distinct for the window and the error). It never counts an item
 // added with a time newer than t.
 func (d *Distinct) DistinctAt(t int64) uint64 {
-	if !d.has || t < minTime || t > maxTime || d.k == 0 {
+	if !d.has || t < minTime || t > maxTime || d.sh == nil {
 		return 0
 	}
 	if d.cacheOK && d.cacheT == t {
 		return d.cacheV
 	}
-	start := d.pane(t) - d.k + 1
+	start := d.pane(t) - d.sh.k + 1
 	startT := start * d.res()
 	var n uint64
 	if d.sk == nil {
@@ -600,7 +625,7 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 		// Every tail entry is at or before t: the tail view holds them.
 		v := d.view(start, true)
 		if !v.estOK {
-			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+			v.est, v.estOK = estimateHist(&v.hist, d.sh.spec.Precision), true
 		}
 		return uint64(v.est + 0.5)
 	}
@@ -617,7 +642,7 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 	d.sk.scratch = keys
 	if len(keys) == 0 {
 		if !v.estOK {
-			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+			v.est, v.estOK = estimateHist(&v.hist, d.sh.spec.Precision), true
 		}
 		return uint64(v.est + 0.5)
 	}
@@ -635,12 +660,12 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 		hist[v.regs[j]]--
 		hist[k&63]++
 	}
-	return uint64(estimateHist(&hist, d.spec.Precision) + 0.5)
+	return uint64(estimateHist(&hist, d.sh.spec.Precision) + 0.5)
 }
 
 // Reset empties the summary, keeping its spec.
 func (d *Distinct) Reset() {
-	*d = Distinct{spec: d.spec, k: d.k, exact: d.exact[:0]}
+	*d = Distinct{sh: d.sh, exact: d.exact[:0]}
 }
 
 // SizeBytes approximates the heap footprint in bytes.

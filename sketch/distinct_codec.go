@@ -16,8 +16,8 @@ import (
 // mode, d switches too, even if a single summary fed both streams would
 // still be exact (see the package doc, Order).
 func (d *Distinct) Merge(o *Distinct) error {
-	if d.spec != o.spec {
-		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.spec, o.spec, ErrIncompatible)
+	if d.sh == nil || o.sh == nil || d.sh.spec != o.sh.spec {
+		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.Spec(), o.Spec(), ErrIncompatible)
 	}
 	if !o.has {
 		return nil
@@ -33,7 +33,7 @@ func (d *Distinct) Merge(o *Distinct) error {
 				continue
 			}
 			if d.sk != nil {
-				d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+				d.addSketch(e.t, fpKey(e.fp, d.sh.spec.Precision))
 			} else {
 				d.addExact(e.fp, e.t)
 			}
@@ -68,7 +68,10 @@ const (
 // AppendBinary appends the encoding of d to dst (see UnmarshalBinary for
 // the layout). It may compact d's exact entries, which changes no answer.
 func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
-	s := d.spec
+	if d.sh == nil {
+		return dst, fmt.Errorf("distinct: %w: not built from a valid spec", ErrInvalidSpec)
+	}
+	s := d.sh.spec
 	dst = append(dst, formatVersion1, kindDistinct)
 	dst = binary.AppendUvarint(dst, uint64(s.Window))
 	dst = binary.AppendUvarint(dst, uint64(s.Resolution))
@@ -222,7 +225,11 @@ func (d *Distinct) unmarshal(b []byte) error {
 	if err := s.Validate(); err != nil {
 		return corruptf("%v", err)
 	}
-	nd := &Distinct{spec: s, k: int64(s.Window / s.Resolution)}
+	sh := d.sh
+	if sh == nil || sh.spec != s {
+		sh = newDistinctShape(s) // a decoded spec other than the receiver's: its own shape
+	}
+	nd := &Distinct{sh: sh}
 	if flags&^(flagHasNewest|flagSketch) != 0 || flags == flagSketch {
 		return corruptf("flags %#x", flags)
 	}
@@ -265,7 +272,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 	P := d.pane(d.newest)
 	F := d.floorPane()
 	S := d.newest - d.hor()
-	limit := d.spec.ExactLimit
+	limit := d.sh.spec.ExactLimit
 	n := r.Count(0, uint64(limit))
 	if n > 0 {
 		k := uint(r.Byte())
@@ -339,7 +346,7 @@ func countFP(es []exactEntry) int {
 }
 
 func (d *Distinct) decodeSketch(r *wire.Decoder) error {
-	p := d.spec.Precision
+	p := d.sh.spec.Precision
 	P := d.pane(d.newest)
 	F := d.floorPane()
 	maxRho := 33 - p

@@ -41,15 +41,13 @@ func TestSmallEncodings(t *testing.T) {
 	}
 }
 
-// Init builds a Distinct in place with no allocation, and its first two
-// items fit the storage inside the value (a count, not a timing).
+// InitLike builds a Distinct in place with no allocation, and its first
+// two items fit the storage inside the value (a count, not a timing).
 func TestDistinctInitInPlaceAllocs(t *testing.T) {
 	var d Distinct
-	spec := DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 1}
+	proto := mustDistinct(t, DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 1})
 	got := testing.AllocsPerRun(100, func() {
-		if err := d.Init(spec); err != nil {
-			t.Fatal(err)
-		}
+		d.InitLike(proto)
 		d.Add(100*sec, HashString("a"))
 		d.Add(101*sec, HashString("b"))
 		if d.DistinctAt(101*sec) != 2 {
@@ -58,5 +56,21 @@ func TestDistinctInitInPlaceAllocs(t *testing.T) {
 	})
 	if got != 0 {
 		t.Fatalf("%v allocations per Init and two adds, want 0", got)
+	}
+}
+
+// The zero value is safe: it refuses adds, answers 0 and neither encodes
+// nor merges.
+func TestDistinctZeroValue(t *testing.T) {
+	var z Distinct
+	z.Reset()
+	if z.Add(1, 1) || z.DistinctAt(1) != 0 || z.Spec() != (DistinctSpec{}) {
+		t.Fatal("zero value misbehaves")
+	}
+	if _, err := z.AppendBinary(nil); err == nil {
+		t.Fatal("zero value encodes")
+	}
+	if err := z.Merge(&Distinct{}); err == nil {
+		t.Fatal("zero values merge")
 	}
 }

@@ -51,11 +51,19 @@ func NewSlidingCount(spec SlidingSpec) (*SlidingCount, error) {
 
 // Init makes c an empty count over spec in place, whatever c held, or
 // returns the errors of spec.Validate (c is then unusable, like the zero
-// value). It allocates nothing, so a count can live by value inside a
-// larger object (one allocation for many aggregates): its first panes
-// and raw events are stored inside the value, so c must not be copied
-// afterwards. The sliding sum, min, max and mean have the same Init.
+// value). A count can so live by value inside a larger object (one
+// allocation for many aggregates): its first panes and raw events are
+// stored inside the value, so c must not be copied afterwards. Init
+// allocates the count's small immutable parameters; InitLike shares
+// those of a count already built, with no allocation. The sliding sum,
+// min, max and mean have the same Init and InitLike.
 func (c *SlidingCount) Init(spec SlidingSpec) error { return c.init(spec, opCount, kindSlidingCount) }
+
+// InitLike makes c an empty count with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. c
+// must not be copied afterwards. The sliding sum, min, max and mean have
+// the same InitLike.
+func (c *SlidingCount) InitLike(proto *SlidingCount) { c.initLike(proto.sh) }
 
 // Add records one event at time t. It returns false, changing nothing, when
 // pane(t) is older than the floor (see the type doc); the caller counts the
@@ -65,6 +73,6 @@ func (c *SlidingCount) Add(t int64) bool { return c.add(t, 0) }
 // CountAt returns the number of events in the window as of t; see the type
 // doc for the exact set counted.
 func (c *SlidingCount) CountAt(t int64) uint64 {
-	n, _ := c.query(t, c.n)
+	n, _ := c.queryAll(t)
 	return n
 }
