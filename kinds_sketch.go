@@ -56,9 +56,9 @@ func (k Distinct) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Distinct) Validate() error      { return k.spec(0).Validate() }
-func (Distinct) Inputs() Inputs         { return TakesItem }
-func (k Distinct) Reach() time.Duration { return k.Window }
+func (k Distinct) Validate() error                        { return k.spec(0).Validate() }
+func (Distinct) Inputs() Inputs                           { return TakesItem }
+func (k Distinct) Reach() time.Duration                   { return k.Window }
 func (k Distinct) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
 
 func (k Distinct) placement(h time.Duration) placement {

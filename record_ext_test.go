@@ -2,8 +2,8 @@ package tallyward_test
 
 import (
 	"os"
-	"runtime/pprof"
 	"runtime"
+	"runtime/pprof"
 	"testing"
 	"time"
 

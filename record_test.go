@@ -190,7 +190,6 @@ func TestAllocationsPerEvent(t *testing.T) {
 	}
 }
 
-
 // RaceDetector tells the external tests (package tallyward_test) that
 // allocations cannot be counted.
 const RaceDetector = raceEnabled
