@@ -83,35 +83,35 @@ func (k Decayed) Reach() time.Duration { return time.Duration(sat.Add(0, 64*int6
 func (k Decayed) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
 
 func (k Decayed) placement(h time.Duration) placement {
-	proto, stat := built(window.NewDecayed(k.spec(int64(h)))), k.Stat
-	return placeAs(func(a *decayedAgg) error { a.InitLike(proto); a.stat = stat; return nil })
-}
-
-// decayedAgg adapts window.Decayed with a method per call rather than
-// closures, so it can live inside a record's one object.
-type decayedAgg struct {
-	window.Decayed
-	stat DecayStat
-}
-
-func (a *decayedAgg) Add(t int64, v float64, _ uint64) bool {
-	if a.stat == DecayedCount {
-		v = 1
-	}
-	return a.Decayed.Add(t, v)
-}
-
-func (a *decayedAgg) At(t int64, _ uint64) float64 {
-	switch a.stat {
+	proto := built(window.NewDecayed(k.spec(int64(h))))
+	switch k.Stat {
 	case DecayedCount:
-		return a.CountAt(t)
+		return placeAs(func(a *decayedCount) error { a.InitLike(proto); return nil })
 	case DecayedSum:
-		return a.SumAt(t)
+		return placeAs(func(a *decayedSum) error { a.InitLike(proto); return nil })
 	case DecayedMean:
-		return a.MeanAt(t)
+		return placeAs(func(a *decayedMean) error { a.InitLike(proto); return nil })
 	}
-	return a.VarianceAt(t)
+	return placeAs(func(a *decayedVariance) error { a.InitLike(proto); return nil })
 }
+
+// One adapter type per statistic rather than a field saying which: a
+// field would cost a word of padding in every record.
+type (
+	decayedCount    struct{ window.Decayed }
+	decayedSum      struct{ window.Decayed }
+	decayedMean     struct{ window.Decayed }
+	decayedVariance struct{ window.Decayed }
+)
+
+func (a *decayedCount) Add(t int64, _ float64, _ uint64) bool    { return a.Decayed.Add(t, 1) }
+func (a *decayedCount) At(t int64, _ uint64) float64             { return a.CountAt(t) }
+func (a *decayedSum) Add(t int64, v float64, _ uint64) bool      { return a.Decayed.Add(t, v) }
+func (a *decayedSum) At(t int64, _ uint64) float64               { return a.SumAt(t) }
+func (a *decayedMean) Add(t int64, v float64, _ uint64) bool     { return a.Decayed.Add(t, v) }
+func (a *decayedMean) At(t int64, _ uint64) float64              { return a.MeanAt(t) }
+func (a *decayedVariance) Add(t int64, v float64, _ uint64) bool { return a.Decayed.Add(t, v) }
+func (a *decayedVariance) At(t int64, _ uint64) float64          { return a.VarianceAt(t) }
 
 // Velocity is the ratio of an entity's event rate in a Short window to its
 // rate in a Long window, with additive smoothing so that a new entity

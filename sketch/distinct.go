@@ -126,6 +126,7 @@ type Distinct struct {
 	has    bool
 	// cacheOK: the query cache below is valid.
 	cacheOK bool
+	nfp     int32 // exact mode: see exact
 
 	// Exact mode (sk == nil). Entries are in no particular order; the
 	// entries of one fingerprint form a chain (exactEntry.link) that
@@ -135,8 +136,7 @@ type Distinct struct {
 	// of distinct fp with an entry whose pane is retained; index, when
 	// len(exact) > smallExact, maps every fp to its chain's first entry.
 	exact []exactEntry
-	nfp   int
-	index []uint32 // open addressing on fp: 1 + the chain's first entry; 0 = empty
+	index *fpIndex // allocated once past smallExact entries
 	// einl is exact's first storage, inside the value: most entities see
 	// an item or two. A value is therefore never copied once built.
 	einl [inlineExact]exactEntry
@@ -189,6 +189,18 @@ const (
 	// faster than a hash index, which costs memory.
 	smallExact = 8
 )
+
+// fpIndex finds a fingerprint's chain: open addressing on fp, each slot
+// 1 + the index of the chain's first entry, 0 = empty.
+type fpIndex struct{ slots []uint32 }
+
+// slots returns the index's slots, nil if there is none.
+func (d *Distinct) slots() []uint32 {
+	if d.index == nil {
+		return nil
+	}
+	return d.index.slots
+}
 
 type tailEntry struct {
 	t   int64
@@ -324,19 +336,19 @@ func (d *Distinct) addExact(fp uint32, t int64) {
 		d.exact = append(d.exact, exactEntry{fp: fp, t: t})
 		d.nfp++
 		if len(d.exact) > smallExact {
-			if len(d.index) < 2*d.nfp {
+			if len(d.slots()) < 2*int(d.nfp) {
 				d.buildIndex()
 			} else {
 				d.indexAdd(len(d.exact) - 1)
 			}
 		}
 	}
-	if len(d.exact) == smallExact+1 && len(d.index) == 0 {
+	if len(d.exact) == smallExact+1 && len(d.slots()) == 0 {
 		d.buildIndex()
 	}
-	if d.nfp > d.sh.spec.ExactLimit || len(d.exact) > 2*d.nfp+16 {
+	if int(d.nfp) > d.sh.spec.ExactLimit || len(d.exact) > 2*int(d.nfp)+16 {
 		d.normalizeExact()
-		if d.nfp > d.sh.spec.ExactLimit {
+		if int(d.nfp) > d.sh.spec.ExactLimit {
 			d.promote()
 		}
 	}
@@ -347,7 +359,8 @@ func (e exactEntry) next() int { return int(e.link&linkNext) - 1 }
 
 // findExact returns the index of fp's first entry, or -1.
 func (d *Distinct) findExact(fp uint32) int {
-	if len(d.exact) <= smallExact || len(d.index) == 0 {
+	ix := d.slots()
+	if len(d.exact) <= smallExact || len(ix) == 0 {
 		for i, e := range d.exact {
 			if e.fp == fp && e.link&linkLater == 0 {
 				return i
@@ -355,9 +368,9 @@ func (d *Distinct) findExact(fp uint32) int {
 		}
 		return -1
 	}
-	mask := uint32(len(d.index) - 1)
+	mask := uint32(len(ix) - 1)
 	for j := fp & mask; ; j = (j + 1) & mask {
-		x := d.index[j]
+		x := ix[j]
 		if x == 0 {
 			return -1
 		}
@@ -369,12 +382,13 @@ func (d *Distinct) findExact(fp uint32) int {
 
 // indexAdd enters the first entry of a new chain, at i, in the index.
 func (d *Distinct) indexAdd(i int) {
-	mask := uint32(len(d.index) - 1)
+	ix := d.index.slots
+	mask := uint32(len(ix) - 1)
 	j := d.exact[i].fp & mask
-	for d.index[j] != 0 {
+	for ix[j] != 0 {
 		j = (j + 1) & mask
 	}
-	d.index[j] = uint32(i + 1)
+	ix[j] = uint32(i + 1)
 }
 
 // buildIndex sizes the index to at least twice the chains (load <= 1/2)
@@ -385,14 +399,17 @@ func (d *Distinct) buildIndex() {
 		return
 	}
 	n := 16
-	for n < 2*d.nfp {
+	for n < 2*int(d.nfp) {
 		n *= 2
 	}
-	if cap(d.index) >= n {
-		d.index = d.index[:n]
-		clear(d.index)
+	if d.index == nil {
+		d.index = &fpIndex{}
+	}
+	if cap(d.index.slots) >= n {
+		d.index.slots = d.index.slots[:n]
+		clear(d.index.slots)
 	} else {
-		d.index = make([]uint32, n)
+		d.index.slots = make([]uint32, n)
 	}
 	for i, e := range d.exact {
 		if e.link&linkLater == 0 {
@@ -670,7 +687,10 @@ func (d *Distinct) Reset() {
 
 // SizeBytes approximates the heap footprint in bytes.
 func (d *Distinct) SizeBytes() int {
-	n := int(unsafe.Sizeof(*d)) + 4*cap(d.index)
+	n := int(unsafe.Sizeof(*d))
+	if d.index != nil {
+		n += int(unsafe.Sizeof(*d.index)) + 4*cap(d.index.slots)
+	}
 	if cap(d.exact) > 0 && unsafe.SliceData(d.exact) != &d.einl[0] {
 		n += int(unsafe.Sizeof(exactEntry{})) * cap(d.exact)
 	}

@@ -102,20 +102,22 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		if nSettled > 0 {
 			k := riceParam(nSettled)
 			ageBits := uint(bits.Len64(uint64(newestPane - floor)))
-			w := bitWriter{}
-			var prev uint32
-			for _, e := range d.exact {
-				if e.t > settled {
-					continue
-				}
-				w.rice(uint64(e.fp-prev), k)
-				w.write(uint64(newestPane-d.pane(e.t)), ageBits)
-				prev = e.fp
-			}
-			body := w.flush()
 			dst = append(dst, byte(k))
-			dst = binary.AppendUvarint(dst, uint64(len(body)))
-			dst = append(dst, body...)
+			// The bit stream goes straight into dst behind its length,
+			// with no buffer of its own.
+			dst, _ = wire.AppendFramed(dst, func(dst []byte) ([]byte, error) {
+				w := bitWriter{buf: dst}
+				var prev uint32
+				for _, e := range d.exact {
+					if e.t > settled {
+						continue
+					}
+					w.rice(uint64(e.fp-prev), k)
+					w.write(uint64(newestPane-d.pane(e.t)), ageBits)
+					prev = e.fp
+				}
+				return w.flush(), nil
+			})
 		}
 		dst = binary.AppendUvarint(dst, uint64(len(d.exact)-nSettled))
 		for _, e := range d.exact {

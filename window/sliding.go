@@ -103,17 +103,14 @@ type pane struct {
 //   - panes are in strictly increasing idx order, each with n >= 1 and
 //     floor <= idx <= pane(cutoff);
 //   - raw is sorted by t (ties in arrival order), each cutoff < t <= maxT;
-//   - when seen, cutPane == pane(cutoff).
 type ring struct {
 	sh *ringShape // what the spec fixes; nil: not built from a valid spec
 
 	seen  bool
 	maxT  int64
 	total uint64
-	// cutPane = pane(cutoff): it spares a division on the hot path.
-	cutPane int64
-	panes   seq[pane]
-	raw     seq[event]
+	panes seq[pane]
+	raw   seq[event]
 	// Storage inside the value for the first panes and raw events, so
 	// that a sparse aggregate (most entities) holds no slice of its own.
 	// A value is therefore never copied once built.
@@ -121,9 +118,10 @@ type ring struct {
 	rinl [inlineEvents]event
 }
 
-// Inline capacities: most entities have an event or two in a window.
+// Inline capacities: most entities have an event or two in a window, and
+// with a small Horizon the raw events are those at the newest time.
 const (
-	inlinePanes  = 2
+	inlinePanes  = 1
 	inlineEvents = 1
 )
 
@@ -203,17 +201,6 @@ func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.sh.res) }
 
 func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.sh.hor) }
 
-func (g *ring) setCut() { g.cutPane = g.paneOf(g.cutoff()) }
-
-// foldedPane is pane(t) for t <= cutoff, without a division when t lies in
-// the cutoff's pane.
-func (g *ring) foldedPane(t int64) int64 {
-	if t >= g.paneStart(g.cutPane) {
-		return g.cutPane
-	}
-	return g.paneOf(t)
-}
-
 // add applies one event; see SlidingCount.Add.
 func (g *ring) add(t int64, v float64) bool {
 	if g.sh == nil || (g.sh.op.hasValue() && !finite(v)) {
@@ -225,18 +212,18 @@ func (g *ring) add(t int64, v float64) bool {
 	switch {
 	case !g.seen:
 		g.seen, g.maxT = true, t
-		g.setCut()
 	case t > g.maxT:
+		prev := g.maxT
 		g.maxT = t
-		g.advance()
+		g.advance(prev)
 	}
 	if t > g.cutoff() {
 		insertSorted(&g.raw, event{t, v})
 	} else {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
-		p := g.foldedPane(t)
-		if p < sat.Sub(g.cutPane, g.sh.n-1) {
+		p := g.paneOf(t)
+		if p < sat.Sub(g.paneOf(g.cutoff()), g.sh.n-1) {
 			return false
 		}
 		g.foldLate(p, v)
@@ -245,36 +232,41 @@ func (g *ring) add(t int64, v float64) bool {
 	return true
 }
 
-// advance folds raw events that fell to or behind the cutoff and discards
-// panes older than the floor. Raw events are newer than the previous cutoff,
-// so they fold onto the last pane or after it.
-func (g *ring) advance() {
+// advance, after maxT rose from prev, discards panes older than the floor
+// and folds raw events that fell to or behind the cutoff. Raw events are
+// newer than the previous cutoff, so they fold onto the last pane or
+// after it. Discarding first means a sparse entity never holds its old
+// pane and the newly folded one at once: one pane of storage serves it.
+func (g *ring) advance(prev int64) {
 	c := g.cutoff()
-	moved := c >= g.paneStart(sat.Add(g.cutPane, 1))
-	if moved {
-		g.setCut()
+	cp := g.paneOf(c)
+	f := sat.Sub(cp, g.sh.n-1)
+	if cp != g.paneOf(sat.Sub(prev, g.sh.hor)) { // the floor moved
+		k := 0
+		for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
+			g.total -= ps[k].n
+		}
+		g.panes.popFront(k)
 	}
 	k := foldable(&g.raw, c)
+	cstart := g.paneStart(cp)
 	for _, e := range g.raw.live()[:k] {
-		p := g.foldedPane(e.t)
-		if g.panes.len() > 0 && g.panes.last().idx == p {
+		p := cp // no division when e lies in the cutoff's pane
+		if e.t < cstart {
+			p = g.paneOf(e.t)
+		}
+		switch {
+		case p < f:
+			g.total-- // behind the floor already: gone
+		case g.panes.len() > 0 && g.panes.last().idx == p:
 			l := g.panes.last()
 			l.n++
 			l.v = g.sh.op.merge(l.v, e.v)
-		} else {
+		default:
 			g.panes.push(pane{idx: p, n: 1, v: e.v})
 		}
 	}
 	g.raw.popFront(k)
-	if !moved {
-		return // the floor did not move
-	}
-	f := sat.Sub(g.cutPane, g.sh.n-1)
-	k = 0
-	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
-		g.total -= ps[k].n
-	}
-	g.panes.popFront(k)
 }
 
 // foldLate adds an event at or behind the cutoff to pane p >= floor.
@@ -491,6 +483,5 @@ func (g *ring) decode(b []byte, store bool) error {
 		return err
 	}
 	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)
-	g.setCut()
 	return nil
 }

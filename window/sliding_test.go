@@ -25,9 +25,6 @@ func (g *ring) checkInvariants() error {
 	}
 	c := g.cutoff()
 	pc, floor := g.paneOf(c), g.floorOf(c)
-	if g.cutPane != pc {
-		return fmt.Errorf("cut cache %d stale for cutoff %d", g.cutPane, c)
-	}
 	var sum uint64
 	for i, p := range g.panes.live() {
 		if p.n == 0 || p.idx < floor || p.idx > pc {
