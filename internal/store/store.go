@@ -820,7 +820,6 @@ const pendingNodeBytes = 64
 // the caller must commit to keep memory within the budget: eviction can
 // only move dirty records into the batch, not out of memory.
 func (s *Store) OverBudget() bool {
-	s.noteStaged()
 	return s.pending != nil && 2*s.pendingBytes() > s.budget.limit
 }
 
