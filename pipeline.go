@@ -94,7 +94,7 @@ type Pipeline[E any] struct {
 }
 
 type entityState[E any] struct {
-	ent     Entity[E]
+	ent Entity[E]
 	// parts cache the entity's records, split by key hash over the
 	// pipeline's workers (one part when there are none).
 	parts   []*store.Table[*record]

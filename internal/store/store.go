@@ -267,7 +267,7 @@ type Store struct {
 	stageMu sync.Mutex
 	// staged caches pendingBytes for the parts' eviction loops.
 	staged atomic.Int64
-	closed         bool
+	closed bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
