@@ -126,3 +126,18 @@ func TestWorkersMatchOneWorker(t *testing.T) {
 		}
 	}
 }
+
+// stopWorkersForCrash stops a pipeline's workers as a crash would: the
+// batch in flight is not delivered, nothing is committed.
+func stopWorkersForCrash[E any](p *Pipeline[E]) {
+	if p.work == nil {
+		return
+	}
+	if p.work.flying != nil {
+		for range p.work.start {
+			<-p.work.done
+		}
+		p.work.flying = nil
+	}
+	p.stopWorkers()
+}
