@@ -287,10 +287,12 @@ func (p *Pipeline[E]) Stats() Stats {
 		s.WatermarkLag = p.maxT - p.wm
 	}
 	for _, es := range p.ents {
-		h, m, _ := es.table.CacheStats()
-		s.CacheHits += h
-		s.CacheMisses += m
-		s.CachedKeys += es.table.Len()
+		for _, tb := range es.parts {
+			h, m, _ := tb.CacheStats()
+			s.CacheHits += h
+			s.CacheMisses += m
+			s.CachedKeys += tb.Len()
+		}
 	}
 	return s
 }
