@@ -74,6 +74,9 @@ func TestSixFeatureMemory(t *testing.T) {
 	if tallyward.RaceDetector {
 		t.Skip("the race detector's instrumentation allocates")
 	}
+	if !tallyward.InFreshProcess(t) {
+		return
+	}
 	events := 300_000
 	if testing.Short() {
 		events = 120_000

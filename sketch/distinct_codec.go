@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math/bits"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward/internal/wire"
@@ -207,7 +208,7 @@ func riceParam(n int) uint {
 func (d *Distinct) UnmarshalBinary(b []byte) error { return named("distinct", d.unmarshal(b)) }
 
 func (d *Distinct) unmarshal(b []byte) error {
-	r := header(b, kindDistinct)
+	r := header(&wire.Decoder{B: b}, kindDistinct)
 	if r.Err != nil {
 		return r.Err
 	}
@@ -251,20 +252,29 @@ func (d *Distinct) unmarshal(b []byte) error {
 	if r.Err != nil {
 		return r.Err
 	}
-	var err error
-	if flags&flagSketch == 0 {
-		err = nd.decodeExact(r)
-	} else {
-		err = nd.decodeSketch(r)
-	}
+	// Exact entries are decoded onto d's inline storage (a few entries
+	// need no allocation), which is put back if the input is refused.
+	saved := d.einl
+	nd.exact = d.einl[:0]
+	err := func() error {
+		if flags&flagSketch == 0 {
+			if err := nd.decodeExact(r); err != nil {
+				return err
+			}
+		} else if err := nd.decodeSketch(r); err != nil {
+			return err
+		}
+		return r.Finish()
+	}()
 	if err != nil {
+		d.einl = saved
 		return err
 	}
-	if err := r.Finish(); err != nil {
-		return err
-	}
+	nd.einl = d.einl
 	*d = *nd
-	if d.sk == nil && len(d.exact) <= inlineExact {
+	if d.sk != nil {
+		d.exact = d.einl[:0]
+	} else if len(d.exact) <= inlineExact {
 		d.exact = append(d.einl[:0], d.exact...)
 	}
 	return nil
@@ -288,7 +298,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 		ageBits := uint(bits.Len64(uint64(P - F)))
 		br := bitReader{b: body}
 		var fp uint64
-		d.exact = make([]exactEntry, 0, n)
+		d.exact = slices.Grow(d.exact[:0], n)
 		for i := range n {
 			delta := br.rice(k, (1<<32)>>k)
 			age := int64(br.read(ageBits))
