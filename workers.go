@@ -56,7 +56,7 @@ type workBatch[E any] struct {
 	on    []bool
 	v     []float64
 	item  []uint64
-	vals  []float64 // answers, written by the workers
+	vals  []float64    // answers, written by the workers
 	sinks []*[]float64 // per event: where its values are appended at delivery, if anywhere
 	// groups holds the end (exclusive) of each run of events applied
 	// together before any of them is answered.
