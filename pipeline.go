@@ -89,6 +89,10 @@ type Pipeline[E any] struct {
 	notices  []string // what Open did beyond the usual (resets)
 	// work runs record work on Options.Workers goroutines; nil with one.
 	work *workers[E]
+	// sink, when set (by Live), receives the values of the events
+	// processed with wantVals at their delivery; ownSink is Score's own.
+	sink    *[]float64
+	ownSink []float64
 	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
 	beforeCommit func(CommitPoint) ([]byte, error)
 }
@@ -317,13 +321,19 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if !p.hasMax || t > p.maxT {
 		p.hasMax, p.maxT = true, t
 	}
-	if p.work != nil && (p.opts.Mode == Eager || late) && !wantVals {
-		p.queue(seq, e, &p.in, late, false)
-	} else if p.opts.Mode == Eager || late {
-		// Score answers at once: everything queued before it first.
-		if err := p.finishWork(); err != nil {
-			return dst, err
+	if p.work != nil && (p.opts.Mode == Eager || late) {
+		var sink *[]float64
+		if wantVals {
+			// The row's values are appended to the sink when its batch is
+			// delivered: the caller's (Live groups several Score calls
+			// into one batch), else this call's, delivered below.
+			if sink = p.sink; sink == nil {
+				p.ownSink = dst
+				sink = &p.ownSink
+			}
 		}
+		p.queue(seq, e, &p.in, late, false, sink)
+	} else if p.opts.Mode == Eager || late {
 		if err := p.apply(&p.in); err != nil {
 			return dst, err
 		}
@@ -339,15 +349,16 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.work != nil {
-		// Score delivers what its event queued (its watermark's
-		// callback) before it returns, as with one worker.
-		if err := p.kickWork(wantVals); err != nil {
-			return dst, err
-		}
-		if wantVals {
-			if err := p.landWork(); err != nil {
+		if wantVals && p.sink == nil {
+			// Score answers before it returns, with its event's
+			// callbacks delivered, as with one worker.
+			err := p.finishWork()
+			dst, p.ownSink = p.ownSink, nil
+			if err != nil {
 				return dst, err
 			}
+		} else if err := p.kickWork(false); err != nil {
+			return dst, err
 		}
 	}
 	if err := p.autoCommit(); err != nil {
@@ -632,7 +643,7 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		}
 		if p.work != nil {
 			for i, h := range p.batch {
-				p.queue(h.seq, h.e, &h.in, false, i > 0)
+				p.queue(h.seq, h.e, &h.in, false, i > 0, nil)
 			}
 			clear(p.batch)
 			// A full batch goes to the workers between timestamps, never
@@ -840,12 +851,7 @@ func (p *Pipeline[E]) Close() error {
 	if p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
-	if p.work != nil && p.work.flying != nil {
-		for range p.work.start {
-			<-p.work.done // the workers must be done with the store
-		}
-		p.work.flying = nil
-	}
+	p.joinWork() // after a failure: the workers must be done with the store
 	p.stopWorkers()
 	p.closed = true
 	attach.Unregister(p)

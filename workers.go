@@ -56,7 +56,8 @@ type workBatch[E any] struct {
 	on    []bool
 	v     []float64
 	item  []uint64
-	vals  []float64 // answers, written by the workers
+	vals  []float64    // answers, written by the workers
+	sinks []*[]float64 // per event: where its values are appended at delivery, if anywhere
 	// groups holds the end (exclusive) of each run of events applied
 	// together before any of them is answered.
 	groups []int32
@@ -96,6 +97,8 @@ func (b *workBatch[E]) reset() {
 	clear(b.keys)
 	b.keys, b.owner = b.keys[:0], b.owner[:0]
 	b.on, b.v, b.item, b.vals = b.on[:0], b.v[:0], b.item[:0], b.vals[:0]
+	clear(b.sinks)
+	b.sinks = b.sinks[:0]
 	b.groups, b.out = b.groups[:0], b.out[:0]
 	clear(b.lateEv)
 	b.lateEv = b.lateEv[:0]
@@ -110,6 +113,7 @@ type workers[E any] struct {
 	done   chan struct{}
 	fill   *workBatch[E] // being filled by the sequencer
 	flying *workBatch[E] // being run by the workers, nil if none
+	joined bool          // the workers are done with flying (joinWork)
 	spare  *workBatch[E]
 }
 
@@ -154,7 +158,9 @@ func (p *Pipeline[E]) stopWorkers() {
 // events and late events applied at once), or as part of the group
 // opened by the previous call when join is set (Settled events of one
 // timestamp).
-func (p *Pipeline[E]) queue(seq uint64, e E, in *inputs, late, join bool) {
+//
+// sink, if not nil, receives the event's values at delivery.
+func (p *Pipeline[E]) queue(seq uint64, e E, in *inputs, late, join bool, sink *[]float64) {
 	b := p.work.fill
 	j := b.n
 	b.n++
@@ -163,6 +169,7 @@ func (p *Pipeline[E]) queue(seq uint64, e E, in *inputs, late, join bool) {
 	b.exp = append(b.exp, p.expiryClockAt(in.t))
 	b.late = append(b.late, late)
 	b.ev = append(b.ev, e)
+	b.sinks = append(b.sinks, sink)
 	b.keys = append(b.keys, in.keys...)
 	for _, k := range in.keys {
 		b.owner = append(b.owner, int32(store.PartOf(k, len(b.parts))))
@@ -218,10 +225,8 @@ func (p *Pipeline[E]) landWork() error {
 	if b == nil {
 		return p.err
 	}
-	for range w.start {
-		<-w.done
-	}
-	w.flying = nil
+	p.joinWork()
+	w.flying, w.joined = nil, false
 	defer func() { b.reset(); w.spare = b }()
 	for i := range b.parts {
 		pr := &b.parts[i]
@@ -247,6 +252,9 @@ func (p *Pipeline[E]) landWork() error {
 		switch d.kind {
 		case deliverRow:
 			j := int(d.i)
+			if s := b.sinks[j]; s != nil {
+				*s = append(*s, b.vals[j*nf:(j+1)*nf]...)
+			}
 			p.c.emitted++
 			if p.spec.Emit != nil {
 				row := Row[E]{Seq: b.seq[j], Time: b.t[j], Event: b.ev[j], Late: b.late[j], Values: b.vals[j*nf : (j+1)*nf : (j+1)*nf]}
@@ -260,6 +268,20 @@ func (p *Pipeline[E]) landWork() error {
 		}
 	}
 	return nil
+}
+
+// joinWork waits until the workers are done with the batch in flight,
+// without delivering it: after it the parts are idle and may be read
+// (Stats) or abandoned (Close after a failure).
+func (p *Pipeline[E]) joinWork() {
+	w := p.work
+	if w == nil || w.flying == nil || w.joined {
+		return
+	}
+	for range w.start {
+		<-w.done
+	}
+	w.joined = true
 }
 
 // finishWork runs and delivers everything queued, leaving every part

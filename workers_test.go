@@ -3,10 +3,13 @@ package tallyward
 import (
 	"crypto/sha256"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -133,11 +136,92 @@ func stopWorkersForCrash[E any](p *Pipeline[E]) {
 	if p.work == nil {
 		return
 	}
-	if p.work.flying != nil {
-		for range p.work.start {
-			<-p.work.done
-		}
-		p.work.flying = nil
-	}
+	p.joinWork()
 	p.stopWorkers()
+}
+
+// TestLiveScoreGroupedMatchesOneWorker: Score from several goroutines on a
+// Live over two workers (calls waiting for the core run as one batch),
+// and SubmitBatch with values, against the one-worker pipeline fed the
+// same sequence: each call's values equal its row, and every row equals
+// the one-worker row of the same event.
+func TestLiveScoreGroupedMatchesOneWorker(t *testing.T) {
+	n := 20_000
+	if testing.Short() {
+		n = 6_000
+	}
+	evs := genLogins(3, n, 2_000, 700, 0)
+	var mu sync.Mutex
+	rows := newRowLog()
+	var order []login
+	// Goroutines race for the core, so events arrive out of time order;
+	// a wide MaxDisorder keeps every one of them on time.
+	opts := Options{MaxDisorder: time.Hour, CommitEvery: 1500, CacheBytes: 1 << 20, Workers: 2, Dir: t.TempDir()}
+	p := openTest(t, richSpec(func(r Row[login]) {
+		mu.Lock()
+		rows.add(r)
+		order = append(order, r.Event)
+		mu.Unlock()
+	}), opts)
+	live := NewLive(p, &fakeClock{now: t0 + int64(24*time.Hour)})
+	scored := make([][]float64, len(evs))
+	const goroutines = 4
+	var wg sync.WaitGroup
+	for g := range goroutines {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			var vals []float64
+			for i := g; i < len(evs); i += goroutines {
+				var err error
+				vals, err = live.Score(t.Context(), evs[i], vals[:0])
+				if err != nil && !benign(err) {
+					t.Error(err)
+					return
+				}
+				if err == nil {
+					scored[i] = slices.Clone(vals)
+				}
+			}
+		}()
+	}
+	wg.Wait()
+	// A batch with values after the concurrent part.
+	tail := genLogins(4, 500, 200, 50, 0)
+	shift := evs[len(evs)-1].T - tail[0].T + 1
+	for i := range tail {
+		tail[i].T += shift
+		tail[i].ID += uint64(len(evs))
+	}
+	_, batchVals, err := live.SubmitBatch(t.Context(), tail, nil, true)
+	require.NoError(t, err)
+	require.NoError(t, live.Commit(t.Context(), nil))
+	require.NoError(t, live.Close())
+
+	require.Equal(t, len(evs)+len(tail), len(order), "rows")
+	ref := newRowLog()
+	rp := openTest(t, richSpec(ref.add), Options{MaxDisorder: time.Hour})
+	require.NoError(t, rp.Replay(t.Context(), slice(order)))
+	require.Equal(t, ref.rows, rows.rows, "rows of two workers and grouped Score vs one worker")
+	nf := len(rp.Names())
+	for seq, e := range order {
+		want := ref.rows[uint64(seq)]
+		if e.ID < uint64(len(evs)) {
+			require.Equal(t, want, rowText(ref, uint64(seq), scored[e.ID]), "event %d", e.ID)
+		} else {
+			k := int(e.ID) - len(evs)
+			require.Equal(t, want, rowText(ref, uint64(seq), batchVals[k*nf:(k+1)*nf]), "batch event %d", k)
+		}
+	}
+}
+
+// rowText renders vals as rowLog renders the row of seq in ref.
+func rowText(ref *rowLog, seq uint64, vals []float64) string {
+	var b strings.Builder
+	row := ref.rows[seq]
+	b.WriteString(row[:strings.Index(row, " late=")+len(" late=false")])
+	for _, v := range vals {
+		fmt.Fprintf(&b, " %x", math.Float64bits(v))
+	}
+	return b.String()
 }
