@@ -392,10 +392,12 @@ func (d *Distinct) indexAdd(i int) {
 }
 
 // buildIndex sizes the index to at least twice the chains (load <= 1/2)
-// and fills it; below smallExact entries it drops it.
+// and fills it; below smallExact entries it empties it.
 func (d *Distinct) buildIndex() {
 	if len(d.exact) <= smallExact {
-		d.index = nil
+		if d.index != nil {
+			d.index.slots = d.index.slots[:0] // kept: a set that shrank often grows again
+		}
 		return
 	}
 	n := 16
