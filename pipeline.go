@@ -828,6 +828,9 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	pr := p.progress()
 	pr.resumeNewest = resumeNewest
 	m.Extra = pr.append(nil)
+	// The next commit's sweep is at this watermark or above: let this
+	// commit read its records ahead, off the caller's path.
+	p.store.SweepAhead(p.expiryClock())
 	write := p.store.Commit
 	if async {
 		write = p.store.CommitAsync
