@@ -159,6 +159,7 @@ type Options struct {
 	// channel is empty. Score answers at once either way. Default: 1
 	// (rows emitted within Process): more workers change when Emit runs,
 	// so they are asked for (the replay command asks for one per core).
+	// The workers are goroutines that Close stops.
 	Workers int
 
 	// CommitEvery commits automatically after this many source events.

@@ -861,7 +861,10 @@ func (p *Pipeline[E]) Close() error {
 		return ErrReentered
 	}
 	var err error
-	if p.err == nil && !p.opts.ReadOnly {
+	if p.err == nil {
+		err = p.finishWork() // rows still queued go out, read-only or not
+	}
+	if err == nil && p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
 	p.joinWork() // after a failure: the workers must be done with the store
