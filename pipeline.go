@@ -338,10 +338,10 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		}
 		p.queue(seq, e, &p.in, late, false, sink)
 	} else if p.opts.Mode == Eager || late {
-		if err := p.apply(&p.in); err != nil {
+		if err := p.apply(&p.in, late); err != nil {
 			return dst, err
 		}
-		p.valuesAt(&p.in, p.vals, p.recs)
+		p.valuesAt(&p.in, p.vals, p.recs, late)
 		p.emit(seq, t, e, late)
 		if wantVals {
 			dst = append(dst, p.vals...)
@@ -491,8 +491,8 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 
 // apply updates the records of every entity the event names. Every part
 // must be idle (the caller's goroutine does the work).
-func (p *Pipeline[E]) apply(in *inputs) error {
-	exp := p.expiryClockAt(in.t)
+func (p *Pipeline[E]) apply(in *inputs, late bool) error {
+	exp := p.expiryClockFor(in.t, late)
 	for i, es := range p.ents {
 		key := in.keys[i]
 		fs := es.first
@@ -550,8 +550,8 @@ func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp 
 // valuesAt writes the features of the event described by in, as of its
 // time, to out. recs, if not nil, holds records just updated by apply (an
 // evicted record is still current: nothing changed it since).
-func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
-	exp := p.expiryClockAt(in.t)
+func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record, late bool) {
+	exp := p.expiryClockFor(in.t, late)
 	for i, es := range p.ents {
 		var rec *record
 		if recs != nil {
@@ -660,12 +660,12 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 			continue
 		}
 		for _, h := range p.batch {
-			if p.apply(&h.in) != nil {
+			if p.apply(&h.in, false) != nil {
 				return
 			}
 		}
 		for _, h := range p.batch {
-			p.valuesAt(&h.in, p.vals, nil)
+			p.valuesAt(&h.in, p.vals, nil, false)
 			p.emit(h.seq, t, h.e, false)
 		}
 		clear(p.batch)
@@ -697,7 +697,19 @@ func (p *Pipeline[E]) expiryClock() int64 {
 // Judging it at t at the latest keeps its answer as of its own time, and
 // agrees with every sweep: held events are never below the data watermark
 // a commit sweeps by. For Eager events t is at least the clock.
-func (p *Pipeline[E]) expiryClockAt(t int64) int64 { return min(p.expiryClock(), t) }
+//
+// A late event (applied under ApplyLate) is the exception: it is below
+// the data watermark, so a commit may already have swept a record that
+// was alive at its time but is expired by the clock. Judged at t, its
+// answer would depend on when commits ran (cache size, commit interval,
+// the workers' timing); judged by the clock, a record expired by the
+// clock reads as new whether or not a sweep removed it yet.
+func (p *Pipeline[E]) expiryClockFor(t int64, late bool) int64 {
+	if late {
+		return p.expiryClock()
+	}
+	return min(p.expiryClock(), t)
+}
 
 // Advance raises the watermark to w if w is higher, emitting the Settled
 // rows it passes. Live mode calls it when the source is idle; events below

@@ -166,7 +166,7 @@ func (p *Pipeline[E]) queue(seq uint64, e E, in *inputs, late, join bool, sink *
 	b.n++
 	b.seq = append(b.seq, seq)
 	b.t = append(b.t, in.t)
-	b.exp = append(b.exp, p.expiryClockAt(in.t))
+	b.exp = append(b.exp, p.expiryClockFor(in.t, late))
 	b.late = append(b.late, late)
 	b.ev = append(b.ev, e)
 	b.sinks = append(b.sinks, sink)
