@@ -40,9 +40,11 @@ func Flags(fs *flag.FlagSet) *RunOptions {
 	fs.Uint64Var(&o.Seed, "seed", 1, "seed of every generated stream")
 	fs.StringVar(&o.Input, "input", "", "CSV file of key,item[,value[,time]] rows: report on your data")
 	fs.BoolVar(&o.Speed, "speed", false, "also measure speed against the naive Pebble baseline and the in-memory ceiling")
-	fs.BoolVar(&o.SpeedConfig.Huge, "speed.10m", false, "speed at 10M entities too (long, needs several GiB)")
-	fs.IntVar(&o.SpeedConfig.Events, "speed.events", 0, "events per speed run (default 1M)")
-	fs.IntVar(&o.SpeedConfig.Entities, "speed.entities", 0, "accounts (and devices) of the speed matrix (default 1M)")
+	fs.IntVar(&o.SpeedConfig.Entities, "speed.entities", 0, "live entities of the main speed scale (default 1M; a tenth and ten times it are measured too)")
+	fs.BoolVar(&o.SpeedConfig.SkipHuge, "speed.skip10x", false, "leave out the scale of ten times -speed.entities")
+	fs.IntVar(&o.SpeedConfig.Draws, "speed.draws", 0, "largest number of events of each drawn phase (default 1M)")
+	fs.IntVar(&o.SpeedConfig.NaiveEvents, "speed.naive", 0, "events of each phase the naive baseline is timed on (default 100k)")
+	fs.IntVar(&o.SpeedConfig.LatencyCalls, "speed.calls", 0, "Score calls of each drawn phase timed for latency (default 300k)")
 	return o
 }
 
