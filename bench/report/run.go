@@ -30,6 +30,8 @@ type RunOptions struct {
 	Speed bool
 	// Speed sizes: see SpeedConfig. Zero means its default.
 	SpeedConfig SpeedConfig
+	// Progress receives a line as each speed pass ends. Default nil.
+	Progress io.Writer
 }
 
 // Flags declares the options on fs.
@@ -68,6 +70,9 @@ func Generate(o RunOptions) (*Report, error) {
 	} else {
 		r, err = Accuracy(Config{Quick: o.Quick, Seed: o.Seed})
 		if err == nil && o.Speed && !o.Quick {
+			if o.SpeedConfig.Progress == nil {
+				o.SpeedConfig.Progress = o.Progress
+			}
 			err = Speed(r, o.SpeedConfig)
 		}
 	}
@@ -83,6 +88,9 @@ func Generate(o RunOptions) (*Report, error) {
 // bound, 1 a figure outside or a failure, 2 bad input.
 func Main(o RunOptions, stdout, stderr io.Writer) int {
 	start := time.Now()
+	if o.Progress == nil {
+		o.Progress = stderr
+	}
 	r, err := Generate(o)
 	if err != nil {
 		fmt.Fprintf(stderr, "report: %v\n", err)

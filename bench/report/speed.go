@@ -3,6 +3,7 @@ package report
 import (
 	"bufio"
 	"fmt"
+	"io"
 	"math"
 	"os"
 	"runtime"
@@ -34,25 +35,29 @@ type SpeedConfig struct {
 	SkipHuge bool
 	// Draws is the largest number of events of each drawn phase (Zipf,
 	// uniform); a scale with fewer entities draws as many events as it
-	// has entities. Default 1M.
+	// has entities. Default 500k.
 	Draws int
 	// NaiveEvents is how many events of each phase the naive baseline is
-	// timed on (it runs about ten times slower than the pipeline). The
-	// rest of the arrival phase is loaded in bulk, untimed, so that the
-	// baseline then holds every entity. Default 100k.
+	// timed on (it runs several times slower than the pipeline): the
+	// middle ones of the arrival phase, whose others are loaded in bulk,
+	// untimed, before and after them, so that the baseline ends the phase
+	// holding every entity; the first ones of each drawn phase.
+	// Default 100k.
 	NaiveEvents int
 	// LatencyCalls is the number of calls of each drawn phase whose
-	// inline latency is measured. Default 300k.
+	// inline latency is measured. Default 200k.
 	LatencyCalls int
 	// Dir holds the on-disk stores. Default: a new temporary directory.
 	Dir string
+	// Progress, when set, receives a line as each pass ends. Default nil.
+	Progress io.Writer
 }
 
 func (c SpeedConfig) withDefaults() SpeedConfig {
 	c.Entities = cmpOr(c.Entities, 1_000_000)
-	c.Draws = cmpOr(c.Draws, 1_000_000)
+	c.Draws = cmpOr(c.Draws, 500_000)
 	c.NaiveEvents = cmpOr(c.NaiveEvents, 100_000)
-	c.LatencyCalls = cmpOr(c.LatencyCalls, 300_000)
+	c.LatencyCalls = cmpOr(c.LatencyCalls, 200_000)
 	return c
 }
 
@@ -263,9 +268,11 @@ func runCeiling(pop *workload.Population, scale int) pass {
 	return r
 }
 
-// runNaive times the baseline on the first n events of each phase; the
-// rest of the arrival phase is loaded in bulk between the timed spans so
-// that the drawn phases meet a store holding every entity.
+// runNaive times the baseline on n events of each phase: the middle of
+// the arrival phase (the rest of it loaded in bulk around them, so that
+// the store is timed at about its average size during the phase and the
+// drawn phases meet a store holding every entity), the first n of each
+// drawn phase.
 func runNaive(pop *workload.Population, scale, n int, dir string) (pass, error) {
 	r := pass{name: "naive: Pebble Get+decode+update+encode+Set per entity", scale: scale,
 		live: int64(pop.Accounts + pop.Devices), heapPer: math.NaN()}
@@ -277,8 +284,16 @@ func runNaive(pop *workload.Population, scale, n int, dir string) (pass, error) 
 	}
 	for i, ev := range phaseEvents(pop) {
 		k := min(n, len(ev))
+		lo := 0
+		if i == 0 {
+			lo = (len(ev) - k) / 2
+			if err := nv.LoadNew(ev[:lo]); err != nil {
+				nv.Close()
+				return r, err
+			}
+		}
 		m := startMeter()
-		for _, e := range ev[:k] {
+		for _, e := range ev[lo : lo+k] {
 			if err := nv.Event(e); err != nil {
 				nv.Close()
 				return r, err
@@ -287,7 +302,7 @@ func runNaive(pop *workload.Population, scale, n int, dir string) (pass, error) 
 		r.phases = append(r.phases, m.stop(k))
 		r.ran = append(r.ran, true)
 		if i == 0 {
-			if err := nv.LoadNew(ev[k:]); err != nil {
+			if err := nv.LoadNew(ev[lo+k:]); err != nil {
 				nv.Close()
 				return r, err
 			}
@@ -333,6 +348,17 @@ func Speed(r *Report, c SpeedConfig) error {
 	var passes []pass
 	var notes []string
 	var lat *Table
+	begin := time.Now()
+	note := func(p pass) {
+		if c.Progress == nil {
+			return
+		}
+		var eps []string
+		for i, ph := range p.phases {
+			eps = append(eps, fmt.Sprintf("%s %.0f/s", phaseShort[i], ph.eps()))
+		}
+		fmt.Fprintf(c.Progress, "speed %v: %d entities, %s: %s\n", time.Since(begin).Round(time.Second), p.scale, p.name, strings.Join(eps, ", "))
+	}
 	for _, s := range scales {
 		pop := workload.GeneratePopulation(workload.PopulationParams{Entities: s.entities, Draws: min(c.Draws, s.entities)})
 		nv, err := runNaive(pop, s.entities, c.NaiveEvents, newDir())
@@ -341,8 +367,10 @@ func Speed(r *Report, c SpeedConfig) error {
 		}
 		os.RemoveAll(fmt.Sprintf("%s/%d", dir, sub))
 		passes = append(passes, nv)
+		note(nv)
 		if need, have := uint64(ceilingBytesPerEntity*s.entities), memAvailable(); have == 0 || need < have/2 {
 			passes = append(passes, runCeiling(pop, s.entities))
+			note(passes[len(passes)-1])
 		} else {
 			notes = append(notes, fmt.Sprintf("The ceiling was not run at %d entities: its maps would need about %.1f GiB (%d B per entity) and the machine had %.1f GiB available.",
 				s.entities, float64(need)/(1<<30), ceilingBytesPerEntity, float64(have)/(1<<30)))
@@ -372,11 +400,15 @@ func Speed(r *Report, c SpeedConfig) error {
 				os.RemoveAll(d)
 			}
 			passes = append(passes, pr)
+			note(pr)
 			runtime.GC()
 		}
 		if s.entities == c.Entities {
 			if lat, err = latency(c, pop, newDir()); err != nil {
 				return err
+			}
+			if c.Progress != nil {
+				fmt.Fprintf(c.Progress, "speed %v: latency done\n", time.Since(begin).Round(time.Second))
 			}
 		}
 		pop = nil
@@ -407,7 +439,9 @@ func speedTables(r *Report, c SpeedConfig, passes []pass, notes []string) {
 			"The TTL is set longer than the stream's 7 simulated days, so no record expires and the pipeline, the baseline and the ceiling all end holding exactly the population. " +
 			"Pipelines use the default options otherwise: a 256 MiB record cache (the 'cached' column of the next table says how many records it held), automatic commits every 100k events, Settled with MaxDisorder 30 s. " +
 			"In memory: Options.Dir empty (Pebble on an in-memory filesystem); on disk: a directory. " +
-			fmt.Sprintf("The naive baseline (Pebble opened with exactly the store's settings, store.PebbleOptions) is timed on the first %d events of each phase; the rest of the arrival phase is loaded in bulk, untimed, so the drawn phases meet a store holding every entity. ", c.NaiveEvents) +
+			"The main scale runs all four; a tenth of it runs on disk, Eager only (a point for the plot); ten times it runs on disk, Eager and Settled (in memory the whole store would sit in the Go heap, and two more passes of that size would not fit the report's 15 minutes). " +
+			"Hit rate: Stats.CacheHits over hits and misses during the phase, as the cache counts them (a lookup of a new entity counts as a miss). " +
+			fmt.Sprintf("The naive baseline (Pebble opened with exactly the store's settings, store.PebbleOptions) is timed on %d events of each phase: the middle ones of the arrival phase, whose other events are loaded in bulk (untimed, without reads) before and after them, and the first ones of each drawn phase, which meet a store holding every entity. ", c.NaiveEvents) +
 			"The ceiling keeps the same aggregates in Go maps and persists nothing. " +
 			"Ratios: events/s over the baseline's (wall) and the baseline's CPU per event over the run's (CPU), phase by phase; CPU is process CPU time, every goroutine included, the steadier figure on a shared machine.",
 		Header: []string{"entities", "phase", "run", "events timed", "events/s", "CPU us/event", "allocs/event", "x naive (wall)", "x naive (CPU)", "x ceiling (wall)", "x ceiling (CPU)", "cache hit rate"},
