@@ -29,9 +29,9 @@ import (
 )
 
 func main() {
-	accounts := flag.Int("accounts", 200_000, "accounts of the six-feature workload")
-	devices := flag.Int("devices", 600_000, "devices of the six-feature workload")
-	events := flag.Int("events", 1_000_000, "events of the six-feature workload")
+	accounts := flag.Int("accounts", 500_000, "accounts of the six-feature workload")
+	devices := flag.Int("devices", 1_500_000, "devices of the six-feature workload")
+	events := flag.Int("events", 2_500_000, "events of the six-feature workload")
 	naive := flag.Int("naive", 200_000, "events the six-feature naive baseline is timed on")
 	oneFeature := flag.Int("one-feature-events", 2_000_000, "timed events of the one-feature runs (after 2M warm-up events)")
 	signin := flag.Int("signin-events", 1_000_000, "sign-in attempts the demo generates (five sixths are replayed)")
