@@ -267,7 +267,7 @@ type Store struct {
 	stageMu sync.Mutex
 	// staged caches pendingBytes for the parts' eviction loops.
 	staged atomic.Int64
-	closed         bool
+	closed bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
@@ -820,7 +820,6 @@ const pendingNodeBytes = 64
 // the caller must commit to keep memory within the budget: eviction can
 // only move dirty records into the batch, not out of memory.
 func (s *Store) OverBudget() bool {
-	s.noteStaged()
 	return s.pending != nil && 2*s.pendingBytes() > s.budget.limit
 }
 
