@@ -37,6 +37,7 @@ var (
 	featCache       = flag.Int64("features.cache", 0, "record cache bytes (0: 256 MiB scaled by accounts/1M)")
 	featNaive       = flag.Int("features.naive-events", 300_000, "events of the naive baseline (a prefix: it runs ~40x slower)")
 	featCommitEvery = flag.Int("features.commit-every", 100_000, "automatic commit interval (events) of the latency benchmark")
+	benchWorkers    = flag.Int("workers", 0, "Options.Workers of the pipelines of BenchmarkFeatures, BenchmarkFeaturesLatency, BenchmarkLive and BenchmarkProcess (0: the pipeline's default)")
 )
 
 // payment is the workload's event (package workload holds the generator,
@@ -139,7 +140,7 @@ func BenchmarkFeatures(b *testing.B) {
 			var cpu time.Duration
 			for range b.N {
 				b.StopTimer()
-				opts := tallyward.Options{Dir: b.TempDir(), Mode: c.mode, MaxDisorder: c.dis, CacheBytes: featureCacheBytes()}
+				opts := tallyward.Options{Dir: b.TempDir(), Mode: c.mode, MaxDisorder: c.dis, CacheBytes: featureCacheBytes(), Workers: *benchWorkers}
 				base := heapNow()
 				p, err := tallyward.Open(featureSpec(func(tallyward.Row[payment]) { rows++ }), opts)
 				if err != nil {
@@ -266,7 +267,7 @@ func BenchmarkFeaturesLatency(b *testing.B) {
 	worstAt, worstCut := 0, false
 	for range b.N {
 		b.StopTimer()
-		p, err := tallyward.Open(featureSpec(nil), tallyward.Options{Dir: b.TempDir(), CacheBytes: 4 << 30, CommitEvery: commitEvery})
+		p, err := tallyward.Open(featureSpec(nil), tallyward.Options{Dir: b.TempDir(), CacheBytes: 4 << 30, CommitEvery: commitEvery, Workers: *benchWorkers})
 		if err != nil {
 			b.Fatal(err)
 		}

@@ -41,7 +41,7 @@ func BenchmarkLive(b *testing.B) {
 			var late uint64
 			for range b.N {
 				b.StopTimer()
-				opts := tallyward.Options{Dir: b.TempDir(), MaxDisorder: 10 * time.Minute, CacheBytes: featureCacheBytes()}
+				opts := tallyward.Options{Dir: b.TempDir(), MaxDisorder: 10 * time.Minute, CacheBytes: featureCacheBytes(), Workers: *benchWorkers}
 				p, err := tallyward.Open(featureSpec(nil), opts)
 				if err != nil {
 					b.Fatal(err)

@@ -89,7 +89,7 @@ func BenchmarkProcess(b *testing.B) {
 		{"disk/cache-16MiB/warm", true, 16 << 20, true},
 	} {
 		b.Run(c.name, func(b *testing.B) {
-			opts := tallyward.Options{CacheBytes: c.cache}
+			opts := tallyward.Options{CacheBytes: c.cache, Workers: *benchWorkers}
 			if c.disk {
 				opts.Dir = b.TempDir()
 			}

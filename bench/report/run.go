@@ -46,6 +46,7 @@ func Flags(fs *flag.FlagSet) *RunOptions {
 	fs.BoolVar(&o.SpeedConfig.SkipHuge, "speed.skip10x", false, "leave out the scale of ten times -speed.entities")
 	fs.IntVar(&o.SpeedConfig.Draws, "speed.draws", 0, "largest number of events of each drawn phase (default 1M)")
 	fs.IntVar(&o.SpeedConfig.NaiveEvents, "speed.naive", 0, "events of each phase the naive baseline is timed on (default 100k)")
+	fs.IntVar(&o.SpeedConfig.Workers, "speed.workers", 0, "Options.Workers of every measured pipeline (default: the pipeline's default)")
 	fs.IntVar(&o.SpeedConfig.LatencyCalls, "speed.calls", 0, "Score calls of each drawn phase timed for latency (default 300k)")
 	return o
 }

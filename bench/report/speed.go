@@ -51,6 +51,9 @@ type SpeedConfig struct {
 	Dir string
 	// Progress, when set, receives a line as each pass ends. Default nil.
 	Progress io.Writer
+	// Workers is Options.Workers of every pipeline. Default 0: the
+	// pipeline's default.
+	Workers int
 }
 
 func (c SpeedConfig) withDefaults() SpeedConfig {
@@ -160,15 +163,15 @@ func modeName(m tallyward.Mode) string {
 // (a 256 MiB record cache, automatic commits every 100k events) except
 // the directory, the mode and a TTL longer than the stream, so that the
 // live set at the end is the population.
-func pipelineOptions(pop *workload.Population, dir string, mode tallyward.Mode) tallyward.Options {
-	opts := tallyward.Options{Dir: dir, Mode: mode, TTL: pop.NoExpiry()}
+func pipelineOptions(pop *workload.Population, dir string, mode tallyward.Mode, workers int) tallyward.Options {
+	opts := tallyward.Options{Dir: dir, Mode: mode, TTL: pop.NoExpiry(), Workers: workers}
 	if mode == tallyward.Settled {
 		opts.MaxDisorder = 30 * time.Second
 	}
 	return opts
 }
 
-func runPipeline(pop *workload.Population, scale int, dir string, mode tallyward.Mode) (pass, error) {
+func runPipeline(pop *workload.Population, scale int, dir string, mode tallyward.Mode, workers int) (pass, error) {
 	where := "in memory"
 	if dir != "" {
 		where = "on disk"
@@ -176,7 +179,7 @@ func runPipeline(pop *workload.Population, scale int, dir string, mode tallyward
 	r := pass{name: fmt.Sprintf("pipeline %s, %s", where, modeName(mode)), scale: scale}
 	var rows int
 	base := heapNow()
-	p, err := tallyward.Open(workload.Spec(func(tallyward.Row[workload.Payment]) { rows++ }), pipelineOptions(pop, dir, mode))
+	p, err := tallyward.Open(workload.Spec(func(tallyward.Row[workload.Payment]) { rows++ }), pipelineOptions(pop, dir, mode, workers))
 	if err != nil {
 		return r, err
 	}
@@ -392,7 +395,7 @@ func Speed(r *Report, c SpeedConfig) error {
 			if k.disk {
 				d = newDir()
 			}
-			pr, err := runPipeline(pop, s.entities, d, k.mode)
+			pr, err := runPipeline(pop, s.entities, d, k.mode, c.Workers)
 			if err != nil {
 				return err
 			}
@@ -437,6 +440,7 @@ func speedTables(r *Report, c SpeedConfig, passes []pass, notes []string) {
 			"a drawn event pays from the account's own device nine times in ten, else from a device drawn the same way, so no record is created after arrival. " +
 			fmt.Sprintf("The drawn phases have min(entities, %d) events each. ", c.Draws) +
 			"The TTL is set longer than the stream's 7 simulated days, so no record expires and the pipeline, the baseline and the ceiling all end holding exactly the population. " +
+			fmt.Sprintf("Workers: %d (0: the pipeline's default, one). ", c.Workers) +
 			"Pipelines use the default options otherwise: a 256 MiB record cache (the 'cached' column of the next table says how many records it held), automatic commits every 100k events, Settled with MaxDisorder 30 s. " +
 			"In memory: Options.Dir empty (Pebble on an in-memory filesystem); on disk: a directory. " +
 			"The main scale runs all four; a tenth of it runs on disk, Eager only (a point for the plot); ten times it runs on disk, Eager and Settled (in memory the whole store would sit in the Go heap, and two more passes of that size would not fit the report's 15 minutes). " +
@@ -540,7 +544,7 @@ func speedPlot(r *Report, passes []pass) error {
 // the call that cut an automatic commit, and the calls made while the
 // commit was written in the background.
 func latency(c SpeedConfig, pop *workload.Population, dir string) (*Table, error) {
-	p, err := tallyward.Open(workload.Spec(nil), pipelineOptions(pop, dir, tallyward.Eager))
+	p, err := tallyward.Open(workload.Spec(nil), pipelineOptions(pop, dir, tallyward.Eager, c.Workers))
 	if err != nil {
 		return nil, err
 	}
