@@ -21,7 +21,7 @@
 // figures carry no bound and are never asserted. Costs: the quick accuracy
 // report takes seconds; the full one about a minute of CPU; the speed
 // report about 12 minutes of CPU on 2 cores (mostly the two 10M-entity
-// passes) and about 4 GiB at its peak.
+// passes) and about 3.5 GiB at its peak.
 //
 // Not for: timed assertions (speed is reported, not checked), or running
 // beside other measurements (speed figures swing with the machine's load,
