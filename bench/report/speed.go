@@ -108,8 +108,7 @@ func (p phaseRun) hitRate() float64 {
 type pass struct {
 	name     string
 	scale    int
-	phases   []phaseRun // nil entries: not run
-	ran      []bool
+	phases   []phaseRun // one per phase, in stream order
 	live     int64
 	cached   int
 	heapPer  float64 // Go heap bytes per cached record (or per entity)
@@ -203,7 +202,6 @@ func runPipeline(pop *workload.Population, scale int, dir string, mode tallyward
 		s1 := p.Stats()
 		ph.hits, ph.misses, ph.hitKnown = s1.CacheHits-s0.CacheHits, s1.CacheMisses-s0.CacheMisses, true
 		r.phases = append(r.phases, ph)
-		r.ran = append(r.ran, true)
 		total += len(ev)
 	}
 	// Land any commit in flight so that the heap holds records only.
@@ -262,7 +260,6 @@ func runCeiling(pop *workload.Population, scale int) pass {
 			c.Event(e)
 		}
 		r.phases = append(r.phases, m.stop(len(ev)))
-		r.ran = append(r.ran, true)
 	}
 	h := heapNow()
 	r.cached = c.Entities()
@@ -303,7 +300,6 @@ func runNaive(pop *workload.Population, scale, n int, dir string) (pass, error) 
 			}
 		}
 		r.phases = append(r.phases, m.stop(k))
-		r.ran = append(r.ran, true)
 		if i == 0 {
 			if err := nv.LoadNew(ev[lo+k:]); err != nil {
 				nv.Close()
@@ -311,7 +307,6 @@ func runNaive(pop *workload.Population, scale, n int, dir string) (pass, error) 
 			}
 		}
 	}
-	r.cached = 0
 	r.storePer = float64(nv.DiskBytes()) / float64(r.live)
 	return r, nv.Close()
 }
