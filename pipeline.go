@@ -106,7 +106,8 @@ type entityState[E any] struct {
 	first   int         // index of the entity's first feature in a row
 	zero    []Aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
-	ttl     int64 // records idle this long (by the watermark) expire; 0 never
+	ttl     int64         // records idle this long (by the watermark) expire; 0 never
+	lay     *recordLayout // how its records are laid out in memory (record.go)
 }
 
 // expired reports whether rec has been idle for the entity's ttl as of
@@ -121,13 +122,7 @@ func (es *entityState[E]) part(key string) *store.Table[*record] {
 	return es.parts[store.PartOf(key, len(es.parts))]
 }
 
-func (es *entityState[E]) fresh() []Aggregate {
-	aggs := make([]Aggregate, len(es.kinds))
-	for i, k := range es.kinds {
-		aggs[i] = k.NewAggregate(time.Duration(es.horizon))
-	}
-	return aggs
-}
+func (es *entityState[E]) fresh() []Aggregate { return es.lay.fresh() }
 
 // inputs are the values extracted from one event, validated before any
 // state is touched.
@@ -167,10 +162,11 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 			es.kinds = append(es.kinds, f.Kind)
 			p.names = append(p.names, ent.Name+"."+f.Name)
 		}
+		es.lay = newRecordLayout(es.kinds, time.Duration(horizon))
 		es.zero = es.fresh()
 		es.ttl = ttlFor(ent.Features, opts)
 		es.parts = store.NewParts(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
-			return decodeRecord(b, es.fresh)
+			return es.lay.decode(b)
 		}, opts.Workers, peekLast)
 		p.nfeat += len(ent.Features)
 		p.ents = append(p.ents, es)
@@ -325,7 +321,11 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if !p.hasMax || t > p.maxT {
 		p.hasMax, p.maxT = true, t
 	}
-	if p.work != nil && (p.opts.Mode == Eager || late) {
+	// A lone Score with nothing queued runs on the caller's goroutine, as
+	// with one worker: handing one event to the workers and waiting for
+	// it would only add latency.
+	direct := p.work == nil || wantVals && p.sink == nil && p.work.idle()
+	if !direct && (p.opts.Mode == Eager || late) {
 		var sink *[]float64
 		if wantVals {
 			// The row's values are appended to the sink when its batch is
@@ -357,7 +357,9 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			// Score answers before it returns, with its event's
 			// callbacks delivered, as with one worker.
 			err := p.finishWork()
-			dst, p.ownSink = p.ownSink, nil
+			if !direct {
+				dst, p.ownSink = p.ownSink, nil
+			}
 			if err != nil {
 				return dst, err
 			}
@@ -529,10 +531,10 @@ func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp 
 			c.erasedSkips++
 			return nil, nil
 		}
-		sl = tb.Insert(key, &record{last: t, aggs: es.fresh()})
+		sl = tb.Insert(key, es.lay.newRecord(t))
 		c.live++
 	} else if es.expired(sl.Value, exp) {
-		sl.Value.aggs = es.fresh()
+		sl.Value.reset()
 	}
 	rec := sl.Value
 	for j, a := range rec.aggs {
@@ -828,6 +830,9 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	pr := p.progress()
 	pr.resumeNewest = resumeNewest
 	m.Extra = pr.append(nil)
+	// The next commit's sweep is at this watermark or above: let this
+	// commit read its records ahead, off the caller's path.
+	p.store.SweepAhead(p.expiryClock())
 	write := p.store.Commit
 	if async {
 		write = p.store.CommitAsync
@@ -852,7 +857,10 @@ func (p *Pipeline[E]) Close() error {
 		return ErrReentered
 	}
 	var err error
-	if p.err == nil && !p.opts.ReadOnly {
+	if p.err == nil {
+		err = p.finishWork() // rows still queued go out, read-only or not
+	}
+	if err == nil && p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
 	p.joinWork() // after a failure: the workers must be done with the store
