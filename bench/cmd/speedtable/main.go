@@ -4,8 +4,8 @@
 // reads their reported metrics and prints one row per figure beside its
 // target.
 //
-//	go run ./bench/cmd/speedtable                 # about 10 min on 2 cores
-//	go run ./bench/cmd/speedtable -accounts 1000000 -devices 3000000 -events 5000000   # full size, long
+//	go run ./bench/cmd/speedtable                 # full size, about 5-10 min on 2 cores
+//	go run ./bench/cmd/speedtable -accounts 200000 -devices 600000 -events 1000000    # a fifth, quicker
 //
 // Run it from the module root. Every figure comes from a benchmark that
 // measures its baseline in the same process (naive store, in-memory
@@ -30,9 +30,9 @@ import (
 )
 
 func main() {
-	accounts := flag.Int("accounts", 500_000, "accounts of the six-feature workload")
-	devices := flag.Int("devices", 1_500_000, "devices of the six-feature workload")
-	events := flag.Int("events", 2_500_000, "events of the six-feature workload")
+	accounts := flag.Int("accounts", 1_000_000, "accounts of the six-feature workload")
+	devices := flag.Int("devices", 3_000_000, "devices of the six-feature workload")
+	events := flag.Int("events", 5_000_000, "events of the six-feature workload")
 	naive := flag.Int("naive", 200_000, "events the six-feature naive baseline is timed on")
 	oneFeature := flag.Int("one-feature-events", 2_000_000, "timed events of the one-feature runs (after 2M warm-up events)")
 	signin := flag.Int("signin-events", 1_000_000, "sign-in attempts the demo generates (five sixths are replayed)")
