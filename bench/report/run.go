@@ -30,6 +30,8 @@ type RunOptions struct {
 	Speed bool
 	// Speed sizes: see SpeedConfig. Zero means its default.
 	SpeedConfig SpeedConfig
+	// Progress receives a line as each speed pass ends. Default nil.
+	Progress io.Writer
 }
 
 // Flags declares the options on fs.
@@ -40,9 +42,12 @@ func Flags(fs *flag.FlagSet) *RunOptions {
 	fs.Uint64Var(&o.Seed, "seed", 1, "seed of every generated stream")
 	fs.StringVar(&o.Input, "input", "", "CSV file of key,item[,value[,time]] rows: report on your data")
 	fs.BoolVar(&o.Speed, "speed", false, "also measure speed against the naive Pebble baseline and the in-memory ceiling")
-	fs.BoolVar(&o.SpeedConfig.Huge, "speed.10m", false, "speed at 10M entities too (long, needs several GiB)")
-	fs.IntVar(&o.SpeedConfig.Events, "speed.events", 0, "events per speed run (default 1M)")
-	fs.IntVar(&o.SpeedConfig.Entities, "speed.entities", 0, "accounts (and devices) of the speed matrix (default 1M)")
+	fs.IntVar(&o.SpeedConfig.Entities, "speed.entities", 0, "live entities of the main speed scale (default 1M; a tenth and ten times it are measured too)")
+	fs.BoolVar(&o.SpeedConfig.SkipHuge, "speed.skip10x", false, "leave out the scale of ten times -speed.entities")
+	fs.IntVar(&o.SpeedConfig.Draws, "speed.draws", 0, "largest number of events of each drawn phase (default 1M)")
+	fs.IntVar(&o.SpeedConfig.NaiveEvents, "speed.naive", 0, "events of each phase the naive baseline is timed on (default 100k)")
+	fs.IntVar(&o.SpeedConfig.Workers, "speed.workers", 0, "Options.Workers of every measured pipeline (default: the pipeline's default)")
+	fs.IntVar(&o.SpeedConfig.LatencyCalls, "speed.calls", 0, "Score calls of each drawn phase timed for latency (default 300k)")
 	return o
 }
 
@@ -66,6 +71,9 @@ func Generate(o RunOptions) (*Report, error) {
 	} else {
 		r, err = Accuracy(Config{Quick: o.Quick, Seed: o.Seed})
 		if err == nil && o.Speed && !o.Quick {
+			if o.SpeedConfig.Progress == nil {
+				o.SpeedConfig.Progress = o.Progress
+			}
 			err = Speed(r, o.SpeedConfig)
 		}
 	}
@@ -81,6 +89,9 @@ func Generate(o RunOptions) (*Report, error) {
 // bound, 1 a figure outside or a failure, 2 bad input.
 func Main(o RunOptions, stdout, stderr io.Writer) int {
 	start := time.Now()
+	if o.Progress == nil {
+		o.Progress = stderr
+	}
 	r, err := Generate(o)
 	if err != nil {
 		fmt.Fprintf(stderr, "report: %v\n", err)

@@ -219,6 +219,7 @@ type Naive struct {
 	db  *pebble.DB
 	key []byte
 	buf []byte
+	one []byte
 	out [6]float64
 }
 
@@ -265,18 +266,26 @@ func (n *Naive) load(key string, fresh func() []tallyward.Aggregate) ([]tallywar
 }
 
 func (n *Naive) save(key string, aggs []tallyward.Aggregate) error {
-	n.buf = n.buf[:0]
-	var one []byte
-	var err error
-	for _, a := range aggs {
-		if one, err = a.AppendBinary(one[:0]); err != nil {
-			return err
-		}
-		n.buf = binary.AppendUvarint(n.buf, uint64(len(one)))
-		n.buf = append(n.buf, one...)
+	if err := n.encode(aggs); err != nil {
+		return err
 	}
 	n.key = append(n.key[:0], key...)
 	return n.db.Set(n.key, n.buf, pebble.NoSync)
+}
+
+// encode leaves aggs' encoding in n.buf: each aggregate's bytes after
+// their length.
+func (n *Naive) encode(aggs []tallyward.Aggregate) error {
+	n.buf = n.buf[:0]
+	var err error
+	for _, a := range aggs {
+		if n.one, err = a.AppendBinary(n.one[:0]); err != nil {
+			return err
+		}
+		n.buf = binary.AppendUvarint(n.buf, uint64(len(n.one)))
+		n.buf = append(n.buf, n.one...)
+	}
+	return nil
 }
 
 // Event loads both entities, applies e, reads its features and stores both.
@@ -301,3 +310,148 @@ func (c *Ceiling) Last() [6]float64 { return c.out }
 
 // Last returns the six features of the last event, in spec order.
 func (n *Naive) Last() [6]float64 { return n.out }
+
+// PopulationParams sizes a Population. Zero fields mean their defaults.
+type PopulationParams struct {
+	// Entities is the number of live entities the stream leaves: half
+	// accounts, half devices. Default 1000000.
+	Entities int
+	// Draws is the number of events of each drawn phase. Default
+	// Entities.
+	Draws int
+	// Days is the simulated span of the whole stream. Default 7.
+	Days int
+}
+
+func (p PopulationParams) withDefaults() PopulationParams {
+	if p.Entities <= 0 {
+		p.Entities = 1_000_000
+	}
+	p.Entities = max(p.Entities&^1, 2)
+	if p.Draws <= 0 {
+		p.Draws = p.Entities
+	}
+	if p.Days <= 0 {
+		p.Days = 7
+	}
+	return p
+}
+
+// Population is a stream over a known set of entities, in three phases
+// whose event times follow one another:
+//
+//   - Arrive: every event meets a new account and its own new device
+//     (Entities/2 events), so after it exactly Entities keys exist;
+//   - Zipf: accounts drawn Zipf(1.1) over those accounts, ranks spread
+//     over them by a fixed permutation (the hottest account is not the
+//     oldest);
+//   - Uniform: accounts drawn uniformly over them.
+//
+// In both drawn phases an account pays from its own device nine times in
+// ten and otherwise from a device drawn the same way, so no new key
+// appears: with a TTL longer than Span nothing expires, and the live set
+// at the end is exactly Entities (Accounts + Devices).
+type Population struct {
+	Arrive, Zipf, Uniform []Payment
+	Accounts, Devices     int
+	// Span is the simulated time from the first event to the last.
+	Span time.Duration
+}
+
+// NoExpiry is a TTL longer than the population's span: with it no record
+// expires during the stream.
+func (p *Population) NoExpiry() time.Duration { return p.Span + 24*time.Hour }
+
+// GeneratePopulation returns the population of p, from a fixed seed.
+func GeneratePopulation(p PopulationParams) *Population {
+	p = p.withDefaults()
+	n := p.Entities / 2
+	acct := make([]string, n)
+	dev := make([]string, n)
+	for i := range acct {
+		acct[i] = fmt.Sprintf("acct-%08d", i)
+		dev[i] = fmt.Sprintf("dev-%09d", i)
+	}
+	total := int64(n + 2*p.Draws)
+	span := int64(p.Days) * int64(24*time.Hour)
+	step := span / total
+	r := rand.New(rand.NewPCG(9, 10))
+	amount := func() float64 { return math.Round(r.ExpFloat64()*5000) / 100 }
+	pop := &Population{Accounts: n, Devices: n, Span: time.Duration(step * (total - 1))}
+	seq := int64(0)
+	next := func(a, d int) Payment {
+		e := Payment{T: Start + seq*step, Account: acct[a], Device: dev[d], Amount: amount()}
+		seq++
+		return e
+	}
+	pop.Arrive = make([]Payment, n)
+	for i := range pop.Arrive {
+		pop.Arrive[i] = next(i, i)
+	}
+	// Zipf ranks spread over the keys by multiplication with a constant
+	// coprime to n (a permutation of 0..n-1).
+	spread := func(mul uint64) func(uint64) int {
+		for gcd(mul, uint64(n)) != 1 {
+			mul += 2
+		}
+		return func(k uint64) int { return int(k * mul % uint64(n)) }
+	}
+	za, zd := rand.NewZipf(r, 1.1, 1, uint64(n-1)), rand.NewZipf(r, 1.1, 1, uint64(n-1))
+	pa, pd := spread(2654435761), spread(40503)
+	draw := func(acctDraw, devDraw func() int) []Payment {
+		ev := make([]Payment, p.Draws)
+		for i := range ev {
+			a := acctDraw()
+			d := a
+			if r.IntN(10) == 0 {
+				d = devDraw()
+			}
+			ev[i] = next(a, d)
+		}
+		return ev
+	}
+	pop.Zipf = draw(func() int { return pa(za.Uint64()) }, func() int { return pd(zd.Uint64()) })
+	pop.Uniform = draw(func() int { return r.IntN(n) }, func() int { return r.IntN(n) })
+	return pop
+}
+
+func gcd(a, b uint64) uint64 {
+	for b != 0 {
+		a, b = b, a%b
+	}
+	return a
+}
+
+// LoadNew stores the records of events that each meet only entities the
+// store does not hold (a Population's Arrive phase), without reading
+// first: how a bulk loader would fill the baseline before it is timed on
+// later events. The records equal those Event would leave.
+func (n *Naive) LoadNew(ev []Payment) error {
+	b := n.db.NewBatch()
+	for i, e := range ev {
+		a, d := acctAggs(), devAggs()
+		applyPayment(a, d, e, &n.out)
+		for _, kv := range []struct {
+			key  string
+			aggs []tallyward.Aggregate
+		}{{"a" + e.Account, a}, {"d" + e.Device, d}} {
+			if err := n.encode(kv.aggs); err != nil {
+				b.Close()
+				return err
+			}
+			if err := b.Set([]byte(kv.key), n.buf, nil); err != nil {
+				b.Close()
+				return err
+			}
+		}
+		if i%10_000 == 9_999 || i == len(ev)-1 {
+			if err := b.Commit(pebble.NoSync); err != nil {
+				b.Close()
+				return err
+			}
+			b.Close()
+			b = n.db.NewBatch()
+		}
+	}
+	return b.Close()
+}

@@ -1,7 +1,8 @@
 // Command report writes the accuracy report (and, with -speed, the speed
 // report) of tallyward into a directory: report.md and PNG plots.
 //
-//	go run ./bench/cmd/report -out ./bench/latest          # full, about 10 min on 2 cores
+//	go run ./bench/cmd/report -speed -out ./bench/latest   # accuracy and speed, about 15 min on 2 cores
+//	go run ./bench/cmd/report -out /tmp/report             # accuracy only
 //	go run ./bench/cmd/report -quick -out /tmp/report      # seconds; what CI runs
 //
 // It exits 1 if any error figure is outside its published bound.
