@@ -2,7 +2,7 @@ package scaleout
 
 import (
 	"context"
-		"encoding/json"
+	"encoding/json"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -87,9 +87,9 @@ func pipelineOptions() tallyward.Options {
 
 // outRow is an output record: the event's id and its features.
 type outRow struct {
-	ID     string    `json:"id"`
-	Part   int32     `json:"part"`
-	Bits   []uint64 `json:"bits"` // math.Float64bits of each value: JSON has no NaN or Inf
+	ID   string   `json:"id"`
+	Part int32    `json:"part"`
+	Bits []uint64 `json:"bits"` // math.Float64bits of each value: JSON has no NaN or Inf
 }
 
 func encodeRow(part Partition, r tallyward.Row[payment]) (key, value []byte) {
@@ -372,4 +372,3 @@ func sameBits(a, b []float64) bool {
 	}
 	return true
 }
-

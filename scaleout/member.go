@@ -350,7 +350,9 @@ func (m *Member[E]) handle(ctx context.Context, fs kgo.Fetches) error {
 	due := m.pending >= m.cfg.CommitRecords || (n == 0 && m.pending > 0) || (m.blocked.Swap(false) && m.pending > 0)
 	m.mu.Unlock()
 	if due {
-		return m.commit(ctx)
+		// A commit under way finishes even when Run is told to stop:
+		// abandoning it midway would only make the next owner redo it.
+		return m.commit(context.WithoutCancel(ctx))
 	}
 	return nil
 }
@@ -645,6 +647,11 @@ func (m *Member[E]) drop(ctx context.Context, ids []int32, commit bool, what Wha
 			continue
 		}
 		if pt.dirty && commit {
+			if m.cfg.OutputTopic != "" {
+				if err := m.cl.Flush(ctx); err != nil {
+					m.cfg.Logger.Warn("flushing output on revoke", "member", m.cfg.Name, "err", err)
+				}
+			}
 			if err := m.cfg.Snapshots.Save(ctx, pt.id, pt.head, pt.p.Snapshot); err != nil {
 				m.cfg.Logger.Warn("snapshot on revoke", "member", m.cfg.Name, "partition", pt.id.String(), "err", err)
 			} else if err := m.commitOne(ctx, id, pt.head); err == nil {

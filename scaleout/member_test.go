@@ -45,3 +45,69 @@ func TestMembersShareTheWork(t *testing.T) {
 		})
 	}
 }
+
+func TestMemberAddedAndRemovedMidStream(t *testing.T) {
+	evs := payments(11, 4500, 400, 300)
+	want := reference(t, accountSpec(), evs)
+	cl := newCluster(t, 6)
+	rd := cl.follow(cl.out)
+	a, b := cl.start("a"), cl.start("b")
+	third := len(evs) / 3
+	cl.produce(evs[:third], byAccount)
+	rd.waitFor(t, "the first third", 2*time.Minute, func(d, _ int, _ bool) bool { return d >= third/2 })
+	c := cl.start("c") // added while the first third is still being consumed
+	cl.produce(evs[third:2*third], byAccount)
+	rd.waitFor(t, "rows of the second third", 2*time.Minute, func(d, _ int, _ bool) bool { return d >= third+third/2 })
+	a.stop(t) // removed cleanly: commits and hands its partitions over
+	cl.produce(evs[2*third:], byAccount)
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	b.stop(t)
+	c.stop(t)
+	cl.finish(rd)
+	checkRows(t, rd, want)
+	if c.m.Stats().Loaded == 0 {
+		t.Errorf("the added member took no partition over from a snapshot: %+v", c.m.Stats())
+	}
+}
+
+func TestMemberKilledWithoutRevoke(t *testing.T) {
+	evs := payments(12, 4500, 400, 300)
+	want := reference(t, accountSpec(), evs)
+	cl := newCluster(t, 6)
+	rd := cl.follow(cl.out)
+	a, b, c := cl.start("a"), cl.start("b"), cl.start("c")
+	half := len(evs) / 2
+	cl.produce(evs[:half], byAccount)
+	// Kill b once it has committed some work and consumed more since: the
+	// work after its last commit is lost with it and must be redone by
+	// the next owner, whose rows must not repeat b's committed ones.
+	waitCond(t, "b to commit and carry uncommitted work", func() bool {
+		b.m.mu.Lock()
+		defer b.m.mu.Unlock()
+		return b.m.stats.Commits > 0 && b.m.pending > 0
+	})
+	b.kill(t)
+	cl.produce(evs[half:], byAccount)
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	a.stop(t)
+	c.stop(t)
+	cl.finish(rd)
+	checkRows(t, rd, want)
+	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
+}
+
+// waitCond polls cond on a ticker (the condition lives in another
+// goroutine's state, with no channel to wait on), failing after a minute.
+func waitCond(t testing.TB, what string, cond func() bool) {
+	t.Helper()
+	tick := time.NewTicker(2 * time.Millisecond)
+	defer tick.Stop()
+	deadline := time.After(time.Minute)
+	for !cond() {
+		select {
+		case <-tick.C:
+		case <-deadline:
+			t.Fatalf("timed out waiting for %s", what)
+		}
+	}
+}
