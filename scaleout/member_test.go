@@ -75,7 +75,7 @@ func TestMemberKilledWithoutRevoke(t *testing.T) {
 	want := reference(t, accountSpec(), evs)
 	cl := newCluster(t, 6)
 	rd := cl.follow(cl.out)
-	a, b, c := cl.start("a"), cl.start("b"), cl.start("c")
+	a, b, c := cl.start("a"), cl.start("b", lazy), cl.start("c")
 	half := len(evs) / 2
 	cl.produce(evs[:half], byAccount)
 	// Kill b once it has committed some work and consumed more since: the
@@ -96,6 +96,11 @@ func TestMemberKilledWithoutRevoke(t *testing.T) {
 	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
 
+// lazy makes a member commit only when a rebalance waits for it or after
+// 400 records, never when idle: it then holds uncommitted work a test can
+// kill it with.
+func lazy(c *Config[payment]) { c.IdleCommit = time.Hour }
+
 // waitCond polls cond on a ticker (the condition lives in another
 // goroutine's state, with no channel to wait on), failing after a minute.
 func waitCond(t testing.TB, what string, cond func() bool) {
@@ -110,4 +115,48 @@ func waitCond(t testing.TB, what string, cond func() bool) {
 			t.Fatalf("timed out waiting for %s", what)
 		}
 	}
+}
+
+// Without transactions, clean hand-overs still give each row once (a
+// member commits before it lets a rebalance proceed); a killed member's
+// uncommitted rows are produced again by the next owner, identical, so
+// nothing is lost (at-least-once).
+func TestPlainMembersAtLeastOnce(t *testing.T) {
+	evs := payments(15, 3000, 400, 300)
+	want := reference(t, accountSpec(), evs)
+	cl := newCluster(t, 6)
+	rd := cl.follow(cl.out)
+	plain := func(c *Config[payment]) { c.TransactionalID = "" }
+	a, b := cl.start("a", plain), cl.start("b", plain, lazy)
+	third := len(evs) / 3
+	cl.produce(evs[:third], byAccount)
+	rd.waitFor(t, "the first rows", 2*time.Minute, func(d, _ int, _ bool) bool { return d > third/2 })
+	c := cl.start("c", plain)
+	cl.produce(evs[third:2*third], byAccount)
+	rd.waitFor(t, "the second third", 2*time.Minute, func(d, _ int, _ bool) bool { return d == 2*third })
+	a.stop(t)
+	cl.produce(evs[2*third:], byAccount)
+	waitCond(t, "b to carry uncommitted work", func() bool {
+		b.m.mu.Lock()
+		defer b.m.mu.Unlock()
+		return b.m.pending > 0
+	})
+	b.kill(t)
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	c.stop(t)
+	cl.finish(rd)
+	rd.mu.Lock()
+	dups := 0
+	for id, rows := range rd.rows {
+		for _, r := range rows[1:] {
+			dups++
+			if !sameBits(r, rows[0]) {
+				t.Errorf("%s: a repeated row differs: %v, then %v", id, rows[0], r)
+			}
+		}
+		rd.rows[id] = rows[:1]
+	}
+	rd.mu.Unlock()
+	checkRows(t, rd, want) // once repeats are folded
+	t.Logf("%d rows repeated after the kill; b: %+v; c: %+v", dups, b.m.Stats(), c.m.Stats())
 }
