@@ -31,13 +31,18 @@ var t0 = time.Date(2026, 3, 1, 9, 0, 0, 0, time.UTC).UnixNano()
 // payments draws n payments in time order over accounts and devices with
 // skewed popularity (seeded).
 func payments(seed uint64, n, accounts, devices int) []payment {
+	return paymentsEvery(seed, n, accounts, devices, 2*time.Second)
+}
+
+// paymentsEvery is payments with gaps drawn uniformly below step.
+func paymentsEvery(seed uint64, n, accounts, devices int, step time.Duration) []payment {
 	r := rand.New(rand.NewPCG(seed, 1))
 	za := rand.NewZipf(r, 1.2, 1, uint64(accounts-1))
 	zd := rand.NewZipf(r, 1.2, 1, uint64(devices-1))
 	out := make([]payment, n)
 	at := t0
 	for i := range out {
-		at += int64(r.IntN(int(2 * time.Second)))
+		at += int64(r.IntN(int(step)))
 		out[i] = payment{
 			ID:      fmt.Sprintf("pay-%06d", i),
 			At:      at,
@@ -89,11 +94,12 @@ func pipelineOptions() tallyward.Options {
 type outRow struct {
 	ID   string   `json:"id"`
 	Part int32    `json:"part"`
+	At   int64    `json:"at"`
 	Bits []uint64 `json:"bits"` // math.Float64bits of each value: JSON has no NaN or Inf
 }
 
 func encodeRow(part Partition, r tallyward.Row[payment]) (key, value []byte) {
-	o := outRow{ID: r.Event.ID, Part: part.Partition}
+	o := outRow{ID: r.Event.ID, Part: part.Partition, At: r.Time}
 	for _, v := range r.Values {
 		o.Bits = append(o.Bits, math.Float64bits(v))
 	}
@@ -139,9 +145,9 @@ type cluster struct {
 	prod    *kgo.Client
 }
 
-func newCluster(t testing.TB, parts int32) *cluster {
+func newCluster(t testing.TB, parts int32, more ...kfake.Opt) *cluster {
 	t.Helper()
-	c, err := kfake.NewCluster(kfake.NumBrokers(1), kfake.SeedTopics(parts, "payments"), kfake.SeedTopics(1, "rows"))
+	c, err := kfake.NewCluster(append([]kfake.Opt{kfake.NumBrokers(1), kfake.SeedTopics(parts, "payments"), kfake.SeedTopics(1, "rows")}, more...)...)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -248,6 +254,7 @@ type reader struct {
 	mu     sync.Mutex
 	cond   chan struct{} // closed and replaced on every new row
 	rows   map[string][][]float64
+	at     map[string]int64
 	total  int
 	marker bool
 	cl     *kgo.Client
@@ -263,7 +270,7 @@ func (cl *cluster) follow(topic string) *reader {
 	if err != nil {
 		cl.t.Fatal(err)
 	}
-	rd := &reader{cond: make(chan struct{}), rows: map[string][][]float64{}, cl: c, stopc: make(chan struct{}), done: make(chan struct{})}
+	rd := &reader{cond: make(chan struct{}), rows: map[string][][]float64{}, at: map[string]int64{}, cl: c, stopc: make(chan struct{}), done: make(chan struct{})}
 	ctx, cancel := context.WithCancel(context.Background())
 	go func() { <-rd.stopc; cancel() }()
 	go func() {
@@ -285,6 +292,7 @@ func (cl *cluster) follow(topic string) *reader {
 					vs[i] = math.Float64frombits(b)
 				}
 				rd.rows[o.ID] = append(rd.rows[o.ID], vs)
+				rd.at[o.ID] = o.At
 				rd.total++
 			})
 			close(rd.cond)
@@ -320,8 +328,12 @@ func (rd *reader) waitFor(t testing.TB, what string, timeout time.Duration, ok f
 // it: the output topic has one partition, so every row committed before
 // has then been read.
 func (cl *cluster) finish(rd *reader) {
+	cl.finishTopic(rd, cl.out)
+}
+
+func (cl *cluster) finishTopic(rd *reader, topic string) {
 	cl.t.Helper()
-	if err := cl.prod.ProduceSync(context.Background(), &kgo.Record{Topic: cl.out, Key: []byte("end-marker")}).FirstErr(); err != nil {
+	if err := cl.prod.ProduceSync(context.Background(), &kgo.Record{Topic: topic, Key: []byte("end-marker")}).FirstErr(); err != nil {
 		cl.t.Fatal(err)
 	}
 	rd.waitFor(cl.t, "the end marker", time.Minute, func(_, _ int, marker bool) bool { return marker })
@@ -359,16 +371,4 @@ func checkRows(t testing.TB, rd *reader, want map[string][]float64) {
 	if lost+twice+differ+extra > 0 {
 		t.Fatalf("against the single-instance replay of %d events: %d lost, %d emitted more than once, %d differ, %d unknown", len(want), lost, twice, differ, extra)
 	}
-}
-
-func sameBits(a, b []float64) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if math.Float64bits(a[i]) != math.Float64bits(b[i]) {
-			return false
-		}
-	}
-	return true
 }
