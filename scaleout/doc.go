@@ -80,20 +80,20 @@
 // entities (the package's tests check this), provided the device stage's
 // MaxDisorder covers how far the re-keying lags across partitions.
 //
-//	            payments (key: account)
-//	             │                │
-//	    ┌────────▼───────┐   ┌────▼─────┐
-//	    │ account members│   │  Rekey   │  (transactional)
-//	    │ one pipeline   │   └────┬─────┘
-//	    │ per partition  │        │ payments-by-device (key: device)
-//	    └───────┬────────┘   ┌────▼──────────┐
-//	            │            │ device members│
-//	            │            └────┬──────────┘
-//	   account rows (id, part 0)  │ device rows (id, part 1)
-//	            └──────┐   ┌──────┘
-//	                 ┌─▼───▼─┐
-//	                 │Meeting│ → training rows, by event id
-//	                 └───────┘
+//	         payments (key: account)
+//	          │                │
+//	 ┌────────▼───────┐   ┌────▼─────┐
+//	 │ account members│   │  Rekey   │  (transactional)
+//	 │ one pipeline   │   └────┬─────┘
+//	 │ per partition  │        │ payments-by-device (key: device)
+//	 └───────┬────────┘   ┌────▼──────────┐
+//	         │            │ device members│
+//	         │            └────┬──────────┘
+//	account rows (id, part 0)  │ device rows (id, part 1)
+//	         └──────┐   ┌──────┘
+//	              ┌─▼───▼─┐
+//	              │Meeting│ → training rows, by event id
+//	              └───────┘
 //
 // # What it is not for
 //

@@ -140,6 +140,7 @@ type cluster struct {
 	c       *kfake.Cluster
 	addrs   []string
 	in, out string
+	group   string
 	parts   int32
 	snaps   DirSnapshots
 	prod    *kgo.Client
@@ -152,7 +153,7 @@ func newCluster(t testing.TB, parts int32, more ...kfake.Opt) *cluster {
 		t.Fatal(err)
 	}
 	t.Cleanup(c.Close)
-	cl := &cluster{t: t, c: c, addrs: c.ListenAddrs(), in: "payments", out: "rows", parts: parts, snaps: DirSnapshots{Root: t.TempDir()}}
+	cl := &cluster{t: t, c: c, addrs: c.ListenAddrs(), in: "payments", out: "rows", group: "scorers", parts: parts, snaps: DirSnapshots{Root: t.TempDir()}}
 	cl.prod, err = kgo.NewClient(kgo.SeedBrokers(cl.addrs...), kgo.DefaultProduceTopic(cl.in), kgo.RecordPartitioner(kgo.StickyKeyPartitioner(nil)))
 	if err != nil {
 		t.Fatal(err)
@@ -188,7 +189,7 @@ func (cl *cluster) start(name string, opts ...memberOpt) *running {
 	cfg := Config[payment]{
 		Name:            name,
 		Brokers:         cl.addrs,
-		Group:           "scorers",
+		Group:           cl.group,
 		Topic:           cl.in,
 		Decode:          decodePayment,
 		Spec:            accountSpec(),
