@@ -30,7 +30,9 @@ func TestAsOfAgainstBruteForce(t *testing.T) {
 				{Name: "n", Kind: SlidingCount{Window: win, Resolution: res}, Where: func(e login) bool { return e.OK }, BeforeEvent: before},
 			}}},
 		}
-		p := openTest(t, spec, Options{MaxDisorder: disorder})
+		// One to three workers: Score answers through the part that
+		// owns the key, whatever the split.
+		p := openTest(t, spec, Options{MaxDisorder: disorder, Workers: 1 + int(seed%3)})
 
 		// Events in time order with gaps of up to two panes, then
 		// shuffled within the disorder bound.

@@ -85,6 +85,9 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 		all := map[uint64]string{}
 		for crashes := 0; ; crashes++ {
 			rows := newRowLog()
+			// Every restart picks its own number of workers: a store
+			// written by one count resumes exactly under another.
+			opts.Workers = 1 + r.IntN(3)
 			p, err := Open(richSpec(rows.add), opts)
 			require.NoError(t, err)
 			start := p.ResumeSeq()
@@ -111,6 +114,7 @@ func TestCrashCloneResumesExactly(t *testing.T) {
 				require.NoError(t, p.Close())
 				break
 			}
+			stopWorkersForCrash(p)
 			clone := fs.CrashClone(vfs.CrashCloneCfg{UnsyncedDataPercent: r.IntN(100), RNG: rand.New(rand.NewPCG(uint64(trial), uint64(crashes)))})
 			mergeRows(t, all, rows.rows)
 			// The crashed process's store is abandoned, as after a real

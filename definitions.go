@@ -158,7 +158,7 @@ func (p *Pipeline[E]) checkDefinitions() error {
 	}
 	for _, es := range p.ents {
 		if string(stored["ttl/"+es.ent.Name]) != want["ttl/"+es.ent.Name] && storedEntities[es.ent.Name] != nil {
-			if err := es.table.RebuildExpiry(); err != nil {
+			if err := es.parts[0].RebuildExpiry(); err != nil {
 				return err
 			}
 		}
@@ -198,7 +198,7 @@ func (p *Pipeline[E]) resetFeatures(es *entityState[E], oldNames []string, reset
 		}
 		empty[i] = b
 	}
-	return es.table.Rewrite(func(_ string, val []byte) ([]byte, error) {
+	return es.parts[0].Rewrite(func(_ string, val []byte) ([]byte, error) {
 		last, blobs, err := splitRecord(val)
 		if err != nil {
 			return nil, err
@@ -222,9 +222,9 @@ func (p *Pipeline[E]) resetFeatures(es *entityState[E], oldNames []string, reset
 // dropEntity deletes every record of an entity no longer defined.
 func (p *Pipeline[E]) dropEntity(ent string) error {
 	es := &entityState[E]{ent: Entity[E]{Name: ent}}
-	es.table = newDropTable(p, ent)
+	es.parts = []*store.Table[*record]{newDropTable(p, ent)}
 	var n int64
-	err := es.table.Rewrite(func(string, []byte) ([]byte, error) { n++; return nil, nil })
+	err := es.parts[0].Rewrite(func(string, []byte) ([]byte, error) { n++; return nil, nil })
 	p.c.live -= n
 	return err
 }

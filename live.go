@@ -9,6 +9,7 @@ import (
 	"reflect"
 	"runtime"
 	"slices"
+	"sync"
 	"time"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -52,6 +53,20 @@ type Live[E any] struct {
 	lastArr int64 // clock time of the last arrival
 	runRej  uint64
 	closed  bool // Close ran: waiting SubmitInOrder calls return ErrClosed
+
+	// Score calls waiting for the core, with more than one worker: the
+	// goroutine that gets the core runs all of them as one batch.
+	qmu    sync.Mutex
+	queued []*scoreCall[E]
+}
+
+// scoreCall is one Score call waiting in Live.queued.
+type scoreCall[E any] struct {
+	e    E
+	now  int64
+	dst  []float64
+	err  error
+	done chan struct{}
 }
 
 // NewLive wraps p. The caller must not use p directly while Live is in
@@ -113,11 +128,73 @@ func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, err
 	if l.p.opts.Mode != Eager {
 		return dst, ErrNotEager
 	}
+	if l.p.work != nil {
+		return l.scoreGrouped(ctx, e, dst)
+	}
 	if err := l.lock(ctx); err != nil {
 		return dst, err
 	}
 	defer l.unlock()
 	return l.submitLocked(e, l.clock.Now(), dst, true)
+}
+
+// scoreGrouped is Score with more than one worker. Calls that arrive
+// while the core is busy queue up; whichever gets the core next runs
+// every queued call, in arrival order, as consecutive events and one
+// batch for the workers, then hands each call its row. So concurrent
+// callers keep every worker busy, where one call at a time would leave
+// all but one part idle.
+func (l *Live[E]) scoreGrouped(ctx context.Context, e E, dst []float64) ([]float64, error) {
+	if l.p.emitting.Load() && calledFromEmit() {
+		return dst, ErrReentered
+	}
+	c := &scoreCall[E]{e: e, now: l.clock.Now(), dst: dst, done: make(chan struct{})}
+	l.qmu.Lock()
+	l.queued = append(l.queued, c)
+	l.qmu.Unlock()
+	for {
+		select {
+		case <-c.done:
+			return c.dst, c.err
+		case l.sem <- struct{}{}:
+			l.runQueued()
+			l.unlock()
+		case <-ctx.Done():
+			l.qmu.Lock()
+			if i := slices.Index(l.queued, c); i >= 0 {
+				l.queued = slices.Delete(l.queued, i, i+1)
+				l.qmu.Unlock()
+				return dst, ctx.Err()
+			}
+			l.qmu.Unlock()
+			<-c.done // taken by the goroutine holding the core: it finishes
+			return c.dst, c.err
+		}
+	}
+}
+
+// runQueued runs every queued Score call; the caller holds the core.
+func (l *Live[E]) runQueued() {
+	l.qmu.Lock()
+	calls := l.queued
+	l.queued = nil
+	l.qmu.Unlock()
+	for _, c := range calls {
+		if l.closed {
+			c.err = ErrClosed
+			continue
+		}
+		l.p.sink = &c.dst
+		_, c.err = l.submitLocked(c.e, c.now, nil, true)
+		l.p.sink = nil
+	}
+	err := l.p.finishWork()
+	for _, c := range calls {
+		if c.err == nil {
+			c.err = err
+		}
+		close(c.done)
+	}
 }
 
 // SubmitBatch processes es in order as consecutive events of the
@@ -148,14 +225,31 @@ func (l *Live[E]) SubmitBatch(ctx context.Context, es []E, dst []float64, want b
 		return first, dst, err
 	}
 	l.p.inBatch = true
+	if want && l.p.work != nil {
+		// With workers, the batch's rows are appended to dst in order
+		// as they are delivered, and the batch runs on every worker.
+		l.p.sink = &dst
+	}
 	for _, e := range es {
 		var err error
-		if dst, err = l.submitLocked(e, now, dst, want); err != nil {
-			l.p.inBatch = false
+		if l.p.sink != nil {
+			_, err = l.submitLocked(e, now, nil, want) // rows go to the sink, dst
+		} else {
+			dst, err = l.submitLocked(e, now, dst, want)
+		}
+		if err != nil {
+			l.p.inBatch, l.p.sink = false, nil
 			return first, dst, err
 		}
 	}
 	l.p.inBatch = false
+	if l.p.sink != nil {
+		err := l.p.finishWork()
+		l.p.sink = nil
+		if err != nil {
+			return first, dst, err
+		}
+	}
 	return first, dst, l.p.autoCommit()
 }
 

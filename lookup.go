@@ -34,6 +34,9 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 	if err := p.usable(); err != nil {
 		return dst, false, err
 	}
+	if err := p.finishWork(); err != nil {
+		return dst, false, err
+	}
 	var es *entityState[E]
 	for _, e := range p.ents {
 		if e.ent.Name == entity {
@@ -50,7 +53,7 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 	}
 	aggs := es.zero
 	exact = true
-	sl, err := es.table.Get(key)
+	sl, err := es.part(key).Get(key)
 	if err != nil {
 		p.err = err
 		return dst, false, err

@@ -33,6 +33,9 @@ func (p *Pipeline[E]) Erase(entity, key string) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	i, es, err := p.entity(entity)
 	if err != nil {
 		return err
@@ -40,7 +43,7 @@ func (p *Pipeline[E]) Erase(entity, key string) error {
 	if key == "" {
 		return fmt.Errorf("tallyward: Erase: empty key")
 	}
-	existed, err := es.table.Delete(key)
+	existed, err := es.part(key).Delete(key)
 	if err != nil {
 		p.err = err
 		return err
@@ -71,6 +74,9 @@ func (p *Pipeline[E]) LiftErasure(entity, key string) error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	if _, _, err := p.entity(entity); err != nil {
 		return err
 	}
@@ -87,6 +93,9 @@ func (p *Pipeline[E]) LiftErasure(entity, key string) error {
 // new one.
 func (p *Pipeline[E]) Erased(entity, key string) (bool, error) {
 	if err := p.usable(); err != nil {
+		return false, err
+	}
+	if err := p.finishWork(); err != nil {
 		return false, err
 	}
 	_, es, err := p.entity(entity)

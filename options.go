@@ -146,6 +146,19 @@ type Options struct {
 	// Default: 16384 writes.
 	IngestThreshold int
 
+	// Workers splits the entity records by key hash over this many
+	// goroutines, so one pipeline uses several cores. Rows, their order
+	// and the stored state are the same for every value (each record
+	// still sees its events in the same order). With more than one,
+	// Process hands events on in batches: in Eager mode an event's row
+	// reaches Spec.Emit (and Spec.OnLate, Spec.OnWatermark their
+	// callbacks, in the same order as with one) by the time a later call
+	// other than Process returns (Score, Commit, Advance, Flush, Feed,
+	// Lookup, Stats, Close ...), or once a batch fills, not
+	// before Process returns. Score answers at once either way. Default:
+	// 1 (rows emitted within Process).
+	Workers int
+
 	// CommitEvery commits automatically after this many source events.
 	// Negative disables automatic commits. Default: 100000.
 	CommitEvery int
@@ -226,6 +239,9 @@ func (o *Options) EnsureDefaults() {
 	if o.CommitEvery == 0 {
 		o.CommitEvery = 100_000
 	}
+	if o.Workers == 0 {
+		o.Workers = 1
+	}
 	if o.MetricsClock == nil {
 		o.MetricsClock = SystemClock{}
 	}
@@ -242,6 +258,9 @@ func (o *Options) Validate() error {
 	}
 	if o.Lateness > DivertLate {
 		errs = append(errs, fmt.Errorf("tallyward: unknown Lateness %d", o.Lateness))
+	}
+	if o.Workers < 0 || o.Workers > MaxWorkers {
+		errs = append(errs, fmt.Errorf("tallyward: Workers %d outside [0, %d]", o.Workers, MaxWorkers))
 	}
 	if o.MaxDisorder < 0 {
 		errs = append(errs, fmt.Errorf("tallyward: MaxDisorder %v < 0", o.MaxDisorder))
@@ -272,3 +291,6 @@ func (o *Options) Validate() error {
 	}
 	return errors.Join(errs...)
 }
+
+// MaxWorkers bounds Options.Workers.
+const MaxWorkers = 256

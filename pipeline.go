@@ -87,13 +87,21 @@ type Pipeline[E any] struct {
 	inEvent  bool     // process is running (same goroutine only)
 	err      error    // sticky storage error
 	notices  []string // what Open did beyond the usual (resets)
+	// work runs record work on Options.Workers goroutines; nil with one.
+	work *workers[E]
+	// sink, when set (by Live), receives the values of the events
+	// processed with wantVals at their delivery; ownSink is Score's own.
+	sink    *[]float64
+	ownSink []float64
 	// beforeCommit is the caller's commit hook (SetCommitHook); nil: none.
 	beforeCommit func(CommitPoint) ([]byte, error)
 }
 
 type entityState[E any] struct {
-	ent     Entity[E]
-	table   *store.Table[*record]
+	ent Entity[E]
+	// parts cache the entity's records, split by key hash over the
+	// pipeline's workers (one part when there are none).
+	parts   []*store.Table[*record]
 	kinds   []Kind
 	first   int         // index of the entity's first feature in a row
 	zero    []Aggregate // empty aggregates, to answer for unseen keys
@@ -106,6 +114,11 @@ type entityState[E any] struct {
 // swept it yet, so expiry never depends on when commits happen.
 func (es *entityState[E]) expired(rec *record, w int64) bool {
 	return es.ttl > 0 && sat.Add(rec.last, es.ttl) <= w
+}
+
+// part returns the part of the entity's records that holds key.
+func (es *entityState[E]) part(key string) *store.Table[*record] {
+	return es.parts[store.PartOf(key, len(es.parts))]
 }
 
 func (es *entityState[E]) fresh() []Aggregate {
@@ -156,10 +169,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		}
 		es.zero = es.fresh()
 		es.ttl = ttlFor(ent.Features, opts)
-		es.table = store.NewTable(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
+		es.parts = store.NewParts(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
 			return decodeRecord(b, es.fresh)
-		})
-		es.table.PeekLast = peekLast
+		}, opts.Workers, peekLast)
 		p.nfeat += len(ent.Features)
 		p.ents = append(p.ents, es)
 	}
@@ -193,6 +205,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		}
 	}
 	p.notices = append(p.notices, st.Notices()...)
+	if opts.Workers > 1 {
+		p.startWorkers()
+	}
 	attach.Register(p, st)
 	return p, nil
 }
@@ -296,6 +311,13 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		case DropLate:
 			return dst, ErrLate
 		case DivertLate:
+			if p.work != nil {
+				p.queueLate(e)
+				if err := p.kickWork(false); err != nil {
+					return dst, err
+				}
+				return dst, ErrLate
+			}
 			runCallback(&p.emitting, func() { p.spec.OnLate(e) })
 			return dst, ErrLate
 		}
@@ -303,7 +325,19 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if !p.hasMax || t > p.maxT {
 		p.hasMax, p.maxT = true, t
 	}
-	if p.opts.Mode == Eager || late {
+	if p.work != nil && (p.opts.Mode == Eager || late) {
+		var sink *[]float64
+		if wantVals {
+			// The row's values are appended to the sink when its batch is
+			// delivered: the caller's (Live groups several Score calls
+			// into one batch), else this call's, delivered below.
+			if sink = p.sink; sink == nil {
+				p.ownSink = dst
+				sink = &p.ownSink
+			}
+		}
+		p.queue(seq, e, &p.in, late, false, sink)
+	} else if p.opts.Mode == Eager || late {
 		if err := p.apply(&p.in); err != nil {
 			return dst, err
 		}
@@ -318,6 +352,19 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 		p.held.ReplaceOrInsert(h)
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
+	if p.work != nil {
+		if wantVals && p.sink == nil {
+			// Score answers before it returns, with its event's
+			// callbacks delivered, as with one worker.
+			err := p.finishWork()
+			dst, p.ownSink = p.ownSink, nil
+			if err != nil {
+				return dst, err
+			}
+		} else if err := p.kickWork(false); err != nil {
+			return dst, err
+		}
+	}
 	if err := p.autoCommit(); err != nil {
 		return dst, err
 	}
@@ -440,39 +487,20 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 	return nil
 }
 
-// apply updates the records of every entity the event names.
+// apply updates the records of every entity the event names. Every part
+// must be idle (the caller's goroutine does the work).
 func (p *Pipeline[E]) apply(in *inputs) error {
+	exp := p.expiryClockAt(in.t)
 	for i, es := range p.ents {
 		key := in.keys[i]
-		p.recs[i] = nil
-		if key == "" || !slices.Contains(in.on[es.first:es.first+len(es.kinds)], true) {
-			continue
-		}
-		sl, err := es.table.Get(key)
+		fs := es.first
+		fe := fs + len(es.kinds)
+		rec, err := es.applyKey(es.part(key), key, in.t, exp, in.on[fs:fe], in.v[fs:fe], in.item[fs:fe], p.store, &p.c)
+		p.recs[i] = rec
 		if err != nil {
 			p.err = err
 			return err
 		}
-		if sl == nil {
-			if p.store.Erased(es.ent.Name, key) {
-				p.c.erasedSkips++
-				continue
-			}
-			sl = es.table.Insert(key, &record{last: in.t, aggs: es.fresh()})
-			p.c.live++
-		} else if es.expired(sl.Value, p.expiryClockAt(in.t)) {
-			sl.Value.aggs = es.fresh()
-		}
-		rec := sl.Value
-		for j, a := range rec.aggs {
-			fi := es.first + j
-			if in.on[fi] && !a.Add(in.t, in.v[fi], in.item[fi]) {
-				p.c.tooOld++
-			}
-		}
-		rec.last = max(rec.last, in.t)
-		es.table.Touch(sl)
-		p.recs[i] = rec
 	}
 	p.c.applied++
 	if err := p.store.Err(); err != nil {
@@ -482,43 +510,101 @@ func (p *Pipeline[E]) apply(in *inputs) error {
 	return nil
 }
 
+// applyKey updates the record of key (in part tb) with one event at t
+// whose inputs for this entity's features are on, v and item, judging
+// expiry at exp. It returns the record updated, nil if none was (no
+// feature of the entity takes the event, the key is absent or erased).
+// It touches only tb, the counters c and (reading) the store's
+// tombstones, so parts run it concurrently.
+func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp int64, on []bool, v []float64, item []uint64, st *store.Store, c *counters) (*record, error) {
+	if key == "" || !slices.Contains(on, true) {
+		return nil, nil
+	}
+	sl, err := tb.Get(key)
+	if err != nil {
+		return nil, err
+	}
+	if sl == nil {
+		if st.Erased(es.ent.Name, key) {
+			c.erasedSkips++
+			return nil, nil
+		}
+		sl = tb.Insert(key, &record{last: t, aggs: es.fresh()})
+		c.live++
+	} else if es.expired(sl.Value, exp) {
+		sl.Value.aggs = es.fresh()
+	}
+	rec := sl.Value
+	for j, a := range rec.aggs {
+		if on[j] && !a.Add(t, v[j], item[j]) {
+			c.tooOld++
+		}
+	}
+	rec.last = max(rec.last, t)
+	tb.Touch(sl)
+	return rec, nil
+}
+
 // valuesAt writes the features of the event described by in, as of its
 // time, to out. recs, if not nil, holds records just updated by apply (an
 // evicted record is still current: nothing changed it since).
 func (p *Pipeline[E]) valuesAt(in *inputs, out []float64, recs []*record) {
+	exp := p.expiryClockAt(in.t)
 	for i, es := range p.ents {
+		var rec *record
+		if recs != nil {
+			rec = recs[i]
+		}
 		key := in.keys[i]
-		aggs := es.zero
-		if key == "" {
-			for j := range es.kinds {
-				out[es.first+j] = math.NaN()
-			}
-			continue
-		}
-		if recs != nil && recs[i] != nil {
-			aggs = recs[i].aggs
-		} else if sl, err := es.table.Get(key); err != nil {
+		fs := es.first
+		fe := fs + len(es.kinds)
+		if err := es.valuesOf(es.part(key), key, in.t, exp, rec, in.item[fs:fe], out[fs:fe], p.store, es.zero); err != nil {
 			p.err = err
-		} else if sl != nil && !es.expired(sl.Value, p.expiryClockAt(in.t)) {
-			aggs = sl.Value.aggs
-		} else if sl == nil && p.store.Erased(es.ent.Name, key) {
-			for j := range es.kinds {
-				out[es.first+j] = math.NaN()
-			}
-			continue
-		}
-		for j, a := range aggs {
-			t := in.t
-			if es.ent.Features[j].BeforeEvent {
-				if t == math.MinInt64 {
-					a = es.zero[j] // nothing is before the first instant; t-1 would wrap
-				} else {
-					t--
-				}
-			}
-			out[es.first+j] = a.At(t, in.item[es.first+j])
 		}
 	}
+}
+
+// valuesOf writes the entity's features for key, as of an event at t
+// whose item hashes for them are item, to out: from rec if not nil (the
+// record apply just updated), else from tb, judging expiry at exp. Like
+// applyKey it is safe to run concurrently on different parts.
+//
+// zero holds the entity's empty aggregates, to answer for unseen keys;
+// each worker has its own, as an aggregate's At need not be safe for
+// concurrent use.
+func (es *entityState[E]) valuesOf(tb *store.Table[*record], key string, t, exp int64, rec *record, item []uint64, out []float64, st *store.Store, zero []Aggregate) error {
+	if key == "" {
+		for j := range out {
+			out[j] = math.NaN()
+		}
+		return nil
+	}
+	aggs := zero
+	var err error
+	if rec != nil {
+		aggs = rec.aggs
+	} else if sl, gerr := tb.Get(key); gerr != nil {
+		err = gerr
+	} else if sl != nil && !es.expired(sl.Value, exp) {
+		aggs = sl.Value.aggs
+	} else if sl == nil && st.Erased(es.ent.Name, key) {
+		for j := range out {
+			out[j] = math.NaN()
+		}
+		return nil
+	}
+	for j, a := range aggs {
+		at := t
+		if es.ent.Features[j].BeforeEvent {
+			if at == math.MinInt64 {
+				a = zero[j] // nothing is before the first instant; t-1 would wrap
+			} else {
+				at--
+			}
+		}
+		out[j] = a.At(at, item[j])
+	}
+	return err
 }
 
 func (p *Pipeline[E]) emit(seq uint64, t int64, e E, late bool) {
@@ -559,6 +645,18 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 			p.batch = append(p.batch, h)
 			p.held.DeleteMin()
 		}
+		if p.work != nil {
+			for i, h := range p.batch {
+				p.queue(h.seq, h.e, &h.in, false, i > 0, nil)
+			}
+			clear(p.batch)
+			// A full batch goes to the workers between timestamps, never
+			// inside one: a group is applied whole before it is answered.
+			if p.kickWork(false) != nil {
+				return
+			}
+			continue
+		}
 		for _, h := range p.batch {
 			if p.apply(&h.in) != nil {
 				return
@@ -571,7 +669,11 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		clear(p.batch)
 	}
 	if p.err == nil && p.spec.OnWatermark != nil {
-		p.spec.OnWatermark(p.wm)
+		if p.work != nil {
+			p.queueWatermark(p.wm)
+		} else {
+			p.spec.OnWatermark(p.wm)
+		}
 	}
 }
 
@@ -603,6 +705,9 @@ func (p *Pipeline[E]) Advance(w int64) error {
 		return err
 	}
 	p.raiseWatermark(w)
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	return p.err
 }
 
@@ -682,6 +787,11 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 		return ErrReadOnly
 	}
 	began := p.opts.MetricsClock.Now()
+	// Every part idle and every queued row out: the commit cuts all parts
+	// at this event.
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	// Settle first: the previous commit must land before this one is cut,
 	// and Mark then reports it.
 	if err := p.store.Settle(); err != nil {
@@ -745,6 +855,8 @@ func (p *Pipeline[E]) Close() error {
 	if p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
+	p.joinWork() // after a failure: the workers must be done with the store
+	p.stopWorkers()
 	p.closed = true
 	attach.Unregister(p)
 	return errors.Join(err, p.store.Close())

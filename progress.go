@@ -266,7 +266,11 @@ func (s Stats) HitRate() float64 {
 
 // Stats returns the current counters. It costs a few dozen loads and one
 // small map allocation.
+//
+// With Options.Workers > 1, the event counts cover the rows delivered so
+// far (see Options.Workers); the cache figures wait for the workers.
 func (p *Pipeline[E]) Stats() Stats {
+	p.joinWork()
 	s := Stats{
 		Events: p.c.events, Applied: p.c.applied, Emitted: p.c.emitted, Late: p.c.late, TooOld: p.c.tooOld,
 		LiveEntities: p.c.live, Expired: p.c.expired, Erased: p.c.erased, ErasedSkips: p.c.erasedSkips,
@@ -287,10 +291,12 @@ func (p *Pipeline[E]) Stats() Stats {
 		s.WatermarkLag = p.maxT - p.wm
 	}
 	for _, es := range p.ents {
-		h, m, _ := es.table.CacheStats()
-		s.CacheHits += h
-		s.CacheMisses += m
-		s.CachedKeys += es.table.Len()
+		for _, tb := range es.parts {
+			h, m, _ := tb.CacheStats()
+			s.CacheHits += h
+			s.CacheMisses += m
+			s.CachedKeys += tb.Len()
+		}
 	}
 	return s
 }

@@ -47,6 +47,9 @@ func (p *Pipeline[E]) Feed(ctx context.Context, src Source[E]) error {
 			return err
 		}
 	}
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	return ctx.Err()
 }
 

@@ -84,6 +84,9 @@ func (p *Pipeline[E]) Compact() error {
 	if err := p.usable(); err != nil {
 		return err
 	}
+	if err := p.finishWork(); err != nil {
+		return err
+	}
 	if err := p.store.Compact(); err != nil && !errors.Is(err, store.ErrReadOnly) {
 		p.err = err
 		return err

@@ -424,7 +424,18 @@ func (d *Distinct) DistinctAt(t int64) uint64 {
 	if d.cacheOK && d.cacheT == t {
 		return d.cacheV
 	}
-	start := d.pane(t) - d.k + 1
+	if d.regs == nil && t < d.newest-d.hor() {
+		// Outside the as-of contract (t before newest-Horizon) the answer would depend on whether
+		// the exact entries were compacted, which encoding does: answer
+		// from the compacted form, so a summary answers the same whether
+		// or not it went through AppendBinary (a cache eviction, a
+		// commit) since its last add.
+		d.normalizeExact()
+	}
+	// For the same reason a window reaching before the oldest retained
+	// pane starts there: what is older is not encoded. Within the
+	// contract this clamps nothing.
+	start := max(d.pane(t)-d.k+1, d.floorPane())
 	startT := start * d.res()
 	var n uint64
 	if d.regs == nil {

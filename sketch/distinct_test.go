@@ -275,3 +275,46 @@ func TestDistinctSingleSettledItemRoundTrips(t *testing.T) {
 		t.Fatalf("DistinctAt = %d, want 1", got)
 	}
 }
+
+// TestDistinctLateAnswersFreeOfEncoding: answers asked further back than
+// the horizon (a late event's, under a policy that applies late events)
+// are outside the as-of contract, but they must still not depend on
+// whether the summary went through an encoding round trip since its last
+// add: a pipeline encodes records at commits and cache evictions, so they
+// would otherwise depend on cache size and commit timing. The reference
+// is the same summary never encoded.
+func TestDistinctLateAnswersFreeOfEncoding(t *testing.T) {
+	for _, limit := range []int{16, 4096} {
+		lateAnswersFreeOfEncoding(t, DistinctSpec{Window: 20 * sec, Resolution: 2 * sec, Horizon: 3 * sec, Precision: 8, ExactLimit: limit})
+	}
+}
+
+func lateAnswersFreeOfEncoding(t *testing.T, spec DistinctSpec) {
+	rng := rand.New(rand.NewPCG(5, uint64(spec.ExactLimit)))
+	evs := genStream(rng, 3000, 1_750_000_000*sec, 200*sec, sec, 300)
+	full := mustDistinct(t, spec)
+	for i, e := range evs {
+		full.Add(e.t, e.h)
+		if i%97 != 0 {
+			continue
+		}
+		blob, err := full.AppendBinary(nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var c Distinct
+		if err := c.UnmarshalBinary(blob); err != nil {
+			t.Fatal(err)
+		}
+		fresh := mustDistinct(t, spec)
+		for _, f := range evs[:i+1] {
+			fresh.Add(f.t, f.h)
+		}
+		newest, _ := fresh.Newest()
+		for q := newest - 2*int64(spec.Window); q <= newest; q += sec / 3 {
+			if x, y := c.DistinctAt(q), fresh.DistinctAt(q); x != y {
+				t.Fatalf("limit %d event %d: DistinctAt(newest%+d) after a round trip %d, never encoded %d", spec.ExactLimit, i, q-newest, x, y)
+			}
+		}
+	}
+}

@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"os"
 	"os/signal"
+	"runtime"
 	"slices"
 	"strings"
 	"syscall"
@@ -57,6 +58,7 @@ Example:
 			fs.BoolVar(&o.sortFiles, "sort-files", false, "read each input whole and sort it by time instead of requiring time order")
 			fs.StringVar(&o.reset, "reset", "", "comma-separated features (entity.feature) whose changed definition may discard their stored state")
 			fs.StringVar(&o.progress, "progress", "auto", "progress on stderr: auto (when a terminal), always, never")
+			fs.IntVar(&o.workers, "workers", runtime.GOMAXPROCS(0), "goroutines the entity records are split over (the table is the same for any number)")
 			return func(e *env, args []string) int { return replay(e, &o, args) }
 		},
 	})
@@ -68,6 +70,7 @@ type replayFlags struct {
 	progress    string
 	maxBad      int64
 	sortFiles   bool
+	workers     int
 }
 
 // The pipeline cursor a replay stores:
@@ -113,6 +116,7 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 	}
 	opts := f.Options
 	opts.Dir = *o.state
+	opts.Workers = o.workers
 	if o.reset != "" {
 		opts.ResetFeatures = strings.Split(o.reset, ",")
 	}

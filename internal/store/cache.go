@@ -21,7 +21,7 @@ type Value interface {
 //
 // Invariant: used == sum of Slot.size over every slot in every table.
 type budget struct {
-	used  int64
+	used  atomic.Int64 // parts of a table add to it concurrently
 	limit int64
 }
 
@@ -67,6 +67,10 @@ type Table[V Value] struct {
 	// PeekLast, if set, reads a stored record's newest time without
 	// decoding it all; the expiry sweep uses it.
 	PeekLast func(b []byte) (int64, error)
+
+	// parts lists every part of a split table (see parts.go), this one
+	// included; nil when the table is not split.
+	parts []*Table[V]
 
 	m      map[string]*Slot[V]
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
@@ -162,12 +166,12 @@ func (t *Table[V]) Touch(sl *Slot[V]) {
 
 func (t *Table[V]) resize(sl *Slot[V]) {
 	n := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead
-	t.store.budget.used += int64(n - sl.size)
+	used := t.store.budget.used.Add(int64(n - sl.size))
 	sl.size = n
 	// Records evicted dirty wait in the pending batch and count against
 	// the same budget: eviction makes room for them too, and past half
 	// the budget OverBudget asks the caller to commit.
-	for t.store.budget.used+t.store.pendingBytes() > t.store.budget.limit && len(t.slots) > 1 {
+	for used+t.store.pendingBytes() > t.store.budget.limit && len(t.slots) > 1 {
 		if t.hand >= len(t.slots) {
 			t.hand = 0
 		}
@@ -181,6 +185,7 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 			t.store.fail(err)
 			return
 		}
+		used = t.store.budget.used.Load()
 	}
 }
 
@@ -217,7 +222,7 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 	t.slots[len(t.slots)-1] = nil
 	t.slots = t.slots[:len(t.slots)-1]
 	delete(t.m, sl.Key)
-	t.store.budget.used -= int64(sl.size)
+	t.store.budget.used.Add(-int64(sl.size))
 	sl.size = 0
 	// The slot may stay referenced (t.dirty until the next commit, a
 	// caller's variable); its value must not.

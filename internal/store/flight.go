@@ -91,6 +91,7 @@ func (s *Store) freeze(m Mark) error {
 		s.spill = newSpill()
 	}
 	s.flight = f
+	s.noteStaged()
 	n := len(c.ents)
 	for _, t := range s.tables {
 		n += t.frozenCount()
@@ -140,6 +141,7 @@ func (s *Store) Settle() error {
 	s.spareC = f.c
 	f.spill.reset()
 	s.spareSpill = f.spill
+	s.noteStaged()
 	return s.committed(f.mark)
 }
 

@@ -119,8 +119,8 @@ func checkCacheInvariants(s *Store) error {
 			sum += int64(sl.size)
 		}
 	}
-	if sum != s.budget.used {
-		return fmt.Errorf("budget.used = %d, sum of slot sizes = %d", s.budget.used, sum)
+	if sum != s.budget.used.Load() {
+		return fmt.Errorf("budget.used = %d, sum of slot sizes = %d", s.budget.used.Load(), sum)
 	}
 	return nil
 }

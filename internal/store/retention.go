@@ -143,7 +143,11 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 	if err := it.Error(); err != nil {
 		return removed, err
 	}
-	for _, t := range byName {
+	for _, f := range s.tables {
+		t, ok := f.(expirer)
+		if !ok {
+			continue
+		}
 		n, err := t.expireDirty(b, w)
 		removed += n
 		if err != nil {
@@ -155,6 +159,9 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 
 // expire handles one expiry index entry at or below the watermark w.
 func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error) {
+	if o := t.owner(entity); o != t {
+		return o.expire(b, indexKey, bucket, entity, w)
+	}
 	var last int64
 	sl := t.m[entity]
 	found := sl != nil
@@ -259,7 +266,7 @@ func (t *Table[V]) RebuildExpiry() (err error) {
 				return nil, err
 			}
 		}
-		if sl := t.m[entity]; sl != nil {
+		if sl := t.owner(entity).m[entity]; sl != nil {
 			sl.indexed = t.bucket(v.LastTime())
 		}
 		return val, nil
@@ -299,12 +306,15 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 		return t.store.fail(err)
 	}
 	if len(out) > 0 {
-		t.knownAbsent = false
+		for _, p := range t.group() {
+			p.knownAbsent = false
+		}
 	}
 	for _, e := range out {
-		if sl := t.m[string(e.k[len(lower):])]; sl != nil {
+		o := t.owner(string(e.k[len(lower):]))
+		if sl := o.m[string(e.k[len(lower):])]; sl != nil {
 			sl.dirty = false
-			t.drop(sl)
+			o.drop(sl)
 		}
 		if e.v == nil {
 			err = b.Delete(e.k, nil)

@@ -69,6 +69,9 @@ func (sp *spill) get(key []byte) (v []byte, del, ok bool) {
 type staging struct{ s *Store }
 
 func (w staging) Set(key, value []byte, _ *pebble.WriteOptions) error {
+	w.s.stageMu.Lock()
+	defer w.s.stageMu.Unlock()
+	defer w.s.noteStaged()
 	if len(key) > 0 && key[0] == tagRecord {
 		w.s.spill.set(key, value)
 		return nil
@@ -77,6 +80,9 @@ func (w staging) Set(key, value []byte, _ *pebble.WriteOptions) error {
 }
 
 func (w staging) Delete(key []byte, _ *pebble.WriteOptions) error {
+	w.s.stageMu.Lock()
+	defer w.s.stageMu.Unlock()
+	defer w.s.noteStaged()
 	if len(key) > 0 && key[0] == tagRecord {
 		w.s.spill.delete(key)
 		return nil
@@ -108,7 +114,13 @@ func (s *Store) spillToPending() error {
 
 // lookupStaged finds the newest staged write of a record key: the spill,
 // then the spill of the commit in flight. found false: look further.
+//
+// The returned value stays valid after the lock is released: spilled
+// values live in arena chunks that are only appended to until a commit
+// (when no part is in use) resets them.
 func (s *Store) lookupStaged(key []byte) (v []byte, del, found bool) {
+	s.stageMu.Lock()
+	defer s.stageMu.Unlock()
 	if v, del, ok := s.spill.get(key); ok {
 		return v, del, true
 	}

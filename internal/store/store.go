@@ -12,6 +12,7 @@ import (
 	"slices"
 	"strconv"
 	"strings"
+	"sync"
 	"sync/atomic"
 	"syscall"
 
@@ -258,8 +259,15 @@ type Store struct {
 	mark           Mark
 	budget         *budget
 	tables         []flusher
-	err            error // sticky: set once a write fails
-	closed         bool
+	err            error // sticky: set once a write fails; under errMu
+	errMu          sync.Mutex
+	failed         atomic.Bool // err is set
+	// stageMu serialises what parts of a table used concurrently share:
+	// the spill and the pending batch (see parts.go).
+	stageMu sync.Mutex
+	// staged caches pendingBytes for the parts' eviction loops.
+	staged atomic.Int64
+	closed bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
@@ -467,7 +475,9 @@ func (s *Store) check() error {
 	if s.closed {
 		return ErrClosed
 	}
-	if s.err != nil {
+	if s.failed.Load() {
+		s.errMu.Lock()
+		defer s.errMu.Unlock()
 		return s.err
 	}
 	if e := s.log.bg.Load(); e != nil {
@@ -476,9 +486,14 @@ func (s *Store) check() error {
 	return nil
 }
 
+// fail makes err the store's sticky failure (the first one wins). Parts
+// of a table may fail concurrently, hence the lock.
 func (s *Store) fail(err error) error {
+	s.errMu.Lock()
+	defer s.errMu.Unlock()
 	if s.err == nil {
 		s.err = fmt.Errorf("%w: %w", ErrFailed, err)
+		s.failed.Store(true)
 	}
 	return s.err
 }
@@ -500,10 +515,19 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 			return true, nil
 		}
 	}
-	if s.pending.Empty() || key[0] == tagRecord && !s.pendingRecords {
+	// Parts evicting concurrently write the pending batch (see parts.go):
+	// a read through it holds the lock until fn is done with the value.
+	// Record keys skip it unless a definition change put records there.
+	if key[0] == tagRecord && !s.pendingRecords {
 		v, closer, err = s.db.Get(key)
 	} else {
-		v, closer, err = s.pending.Get(key)
+		s.stageMu.Lock()
+		defer s.stageMu.Unlock()
+		if s.pending.Empty() {
+			v, closer, err = s.db.Get(key)
+		} else {
+			v, closer, err = s.pending.Get(key)
+		}
 	}
 	if errors.Is(err, pebble.ErrNotFound) {
 		return false, nil
@@ -769,12 +793,21 @@ func (s *Store) Commits() uint64 { return s.commits }
 
 // pendingBytes approximates the memory of the pending batch: its
 // encoded writes plus the batch index, about a skiplist node per write.
-func (s *Store) pendingBytes() int64 {
+// The figure is cached (noteStaged) so parts evicting concurrently can
+// read it without a lock; it is refreshed by every staged write.
+func (s *Store) pendingBytes() int64 { return s.staged.Load() }
+
+// noteStaged refreshes the cached pendingBytes. The caller holds stageMu
+// or runs while no part is in use.
+func (s *Store) noteStaged() {
+	if s.pending == nil {
+		return
+	}
 	n := int64(s.pending.Len()) + int64(s.pending.Count())*pendingNodeBytes + s.spill.bytes
 	if s.flight != nil {
 		n += s.flight.spill.bytes
 	}
-	return n
+	s.staged.Store(n)
 }
 
 // pendingNodeBytes approximates the index memory per write of an indexed
@@ -791,7 +824,7 @@ func (s *Store) OverBudget() bool {
 }
 
 // CachedBytes returns the approximate memory held by all record caches.
-func (s *Store) CachedBytes() int64 { return s.budget.used }
+func (s *Store) CachedBytes() int64 { return s.budget.used.Load() }
 
 // DiskBytes returns Pebble's estimate of the on-disk size of the store.
 func (s *Store) DiskBytes() uint64 {
