@@ -22,7 +22,8 @@ const cursorV1 = 1
 //	uvarint head: offset of the first record not consumed; the group
 //	        offset committed with this state
 //
-// Invariant: resume <= head. Trailing bytes are refused.
+// Invariant: resume <= head. Varints are minimal; longer forms and
+// trailing bytes are refused, so one cursor has one encoding.
 type cursor struct {
 	resume, head int64
 }
@@ -42,13 +43,13 @@ func decodeCursor(b []byte) (cursor, error) {
 	}
 	b = b[1:]
 	r, n := binary.Uvarint(b)
-	if n <= 0 {
-		return cursor{}, fmt.Errorf("%w: truncated resume offset", ErrCursor)
+	if n <= 0 || n != uvarintLen(r) {
+		return cursor{}, fmt.Errorf("%w: bad resume offset", ErrCursor)
 	}
 	b = b[n:]
 	h, n := binary.Uvarint(b)
-	if n <= 0 {
-		return cursor{}, fmt.Errorf("%w: truncated head offset", ErrCursor)
+	if n <= 0 || n != uvarintLen(h) {
+		return cursor{}, fmt.Errorf("%w: bad head offset", ErrCursor)
 	}
 	if len(b) != n {
 		return cursor{}, fmt.Errorf("%w: %d trailing bytes", ErrCursor, len(b)-n)
@@ -57,4 +58,9 @@ func decodeCursor(b []byte) (cursor, error) {
 		return cursor{}, fmt.Errorf("%w: resume %d past head %d", ErrCursor, r, h)
 	}
 	return cursor{resume: int64(r), head: int64(h)}, nil
+}
+
+func uvarintLen(v uint64) int {
+	var b [binary.MaxVarintLen64]byte
+	return binary.PutUvarint(b[:], v)
 }
