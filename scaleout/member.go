@@ -319,9 +319,9 @@ func (m *Member[E]) handle(ctx context.Context, fs kgo.Fetches) error {
 			m.cfg.Logger.Warn("fetch error", "member", m.cfg.Name, "topic", t, "partition", p, "err", err)
 		}
 	})
-	if ctx.Err() != nil {
-		return nil // records polled after the end are read again by the next owner
-	}
+	// Records in hand are processed even if ctx has ended: the client
+	// already counts them as consumed, and a commit by Close would
+	// otherwise move the group offset past records never applied.
 	n := fs.NumRecords()
 	m.mu.Lock()
 	if m.fatal != nil {

@@ -1,8 +1,15 @@
 package scaleout
 
 import (
+	"context"
+	"encoding/json"
+	"fmt"
 	"testing"
 	"time"
+
+	"github.com/twmb/franz-go/pkg/kgo"
+
+	"github.com/tallyward/tallyward"
 )
 
 func byAccount(p payment) string { return p.Account }
@@ -159,4 +166,73 @@ func TestPlainMembersAtLeastOnce(t *testing.T) {
 	rd.mu.Unlock()
 	checkRows(t, rd, want) // once repeats are folded
 	t.Logf("%d rows repeated after the kill; b: %+v; c: %+v", dups, b.m.Stats(), c.m.Stats())
+}
+
+// A Settled pipeline holds events until the watermark passes them, so its
+// snapshots resume before their head: the next owner must read the held
+// events again (from the snapshot's resume offset) without counting or
+// emitting them twice.
+func TestSettledHandOverRereadsHeldEvents(t *testing.T) {
+	evs := payments(18, 4000, 300, 200)
+	settled := pipelineOptions()
+	settled.Mode, settled.MaxDisorder = tallyward.Settled, 5*time.Minute
+	spec := accountSpec()
+	want := map[string][]float64{}
+	spec.Emit = func(r tallyward.Row[payment]) { want[r.Event.ID] = append([]float64(nil), r.Values...) }
+	ref, err := tallyward.Open(spec, settled)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, e := range evs {
+		if err := ref.Process(e); err != nil {
+			t.Fatal(err)
+		}
+	}
+	if err := ref.Flush(); err != nil {
+		t.Fatal(err)
+	}
+	ref.Close()
+
+	cl := newCluster(t, 4)
+	rd := cl.follow(cl.out)
+	withSettled := func(c *Config[payment]) { c.Options = settled }
+	a := cl.start("a", withSettled)
+	b := cl.start("b", withSettled, lazy)
+	half := len(evs) / 2
+	cl.produce(evs[:half], byAccount)
+	waitCond(t, "b to commit while holding events, and carry uncommitted work", func() bool {
+		b.m.mu.Lock()
+		defer b.m.mu.Unlock()
+		if b.m.stats.Commits == 0 {
+			return false
+		}
+		for _, pt := range b.m.parts {
+			if c, err := decodeCursor(pt.p.Cursor()); err == nil && c.resume < c.head && c.head == pt.confirmed && pt.dirty {
+				return true
+			}
+		}
+		return false
+	})
+	b.kill(t)
+	c := cl.start("c", withSettled)
+	cl.produce(evs[half:], byAccount)
+	// One event per partition far enough ahead to release every held row.
+	end := evs[len(evs)-1].At + int64(6*time.Minute)
+	manual, err := kgo.NewClient(kgo.SeedBrokers(cl.addrs...), kgo.RecordPartitioner(kgo.ManualPartitioner()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer manual.Close()
+	for p := range cl.parts {
+		b, _ := json.Marshal(payment{ID: fmt.Sprint("end-", p), At: end, Account: "end"})
+		if err := manual.ProduceSync(context.Background(), &kgo.Record{Topic: cl.in, Partition: p, Value: b}).FirstErr(); err != nil {
+			t.Fatal(err)
+		}
+	}
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	a.stop(t)
+	c.stop(t)
+	cl.finish(rd)
+	checkRows(t, rd, want)
+	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
