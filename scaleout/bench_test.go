@@ -55,7 +55,13 @@ func BenchmarkThroughput(b *testing.B) {
 		name    string
 		members int
 		txn     bool
-	}{{"member/plain", 1, false}, {"member/transactional", 1, true}, {"members=2/transactional", 2, true}} {
+		every   int
+	}{
+		{"member/plain", 1, false, 10000},
+		{"member/transactional", 1, true, 10000},
+		{"member/transactional/commit=50k", 1, true, 50000},
+		{"members=2/transactional", 2, true, 10000},
+	} {
 		b.Run(tc.name, func(b *testing.B) {
 			cl := newCluster(b, 6)
 			cl.produce(evs(b.N), byAccount)
@@ -63,7 +69,7 @@ func BenchmarkThroughput(b *testing.B) {
 			var rs []*running
 			for i := range tc.members {
 				rs = append(rs, cl.start(fmt.Sprint("m", i), func(c *Config[payment]) {
-					c.CommitRecords = 10000
+					c.CommitRecords = tc.every
 					c.MaxPollRecords = 2000
 					if !tc.txn {
 						c.TransactionalID = ""
