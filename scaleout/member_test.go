@@ -82,18 +82,13 @@ func TestMemberKilledWithoutRevoke(t *testing.T) {
 	want := reference(t, accountSpec(), evs)
 	cl := newCluster(t, 6)
 	rd := cl.follow(cl.out)
-	a, b, c := cl.start("a"), cl.start("b", lazy), cl.start("c")
+	a, b, c := cl.start("a"), cl.start("b"), cl.start("c")
 	half := len(evs) / 2
-	cl.produce(evs[:half], byAccount)
+	cl.produce(evs[:half-200], byAccount)
 	// Kill b once it has committed some work and consumed more since: the
 	// work after its last commit is lost with it and must be redone by
 	// the next owner, whose rows must not repeat b's committed ones.
-	waitCond(t, "b to commit and carry uncommitted work", func() bool {
-		b.m.mu.Lock()
-		defer b.m.mu.Unlock()
-		return b.m.stats.Commits > 0 && b.m.pending > 0
-	})
-	b.kill(t)
+	killHolding(t, b, func() { cl.produce(evs[half-200:half], byAccount) }, nil)
 	cl.produce(evs[half:], byAccount)
 	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
 	a.stop(t)
@@ -103,10 +98,35 @@ func TestMemberKilledWithoutRevoke(t *testing.T) {
 	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
 
-// lazy makes a member commit only when a rebalance waits for it or after
-// 400 records, never when idle: it then holds uncommitted work a test can
-// kill it with.
-func lazy(c *Config[payment]) { c.IdleCommit = time.Hour }
+// killHolding kills b while it holds work it has not committed, after a
+// commit of its own: it waits for b's first commit (and for ready, if not
+// nil, to hold for one of b's partitions), calls more to produce records
+// (fewer than b commits by count), waits until b has consumed some of them
+// and kills it. b commits when idle for IdleCommit (50 ms): the condition
+// holds for at least that long, and waitCond looks every 2 ms.
+func killHolding(t testing.TB, b *running, more func(), ready func(*part[payment]) bool) {
+	t.Helper()
+	waitCond(t, "b to commit", func() bool {
+		b.m.mu.Lock()
+		defer b.m.mu.Unlock()
+		if b.m.stats.Commits == 0 {
+			return false
+		}
+		for _, pt := range b.m.parts {
+			if ready == nil || ready(pt) {
+				return true
+			}
+		}
+		return false
+	})
+	more()
+	waitCond(t, "b to hold uncommitted work", func() bool {
+		b.m.mu.Lock()
+		defer b.m.mu.Unlock()
+		return b.m.pending > 0
+	})
+	b.kill(t)
+}
 
 // waitCond polls cond on a ticker (the condition lives in another
 // goroutine's state, with no channel to wait on), failing after a minute.
@@ -134,7 +154,7 @@ func TestPlainMembersAtLeastOnce(t *testing.T) {
 	cl := newCluster(t, 6)
 	rd := cl.follow(cl.out)
 	plain := func(c *Config[payment]) { c.TransactionalID = "" }
-	a, b := cl.start("a", plain), cl.start("b", plain, lazy)
+	a, b := cl.start("a", plain), cl.start("b", plain)
 	third := len(evs) / 3
 	cl.produce(evs[:third], byAccount)
 	rd.waitFor(t, "the first rows", 2*time.Minute, func(d, _ int, _ bool) bool { return d > third/2 })
@@ -142,13 +162,8 @@ func TestPlainMembersAtLeastOnce(t *testing.T) {
 	cl.produce(evs[third:2*third], byAccount)
 	rd.waitFor(t, "the second third", 2*time.Minute, func(d, _ int, _ bool) bool { return d == 2*third })
 	a.stop(t)
-	cl.produce(evs[2*third:], byAccount)
-	waitCond(t, "b to carry uncommitted work", func() bool {
-		b.m.mu.Lock()
-		defer b.m.mu.Unlock()
-		return b.m.pending > 0
-	})
-	b.kill(t)
+	cl.produce(evs[2*third:len(evs)-200], byAccount)
+	killHolding(t, b, func() { cl.produce(evs[len(evs)-200:], byAccount) }, nil)
 	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
 	c.stop(t)
 	cl.finish(rd)
@@ -197,23 +212,15 @@ func TestSettledHandOverRereadsHeldEvents(t *testing.T) {
 	rd := cl.follow(cl.out)
 	withSettled := func(c *Config[payment]) { c.Options = settled }
 	a := cl.start("a", withSettled)
-	b := cl.start("b", withSettled, lazy)
+	b := cl.start("b", withSettled)
 	half := len(evs) / 2
-	cl.produce(evs[:half], byAccount)
-	waitCond(t, "b to commit while holding events, and carry uncommitted work", func() bool {
-		b.m.mu.Lock()
-		defer b.m.mu.Unlock()
-		if b.m.stats.Commits == 0 {
-			return false
-		}
-		for _, pt := range b.m.parts {
-			if c, err := decodeCursor(pt.p.Cursor()); err == nil && c.resume < c.head && c.head == pt.confirmed && pt.dirty {
-				return true
-			}
-		}
-		return false
+	cl.produce(evs[:half-200], byAccount)
+	// b's committed state must hold events (resume before head), so the
+	// next owner has to read them again.
+	killHolding(t, b, func() { cl.produce(evs[half-200:half], byAccount) }, func(pt *part[payment]) bool {
+		c, err := decodeCursor(pt.p.Cursor())
+		return err == nil && c.resume < c.head && c.head == pt.confirmed
 	})
-	b.kill(t)
 	c := cl.start("c", withSettled)
 	cl.produce(evs[half:], byAccount)
 	// One event per partition far enough ahead to release every held row.
@@ -235,4 +242,59 @@ func TestSettledHandOverRereadsHeldEvents(t *testing.T) {
 	cl.finish(rd)
 	checkRows(t, rd, want)
 	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
+}
+
+// Offsets need not be dense: transaction markers, records of aborted
+// transactions (skipped by read-committed members) and records Decode
+// refuses all take offsets without taking sequence numbers. A member
+// killed among them must hand over at the right offsets.
+func TestOffsetGapsAcrossHandOver(t *testing.T) {
+	evs := payments(19, 3000, 300, 200)
+	cl := newCluster(t, 4)
+	txp, err := kgo.NewClient(kgo.SeedBrokers(cl.addrs...), kgo.DefaultProduceTopic(cl.in), kgo.TransactionalID("input-writer"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer txp.Close()
+	var kept []payment
+	batch := func(evs []payment, commit bool) {
+		t.Helper()
+		if err := txp.BeginTransaction(); err != nil {
+			t.Fatal(err)
+		}
+		for i, e := range evs {
+			b, _ := json.Marshal(e)
+			if i%97 == 0 {
+				b = []byte("not json") // refused by Decode, every read
+			}
+			txp.Produce(context.Background(), &kgo.Record{Key: []byte(e.Account), Value: b}, nil)
+			if commit && i%97 != 0 {
+				kept = append(kept, e)
+			}
+		}
+		if err := txp.Flush(context.Background()); err != nil {
+			t.Fatal(err)
+		}
+		if err := txp.EndTransaction(context.Background(), kgo.TransactionEndTry(commit)); err != nil {
+			t.Fatal(err)
+		}
+	}
+	rd := cl.follow(cl.out)
+	a, b := cl.start("a"), cl.start("b")
+	const chunk = 250
+	for i := 0; i < len(evs)/2-chunk; i += chunk {
+		batch(evs[i:i+chunk], (i/chunk)%3 != 2)
+	}
+	killHolding(t, b, func() { batch(evs[len(evs)/2-chunk:len(evs)/2], true) }, nil)
+	c := cl.start("c")
+	for i := len(evs) / 2; i < len(evs); i += chunk {
+		batch(evs[i:i+chunk], (i/chunk)%3 != 2)
+	}
+	want := reference(t, accountSpec(), kept)
+	rd.waitFor(t, "every kept row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	a.stop(t)
+	c.stop(t)
+	cl.finish(rd)
+	checkRows(t, rd, want)
+	t.Logf("%d of %d events kept; killed b: %+v; a: %+v; c: %+v", len(kept), len(evs), b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
