@@ -100,7 +100,9 @@
 // It does not balance load by itself (the group's assignor does), move
 // state between machines without shared storage, or make rows delivered to
 // Spec.Emit exactly-once: only the transactional output topic is. A
-// Meeting keeps its state in memory.
+// Meeting keeps its state in memory. A Settled partition releases rows
+// only as its own events raise its watermark: a partition that goes quiet
+// holds its last rows until its next event (there is no idle advance).
 //
 // # Concurrency
 //
