@@ -42,7 +42,10 @@ type Config[E any] struct {
 	// receives every row. Required: Time and Entities.
 	Spec tallyward.Spec[E]
 	// Options are each partition pipeline's options; Dir is set per
-	// partition. Default: tallyward's defaults.
+	// partition, and a zero CommitEvery means no automatic commits (a
+	// partition's state is committed with its snapshots; local commits in
+	// between would only cost syncs). Default: tallyward's defaults
+	// otherwise.
 	Options tallyward.Options
 	// Dir is the local working directory: one Pebble store per owned
 	// partition lives under it while owned. Required.
@@ -133,6 +136,9 @@ func (c *Config[E]) ensureDefaults() {
 	}
 	if c.MaxPollRecords == 0 {
 		c.MaxPollRecords = 1000
+	}
+	if c.Options.CommitEvery == 0 {
+		c.Options.CommitEvery = -1
 	}
 	if c.Logger == nil {
 		c.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
