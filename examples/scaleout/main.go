@@ -49,22 +49,35 @@ const (
 	parts    = 6
 )
 
+// The parent starts each instance as a copy of its own executable with
+// these variables set.
+const (
+	envMember    = "SCALEOUT_EXAMPLE_MEMBER"
+	envBrokers   = "SCALEOUT_EXAMPLE_BROKERS"
+	envSnapshots = "SCALEOUT_EXAMPLE_SNAPSHOTS"
+)
+
 func main() {
-	member := flag.String("member", "", "run as the instance of this name (used by the parent)")
-	brokers := flag.String("brokers", "", "broker addresses, comma separated (instance mode)")
-	snaps := flag.String("snapshots", "", "shared snapshot directory (instance mode)")
+	log.SetFlags(0)
+	maybeRunMember()
 	events := flag.Int("events", 30000, "payments to produce")
 	flag.Parse()
-	log.SetFlags(0)
-	if *member != "" {
-		if err := runMember(*member, strings.Split(*brokers, ","), *snaps); err != nil {
-			log.Fatalf("%s: %v", *member, err)
-		}
-		return
-	}
 	if err := runDemo(*events); err != nil {
 		log.Fatal(err)
 	}
+}
+
+// maybeRunMember runs an instance and exits, in a process the parent
+// started; otherwise it returns.
+func maybeRunMember() {
+	name := os.Getenv(envMember)
+	if name == "" {
+		return
+	}
+	if err := runMember(name, strings.Split(os.Getenv(envBrokers), ","), os.Getenv(envSnapshots)); err != nil {
+		log.Fatalf("%s: %v", name, err)
+	}
+	os.Exit(0)
 }
 
 // runMember is one instance: it scores the partitions it owns until
@@ -142,7 +155,8 @@ type instance struct {
 }
 
 func startInstance(name string, brokers []string, snaps string) (*instance, error) {
-	cmd := exec.Command(os.Args[0], "-member", name, "-brokers", strings.Join(brokers, ","), "-snapshots", snaps)
+	cmd := exec.Command(os.Args[0])
+	cmd.Env = append(os.Environ(), envMember+"="+name, envBrokers+"="+strings.Join(brokers, ","), envSnapshots+"="+snaps)
 	out, err := cmd.StdoutPipe()
 	if err != nil {
 		return nil, err
@@ -250,8 +264,10 @@ func runDemo(n int) error {
 	rows.waitFor(len(pays) + 1)
 	distinct, total := rows.counts()
 	distinct, total = distinct-1, total-1 // the marker
-	say("-- %d payments, %d rows read committed, %d distinct ids: %s", len(pays), total, distinct,
-		map[bool]string{true: "each payment's row exactly once", false: "MISMATCH"}[distinct == len(pays) && total == len(pays)])
+	if distinct != len(pays) || total != len(pays) {
+		return fmt.Errorf("%d payments, but %d rows read committed with %d distinct ids", len(pays), total, distinct)
+	}
+	say("-- %d payments, %d rows read committed, %d distinct ids: each payment's row exactly once", len(pays), total, distinct)
 	return nil
 }
 
