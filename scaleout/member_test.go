@@ -32,8 +32,18 @@ func TestMembersShareTheWork(t *testing.T) {
 			}
 			cl.produce(evs, byAccount)
 			rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+			owned := 0
+			for _, r := range rs {
+				owned += len(r.m.Owned())
+			}
+			if owned > int(cl.parts) {
+				t.Errorf("%d partitions owned by %d members, more than the %d there are", owned, members, cl.parts)
+			}
 			for _, r := range rs {
 				r.stop(t)
+				if o := r.m.Owned(); len(o) != 0 {
+					t.Errorf("%s still owns %v after Close", r.m.cfg.Name, o)
+				}
 			}
 			cl.finish(rd)
 			checkRows(t, rd, want)
