@@ -315,3 +315,32 @@ func TestOffsetGapsAcrossHandOver(t *testing.T) {
 	checkRows(t, rd, want)
 	t.Logf("%d of %d events kept; killed b: %+v; a: %+v; c: %+v", len(kept), len(evs), b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
+
+// A plain member idle between polls, holding work it has not committed,
+// commits each partition it is asked to give up inside the revoke (state,
+// then that partition's group offset), so even without transactions a
+// clean hand-over repeats no row.
+func TestPlainRevokeCommitsPendingWork(t *testing.T) {
+	evs := payments(20, 2000, 300, 200)
+	want := reference(t, accountSpec(), evs)
+	cl := newCluster(t, 4)
+	rd := cl.follow(cl.out)
+	holding := func(c *Config[payment]) {
+		c.TransactionalID, c.IdleCommit, c.CommitRecords = "", time.Hour, 1<<30
+	}
+	a := cl.start("a", holding)
+	half := len(evs) / 2
+	cl.produce(evs[:half], byAccount)
+	rd.waitFor(t, "the first half", 2*time.Minute, func(d, _ int, _ bool) bool { return d == half })
+	if st := a.m.Stats(); st.Commits != 0 {
+		t.Fatalf("a committed before the rebalance: %+v", st)
+	}
+	b := cl.start("b", func(c *Config[payment]) { c.TransactionalID = "" })
+	waitCond(t, "b to take partitions over from a's snapshots", func() bool { return b.m.Stats().Loaded > 0 })
+	cl.produce(evs[half:], byAccount)
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	a.stop(t)
+	b.stop(t)
+	cl.finish(rd)
+	checkRows(t, rd, want)
+}
