@@ -310,6 +310,15 @@ func (l *Live[E]) submitLocked(e E, now int64, dst []float64, want bool) ([]floa
 	return dst, err
 }
 
+// deliver runs and delivers the work queued for the pipeline's workers.
+func (l *Live[E]) deliver(ctx context.Context) error {
+	if err := l.lock(ctx); err != nil {
+		return err
+	}
+	defer l.unlock()
+	return l.p.finishWork()
+}
+
 // Tick lets the watermark advance on a quiet source: if no event arrived
 // for Options.IdleAdvance of clock time, the watermark rises to
 // clock − MaxDisorder − IdleAdvance. Run calls it periodically; tests call
@@ -319,6 +328,15 @@ func (l *Live[E]) Tick(ctx context.Context) error {
 		return err
 	}
 	defer l.unlock()
+	if err := l.p.usable(); err != nil {
+		return err
+	}
+	// With workers, rows of submitted events wait for a full batch; a
+	// tick delivers them, so a slow source's rows are late by at most a
+	// tick.
+	if err := l.p.finishWork(); err != nil {
+		return err
+	}
 	idle := int64(l.p.opts.IdleAdvance)
 	if idle == 0 {
 		return l.p.usable()
@@ -360,6 +378,12 @@ func (l *Live[E]) Run(ctx context.Context, ch <-chan E, tick time.Duration) erro
 				l.noteRejected(err)
 			default:
 				return err
+			}
+			if len(ch) == 0 && l.p.work != nil {
+				// Nothing more to batch with: deliver the rows now.
+				if err := l.deliver(ctx); err != nil {
+					return err
+				}
 			}
 		case <-tc:
 			if err := l.Tick(ctx); err != nil {

@@ -154,9 +154,12 @@ type Options struct {
 	// reaches Spec.Emit (and Spec.OnLate, Spec.OnWatermark their
 	// callbacks, in the same order as with one) by the time a later call
 	// other than Process returns (Score, Commit, Advance, Flush, Feed,
-	// Lookup, Stats, Close ...), or once a batch fills, not
-	// before Process returns. Score answers at once either way. Default:
-	// 1 (rows emitted within Process).
+	// Lookup, Close ...), or once a batch fills, not before Process
+	// returns; Live.Tick delivers them too, and Live.Run whenever its
+	// channel is empty. Score answers at once either way. Default: 1
+	// (rows emitted within Process): more workers change when Emit runs,
+	// so they are asked for (the replay command asks for one per core).
+	// The workers are goroutines that Close stops.
 	Workers int
 
 	// CommitEvery commits automatically after this many source events.

@@ -325,7 +325,11 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	if !p.hasMax || t > p.maxT {
 		p.hasMax, p.maxT = true, t
 	}
-	if p.work != nil && (p.opts.Mode == Eager || late) {
+	// A lone Score with nothing queued runs on the caller's goroutine, as
+	// with one worker: handing one event to the workers and waiting for
+	// it would only add latency.
+	direct := p.work == nil || wantVals && p.sink == nil && p.work.idle()
+	if !direct && (p.opts.Mode == Eager || late) {
 		var sink *[]float64
 		if wantVals {
 			// The row's values are appended to the sink when its batch is
@@ -357,7 +361,9 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 			// Score answers before it returns, with its event's
 			// callbacks delivered, as with one worker.
 			err := p.finishWork()
-			dst, p.ownSink = p.ownSink, nil
+			if !direct {
+				dst, p.ownSink = p.ownSink, nil
+			}
 			if err != nil {
 				return dst, err
 			}
@@ -828,6 +834,9 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	pr := p.progress()
 	pr.resumeNewest = resumeNewest
 	m.Extra = pr.append(nil)
+	// The next commit's sweep is at this watermark or above: let this
+	// commit read its records ahead, off the caller's path.
+	p.store.SweepAhead(p.expiryClock())
 	write := p.store.Commit
 	if async {
 		write = p.store.CommitAsync
@@ -852,7 +861,10 @@ func (p *Pipeline[E]) Close() error {
 		return ErrReentered
 	}
 	var err error
-	if p.err == nil && !p.opts.ReadOnly {
+	if p.err == nil {
+		err = p.finishWork() // rows still queued go out, read-only or not
+	}
+	if err == nil && p.err == nil && !p.opts.ReadOnly {
 		err = p.Commit(nil)
 	}
 	p.joinWork() // after a failure: the workers must be done with the store

@@ -270,6 +270,9 @@ func (p *Pipeline[E]) landWork() error {
 	return nil
 }
 
+// idle reports whether nothing is queued or in flight.
+func (w *workers[E]) idle() bool { return w.flying == nil && len(w.fill.out) == 0 }
+
 // joinWork waits until the workers are done with the batch in flight,
 // without delivering it: after it the parts are idle and may be read
 // (Stats) or abandoned (Close after a failure).

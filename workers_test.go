@@ -225,3 +225,31 @@ func rowText(ref *rowLog, seq uint64, vals []float64) string {
 	}
 	return b.String()
 }
+
+// TestLiveRunDeliversWithWorkers: rows of events submitted through Run
+// reach Emit without a commit or a flush once the channel runs dry, and
+// equal the one-worker rows.
+func TestLiveRunDeliversWithWorkers(t *testing.T) {
+	evs := genLogins(9, 3_000, 300, 100, 0)
+	run := func(workers int) *rowLog {
+		rows := newRowLog()
+		var mu sync.Mutex
+		p := openTest(t, richSpec(func(r Row[login]) { mu.Lock(); rows.add(r); mu.Unlock() }), Options{Workers: workers})
+		live := NewLive(p, &fakeClock{now: t0 + int64(24*time.Hour)})
+		ch := make(chan login, 64)
+		go func() {
+			for _, e := range evs {
+				ch <- e
+			}
+			close(ch)
+		}()
+		require.NoError(t, live.Run(t.Context(), ch, 0))
+		mu.Lock()
+		defer mu.Unlock()
+		return rows
+	}
+	one, two := run(1), run(2)
+	require.Len(t, two.rows, len(evs))
+	require.Equal(t, one.rows, two.rows)
+	require.Equal(t, one.order, two.order)
+}

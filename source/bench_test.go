@@ -27,7 +27,10 @@ import (
 //
 // benchstat recipe: run with -count 6 on two revisions and compare with
 // benchstat old.txt new.txt; read events/s and the replay/decode ratio.
-var benchEvents = flag.Int("bench-events", 1_000_000, "events per benchmark input file")
+var (
+	benchEvents  = flag.Int("bench-events", 1_000_000, "events per benchmark input file")
+	benchWorkers = flag.Int("bench-workers", 1, "pipeline workers (Options.Workers) of the core and replay runs")
+)
 
 const benchSpec = `version: 1
 events:
@@ -170,6 +173,7 @@ func BenchmarkReplay(b *testing.B) {
 				spec.Emit = func(tallyward.Row[specfile.Event]) {}
 				o := f.Options
 				o.Dir = filepath.Join(b.TempDir(), "state")
+				o.Workers = *benchWorkers
 				p, err := tallyward.Open(spec, o)
 				if err != nil {
 					b.Fatal(err)
@@ -240,6 +244,7 @@ func openBenchPipeline(b *testing.B, f *specfile.File, dir string) (*tallyward.P
 	}
 	o := f.Options
 	o.Dir = filepath.Join(dir, "state")
+	o.Workers = *benchWorkers
 	p, err := tallyward.Open(spec, o)
 	if err != nil {
 		b.Fatal(err)

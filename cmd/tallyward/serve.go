@@ -10,6 +10,7 @@ import (
 	"net"
 	"os"
 	"os/signal"
+	"runtime"
 	"strings"
 	"sync"
 	"syscall"
@@ -71,6 +72,7 @@ Example:
 			fs.IntVar(&o.QueueDepth, "queue", 256, "most requests admitted at once (waiting or being served)")
 			fs.DurationVar(&o.CommitInterval, "commit-interval", time.Second, "period of automatic commits; 0: only on request, erasure and shutdown")
 			fs.DurationVar(&o.DrainTimeout, "drain-timeout", 30*time.Second, "longest wait for requests in flight at shutdown")
+			workers := fs.Int("workers", runtime.GOMAXPROCS(0), "goroutines the entity records are split over; concurrent score requests are run together on them")
 			logFormat := fs.String("log-format", "json", "log format: json or text (to stderr)")
 			logLevel := fs.String("log-level", "info", "least level logged: debug, info, warn, error")
 			return func(e *env, args []string) int {
@@ -107,7 +109,7 @@ Example:
 					e.errorf("serve runs Eager pipelines only (run.mode is %v): a server has no source to re-read the events a Settled pipeline holds across a restart", f.Options.Mode)
 					return exitBadSpec
 				}
-				return runServe(e, f, *state, o)
+				return runServe(e, f, *state, o, *workers)
 			}
 		},
 	})
@@ -149,11 +151,12 @@ func readToken(file, envVar string) (string, error) {
 	return strings.TrimSpace(os.Getenv(envVar)), nil
 }
 
-func runServe(e *env, f *specfile.File, dir string, o serve.Options) int {
+func runServe(e *env, f *specfile.File, dir string, o serve.Options, workers int) int {
 	ctx, stop := signal.NotifyContext(context.Background(), syscall.SIGTERM, syscall.SIGINT)
 	defer stop()
 	opts := f.Options
 	opts.Logger = o.Logger
+	opts.Workers = workers
 	p, code, ok := openPipeline(e, f, dir, opts)
 	if !ok {
 		return code

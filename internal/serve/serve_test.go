@@ -72,7 +72,7 @@ func newTestServer(t testing.TB, opts Options) (*Server[signin], *tallyward.Live
 				{Name: "failed_1h", Kind: tallyward.SlidingCount{Window: time.Hour}, Where: func(e signin) bool { return e.Failed }},
 			},
 		}},
-	}, tallyward.Options{MaxDisorder: time.Minute, CommitEvery: -1})
+	}, tallyward.Options{MaxDisorder: time.Minute, CommitEvery: -1, Workers: 2}) // as the serve command runs on two cores
 	require.NoError(t, err)
 	t.Cleanup(func() { p.Close() })
 	live := tallyward.NewLive(p, fixedClock(t0+int64(time.Hour)))

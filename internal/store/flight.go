@@ -5,6 +5,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
@@ -38,6 +39,7 @@ type flight struct {
 	took  uint32 // entries of the pending batch the commit holds
 	spill *spill // the spill the commit took; reads see it until it lands
 	c     *collector
+	ahead aheadTimes // read ahead after the write (readahead.go)
 }
 
 // freeze takes the writes of a commit of m and starts writing them. The
@@ -99,12 +101,17 @@ func (s *Store) freeze(m Mark) error {
 	ingest := s.opts.IngestThreshold > 0 && n >= s.opts.IngestThreshold
 	seq := s.commits + 1
 	tables := slices.Clone(s.tables)
+	aheadW, peek := s.aheadW, s.peekFuncs()
+	s.aheadW = math.MinInt64
 	go func() {
 		err := encodeAll(tables, c)
 		if err == nil {
 			buf, _ := m.AppendBinary(nil)
 			c.Set(metaKey(metaMark), buf, nil)
 			err = s.write(c, ingest, seq)
+		}
+		if err == nil {
+			f.ahead = s.readAhead(aheadW, peek)
 		}
 		f.done <- err
 	}()
@@ -141,6 +148,7 @@ func (s *Store) Settle() error {
 	s.spareC = f.c
 	f.spill.reset()
 	s.spareSpill = f.spill
+	s.ahead = f.ahead
 	s.noteStaged()
 	return s.committed(f.mark)
 }

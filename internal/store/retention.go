@@ -168,9 +168,13 @@ func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity
 	if found {
 		last = sl.Value.LastTime()
 	} else {
-		var err error
-		if last, found, err = t.loadLast(entity); err != nil {
-			return false, err
+		t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
+		var ok bool
+		if last, found, ok = t.store.aheadLast(t.keybuf); !ok {
+			var err error
+			if last, found, err = t.loadLast(entity); err != nil {
+				return false, err
+			}
 		}
 	}
 	if err := b.Delete(indexKey, nil); err != nil {

@@ -59,8 +59,12 @@ func checkIndex(t *testing.T, db *pebble.DB, table string, ttl int64) {
 // committed records equal the model and the index is exact.
 func TestExpiryMatchesModel(t *testing.T) {
 	t.Parallel()
-	for _, peek := range []bool{false, true} {
-		t.Run(fmt.Sprintf("peek=%v", peek), func(t *testing.T) {
+	// ahead: each commit reads ahead at its sweep's watermark (the next
+	// sweep may be lower or higher): removals must not change, and the
+	// sweeps must use the read-ahead times.
+	for _, c := range []struct{ peek, ahead bool }{{false, false}, {true, false}, {true, true}} {
+		peek := c.peek
+		t.Run(fmt.Sprintf("peek=%v/ahead=%v", peek, c.ahead), func(t *testing.T) {
 			const ttl = 1600
 			r := rand.New(rand.NewPCG(11, 12))
 			fs := vfs.NewMem()
@@ -81,6 +85,7 @@ func TestExpiryMatchesModel(t *testing.T) {
 			model := map[string]rec{}
 			clock := int64(0)
 			removedTotal := 0
+			var aheadUsed uint64
 			for step := range steps {
 				for range 40 {
 					k := fmt.Sprintf("u%03d", r.IntN(300))
@@ -127,6 +132,11 @@ func TestExpiryMatchesModel(t *testing.T) {
 					delete(model, k)
 				}
 				removedTotal += n
+				if c.ahead {
+					s.SweepAhead(w)
+				}
+				aheadUsed += s.aheadUsed
+				s.aheadUsed = 0
 				if err := s.Commit(Mark{Seen: uint64(step), Watermark: w}); err != nil {
 					t.Fatal(err)
 				}
@@ -143,6 +153,10 @@ func TestExpiryMatchesModel(t *testing.T) {
 			if removedTotal < 100 {
 				t.Fatalf("only %d records expired; the run does not exercise expiry", removedTotal)
 			}
+			if c.ahead != (aheadUsed > 0) {
+				t.Fatalf("sweeps used %d read-ahead times", aheadUsed)
+			}
+			t.Logf("%d removed; %d records judged by read-ahead times", removedTotal, aheadUsed)
 		})
 	}
 }

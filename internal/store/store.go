@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"runtime"
 	"slices"
@@ -267,7 +268,13 @@ type Store struct {
 	stageMu sync.Mutex
 	// staged caches pendingBytes for the parts' eviction loops.
 	staged atomic.Int64
-	closed bool
+	// aheadW is the watermark the next commit reads ahead at; ahead the
+	// times the last landed commit read (see readahead.go).
+	aheadW     int64
+	prevAheadW int64
+	ahead      aheadTimes
+	aheadUsed  uint64 // sweeps' uses of read-ahead times, for tests
+	closed     bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
@@ -340,7 +347,7 @@ func Open(opts Options) (_ *Store, err error) {
 		cache.Unref()
 		return nil, err
 	}
-	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes},
+	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes}, aheadW: math.MinInt64, prevAheadW: math.MinInt64,
 		notices: in.notices, rollback: in.rollback}
 	defer func() {
 		if err != nil {
