@@ -401,8 +401,16 @@ func (m *Member[E]) process(r *kgo.Record) error {
 func (m *Member[E]) commit(ctx context.Context) error {
 	m.mu.Lock()
 	saved := map[int32]int64{}
+	// offsets are the group offsets this commit may write: a partition's
+	// offset only ever names a head a snapshot was saved at. (The client
+	// would also commit the position of a partition assigned but not yet
+	// consumed from, which names no snapshot.)
+	offsets := map[int32]int64{}
 	for id, pt := range m.parts {
 		if !pt.dirty {
+			if pt.confirmed >= 0 {
+				offsets[id] = pt.confirmed
+			}
 			continue
 		}
 		if err := m.cfg.Snapshots.Save(ctx, pt.id, pt.head, pt.p.Snapshot); err != nil {
@@ -410,7 +418,7 @@ func (m *Member[E]) commit(ctx context.Context) error {
 			m.mu.Unlock()
 			return err
 		}
-		saved[id] = pt.head
+		saved[id], offsets[id] = pt.head, pt.head
 	}
 	inTxn := m.inTxn
 	m.inTxn = false
@@ -420,7 +428,7 @@ func (m *Member[E]) commit(ctx context.Context) error {
 	switch {
 	case m.txn != nil && inTxn:
 		var err error
-		ok, err = m.txn.End(ctx, kgo.TryCommit)
+		ok, err = m.txn.End(kgo.PreTxnCommitFnContext(ctx, m.onlySnapshotted(offsets)), kgo.TryCommit)
 		if err != nil {
 			return m.fail(err)
 		}
@@ -430,7 +438,7 @@ func (m *Member[E]) commit(ctx context.Context) error {
 				return m.fail(err)
 			}
 		}
-		if err := m.cl.CommitUncommittedOffsets(ctx); err != nil {
+		if err := m.commitOffsets(ctx, offsets); err != nil {
 			// The group moved on: whoever owns the partitions now
 			// resumes from the previous snapshot, which Prune kept.
 			m.cfg.Logger.Warn("offset commit refused", "member", m.cfg.Name, "err", err)
@@ -672,10 +680,51 @@ func (m *Member[E]) drop(ctx context.Context, ids []int32, commit bool, what Wha
 	}
 }
 
+// onlySnapshotted rewrites a transaction's offset commit so that it
+// names, for the input topic, exactly the partitions of offsets at their
+// heads.
+func (m *Member[E]) onlySnapshotted(offsets map[int32]int64) func(*kmsg.TxnOffsetCommitRequest) error {
+	return func(req *kmsg.TxnOffsetCommitRequest) error {
+		topics := req.Topics[:0]
+		for _, t := range req.Topics {
+			if t.Topic == m.cfg.Topic {
+				kept := t.Partitions[:0]
+				for _, p := range t.Partitions {
+					if h, ok := offsets[p.Partition]; ok {
+						if p.Offset != h {
+							p.Offset, p.LeaderEpoch = h, -1
+						}
+						kept = append(kept, p)
+					}
+				}
+				t.Partitions = kept
+			}
+			if len(t.Partitions) > 0 {
+				topics = append(topics, t)
+			}
+		}
+		req.Topics = topics
+		return nil
+	}
+}
+
 // commitOne commits one partition's group offset, outside a transaction.
 func (m *Member[E]) commitOne(ctx context.Context, id int32, head int64) error {
+	return m.commitOffsets(ctx, map[int32]int64{id: head})
+}
+
+// commitOffsets commits group offsets of the input topic, outside a
+// transaction.
+func (m *Member[E]) commitOffsets(ctx context.Context, offsets map[int32]int64) error {
+	if len(offsets) == 0 {
+		return nil
+	}
+	eo := map[int32]kgo.EpochOffset{}
+	for id, h := range offsets {
+		eo[id] = kgo.EpochOffset{Epoch: -1, Offset: h}
+	}
 	var err error
-	m.cl.CommitOffsetsSync(ctx, map[string]map[int32]kgo.EpochOffset{m.cfg.Topic: {id: {Epoch: -1, Offset: head}}},
+	m.cl.CommitOffsetsSync(ctx, map[string]map[int32]kgo.EpochOffset{m.cfg.Topic: eo},
 		func(_ *kgo.Client, _ *kmsg.OffsetCommitRequest, resp *kmsg.OffsetCommitResponse, e error) {
 			err = e
 			if resp == nil {
