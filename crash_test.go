@@ -149,7 +149,8 @@ func TestKillAndRestartProcess(t *testing.T) {
 			if r.IntN(5) != 0 { // most runs die; some get to the end
 				killAt = r.IntN(len(evs))
 			}
-			out, ee := runChild(t, dir, "TALLYWARD_KILL_AT="+strconv.Itoa(killAt))
+			// Each run splits records over its own number of workers.
+			out, ee := runChild(t, dir, "TALLYWARD_KILL_AT="+strconv.Itoa(killAt), "TALLYWARD_WORKERS="+strconv.Itoa(1+r.IntN(3)))
 			if ee != nil {
 				ws, ok := ee.Sys().(syscall.WaitStatus)
 				require.True(t, ok && ws.Signaled() && ws.Signal() == syscall.SIGKILL, "child failed: %v\n%s", ee, out)
@@ -213,6 +214,9 @@ func TestKillChild(t *testing.T) {
 	}
 	if v := os.Getenv("TALLYWARD_INGEST"); v != "" {
 		opts.IngestThreshold, _ = strconv.Atoi(v)
+	}
+	if v := os.Getenv("TALLYWARD_WORKERS"); v != "" {
+		opts.Workers, _ = strconv.Atoi(v)
 	}
 	p, err := Open(richSpec(emit), opts)
 	reportIfFailed(err)

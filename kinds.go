@@ -73,54 +73,66 @@ func (SlidingMin) Inputs() Inputs   { return TakesValue }
 func (SlidingMax) Inputs() Inputs   { return TakesValue }
 func (SlidingMean) Inputs() Inputs  { return TakesValue }
 
-// The adapters below embed each window aggregate and map the pipeline's
-// add/at onto it: one small type per kind rather than closures, so a new
-// entity costs fewer allocations and an event fewer indirect calls.
+// The adapters below embed each window aggregate by value and map the
+// pipeline's add/at onto it: one small type per kind rather than
+// closures, so a record can hold them inside its one object (see record)
+// and an event makes fewer indirect calls.
 
-func (k SlidingCount) NewAggregate(horizon time.Duration) Aggregate {
-	return countAgg{built(window.NewSlidingCount(Sliding(k).spec(int64(horizon))))}
+func (k SlidingCount) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
+func (k SlidingSum) NewAggregate(h time.Duration) Aggregate   { return newPlaced(k.placement(h)) }
+func (k SlidingMin) NewAggregate(h time.Duration) Aggregate   { return newPlaced(k.placement(h)) }
+func (k SlidingMax) NewAggregate(h time.Duration) Aggregate   { return newPlaced(k.placement(h)) }
+func (k SlidingMean) NewAggregate(h time.Duration) Aggregate  { return newPlaced(k.placement(h)) }
+
+func (k SlidingCount) placement(h time.Duration) placement {
+	proto := built(window.NewSlidingCount(Sliding(k).spec(int64(h))))
+	return placeAs(func(a *countAgg) error { a.InitLike(proto); return nil })
 }
 
-func (k SlidingSum) NewAggregate(horizon time.Duration) Aggregate {
-	return sumAgg{built(window.NewSlidingSum(Sliding(k).spec(int64(horizon))))}
+func (k SlidingSum) placement(h time.Duration) placement {
+	proto := built(window.NewSlidingSum(Sliding(k).spec(int64(h))))
+	return placeAs(func(a *sumAgg) error { a.InitLike(proto); return nil })
 }
 
-func (k SlidingMin) NewAggregate(horizon time.Duration) Aggregate {
-	return minAgg{built(window.NewSlidingMin(Sliding(k).spec(int64(horizon))))}
+func (k SlidingMin) placement(h time.Duration) placement {
+	proto := built(window.NewSlidingMin(Sliding(k).spec(int64(h))))
+	return placeAs(func(a *minAgg) error { a.InitLike(proto); return nil })
 }
 
-func (k SlidingMax) NewAggregate(horizon time.Duration) Aggregate {
-	return maxAgg{built(window.NewSlidingMax(Sliding(k).spec(int64(horizon))))}
+func (k SlidingMax) placement(h time.Duration) placement {
+	proto := built(window.NewSlidingMax(Sliding(k).spec(int64(h))))
+	return placeAs(func(a *maxAgg) error { a.InitLike(proto); return nil })
 }
 
-func (k SlidingMean) NewAggregate(horizon time.Duration) Aggregate {
-	return meanAgg{built(window.NewSlidingMean(Sliding(k).spec(int64(horizon))))}
+func (k SlidingMean) placement(h time.Duration) placement {
+	proto := built(window.NewSlidingMean(Sliding(k).spec(int64(h))))
+	return placeAs(func(a *meanAgg) error { a.InitLike(proto); return nil })
 }
 
-type countAgg struct{ *window.SlidingCount }
+type countAgg struct{ window.SlidingCount }
 
-func (a countAgg) Add(t int64, _ float64, _ uint64) bool { return a.SlidingCount.Add(t) }
-func (a countAgg) At(t int64, _ uint64) float64          { return float64(a.CountAt(t)) }
+func (a *countAgg) Add(t int64, _ float64, _ uint64) bool { return a.SlidingCount.Add(t) }
+func (a *countAgg) At(t int64, _ uint64) float64          { return float64(a.CountAt(t)) }
 
-type sumAgg struct{ *window.SlidingSum }
+type sumAgg struct{ window.SlidingSum }
 
-func (a sumAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingSum.Add(t, v) }
-func (a sumAgg) At(t int64, _ uint64) float64          { return a.SumAt(t) }
+func (a *sumAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingSum.Add(t, v) }
+func (a *sumAgg) At(t int64, _ uint64) float64          { return a.SumAt(t) }
 
-type minAgg struct{ *window.SlidingMin }
+type minAgg struct{ window.SlidingMin }
 
-func (a minAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMin.Add(t, v) }
-func (a minAgg) At(t int64, _ uint64) float64          { return a.MinAt(t) }
+func (a *minAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMin.Add(t, v) }
+func (a *minAgg) At(t int64, _ uint64) float64          { return a.MinAt(t) }
 
-type maxAgg struct{ *window.SlidingMax }
+type maxAgg struct{ window.SlidingMax }
 
-func (a maxAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMax.Add(t, v) }
-func (a maxAgg) At(t int64, _ uint64) float64          { return a.MaxAt(t) }
+func (a *maxAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMax.Add(t, v) }
+func (a *maxAgg) At(t int64, _ uint64) float64          { return a.MaxAt(t) }
 
-type meanAgg struct{ *window.SlidingMean }
+type meanAgg struct{ window.SlidingMean }
 
-func (a meanAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMean.Add(t, v) }
-func (a meanAgg) At(t int64, _ uint64) float64          { return a.MeanAt(t) }
+func (a *meanAgg) Add(t int64, v float64, _ uint64) bool { return a.SlidingMean.Add(t, v) }
+func (a *meanAgg) At(t int64, _ uint64) float64          { return a.MeanAt(t) }
 
 // built returns an aggregate made from a kind's spec. Open validates every
 // kind with its horizon before making aggregates, so err is unreachable.
@@ -137,23 +149,3 @@ type encoded interface {
 	UnmarshalBinary(b []byte) error
 	SizeBytes() int
 }
-
-// codec is an encoded aggregate that knows its newest event time.
-type codec interface {
-	encoded
-	Newest() (t int64, ok bool)
-}
-
-// valueAgg adapts an aggregate taking (time, value) to the pipeline.
-type valueAgg struct {
-	codec
-	addFn func(t int64, v float64) bool
-	atFn  func(t int64) float64
-}
-
-func adapt(c codec, add func(int64, float64) bool, at func(int64) float64) *valueAgg {
-	return &valueAgg{codec: c, addFn: add, atFn: at}
-}
-
-func (a *valueAgg) Add(t int64, v float64, _ uint64) bool { return a.addFn(t, v) }
-func (a *valueAgg) At(t int64, _ uint64) float64          { return a.atFn(t) }

@@ -56,26 +56,27 @@ func (k Distinct) Describe() string {
 }
 
 // Validate implements Kind.
-func (k Distinct) Validate() error      { return k.spec(0).Validate() }
-func (Distinct) Inputs() Inputs         { return TakesItem }
-func (k Distinct) Reach() time.Duration { return k.Window }
-func (k Distinct) NewAggregate(horizon time.Duration) Aggregate {
-	d, err := sketch.NewDistinct(k.spec(int64(horizon)))
+func (k Distinct) Validate() error                        { return k.spec(0).Validate() }
+func (Distinct) Inputs() Inputs                           { return TakesItem }
+func (k Distinct) Reach() time.Duration                   { return k.Window }
+func (k Distinct) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
+
+func (k Distinct) placement(h time.Duration) placement {
+	proto, err := sketch.NewDistinct(k.spec(int64(h)))
 	if err != nil {
-		// Unreachable: Open validates every kind with its horizon first.
-		panic(err)
+		panic(err) // unreachable: Open validates every kind with its horizon first
 	}
-	return distinctAgg{d} // pointer-shaped: boxing it allocates nothing
+	return placeAs(func(a *distinctAgg) error { a.InitLike(proto); return nil })
 }
 
 // validateWith checks the spec with the pipeline's horizon, which counts
 // against the pane limit.
 func (k Distinct) CheckHorizon(horizon time.Duration) error { return k.spec(int64(horizon)).Validate() }
 
-type distinctAgg struct{ *sketch.Distinct }
+type distinctAgg struct{ sketch.Distinct }
 
-func (a distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
-func (a distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
+func (a *distinctAgg) Add(t int64, _ float64, h uint64) bool { return a.Distinct.Add(t, h) }
+func (a *distinctAgg) At(t int64, _ uint64) float64          { return float64(a.DistinctAt(t)) }
 
 // Frequency estimates how many of an entity's events carried the asking
 // event's item (a card seen at this merchant, say), over the entity's

@@ -80,35 +80,38 @@ func (k Decayed) Inputs() Inputs {
 // Reach implements Kind.
 func (k Decayed) Reach() time.Duration { return time.Duration(sat.Add(0, 64*int64(k.HalfLife))) }
 
-func (k Decayed) NewAggregate(horizon time.Duration) Aggregate {
-	return &decayedAgg{Decayed: built(window.NewDecayed(k.spec(int64(horizon)))), stat: k.Stat}
-}
+func (k Decayed) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
 
-// decayedAgg adapts window.Decayed with a method per call rather than
-// closures: a new record then costs two allocations for it, not six.
-type decayedAgg struct {
-	*window.Decayed
-	stat DecayStat
-}
-
-func (a *decayedAgg) Add(t int64, v float64, _ uint64) bool {
-	if a.stat == DecayedCount {
-		v = 1
-	}
-	return a.Decayed.Add(t, v)
-}
-
-func (a *decayedAgg) At(t int64, _ uint64) float64 {
-	switch a.stat {
+func (k Decayed) placement(h time.Duration) placement {
+	proto := built(window.NewDecayed(k.spec(int64(h))))
+	switch k.Stat {
 	case DecayedCount:
-		return a.CountAt(t)
+		return placeAs(func(a *decayedCount) error { a.InitLike(proto); return nil })
 	case DecayedSum:
-		return a.SumAt(t)
+		return placeAs(func(a *decayedSum) error { a.InitLike(proto); return nil })
 	case DecayedMean:
-		return a.MeanAt(t)
+		return placeAs(func(a *decayedMean) error { a.InitLike(proto); return nil })
 	}
-	return a.VarianceAt(t)
+	return placeAs(func(a *decayedVariance) error { a.InitLike(proto); return nil })
 }
+
+// One adapter type per statistic rather than a field saying which: a
+// field would cost a word of padding in every record.
+type (
+	decayedCount    struct{ window.Decayed }
+	decayedSum      struct{ window.Decayed }
+	decayedMean     struct{ window.Decayed }
+	decayedVariance struct{ window.Decayed }
+)
+
+func (a *decayedCount) Add(t int64, _ float64, _ uint64) bool    { return a.Decayed.Add(t, 1) }
+func (a *decayedCount) At(t int64, _ uint64) float64             { return a.CountAt(t) }
+func (a *decayedSum) Add(t int64, v float64, _ uint64) bool      { return a.Decayed.Add(t, v) }
+func (a *decayedSum) At(t int64, _ uint64) float64               { return a.SumAt(t) }
+func (a *decayedMean) Add(t int64, v float64, _ uint64) bool     { return a.Decayed.Add(t, v) }
+func (a *decayedMean) At(t int64, _ uint64) float64              { return a.MeanAt(t) }
+func (a *decayedVariance) Add(t int64, v float64, _ uint64) bool { return a.Decayed.Add(t, v) }
+func (a *decayedVariance) At(t int64, _ uint64) float64          { return a.VarianceAt(t) }
 
 // Velocity is the ratio of an entity's event rate in a Short window to its
 // rate in a Long window, with additive smoothing so that a new entity
@@ -144,14 +147,17 @@ func (k Velocity) Validate() error { return k.spec(0).Validate() }
 func (Velocity) Inputs() Inputs         { return 0 }
 func (k Velocity) Reach() time.Duration { return k.Long }
 
-func (k Velocity) NewAggregate(horizon time.Duration) Aggregate {
-	return velocityAgg{built(window.NewVelocity(k.spec(int64(horizon))))}
+func (k Velocity) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
+
+func (k Velocity) placement(h time.Duration) placement {
+	proto := built(window.NewVelocity(k.spec(int64(h))))
+	return placeAs(func(a *velocityAgg) error { a.InitLike(proto); return nil })
 }
 
-type velocityAgg struct{ *window.Velocity }
+type velocityAgg struct{ window.Velocity }
 
-func (a velocityAgg) Add(t int64, _ float64, _ uint64) bool { return a.Velocity.Add(t) }
-func (a velocityAgg) At(t int64, _ uint64) float64          { return a.RatioAt(t) }
+func (a *velocityAgg) Add(t int64, _ float64, _ uint64) bool { return a.Velocity.Add(t) }
+func (a *velocityAgg) At(t int64, _ uint64) float64          { return a.RatioAt(t) }
 
 // RecencyStat selects what a Recency feature reports. Values are frozen.
 type RecencyStat uint8
@@ -220,31 +226,38 @@ func (k Recency) Reach() time.Duration {
 	return 0
 }
 
-func (k Recency) NewAggregate(horizon time.Duration) Aggregate {
-	r := built(window.NewRecency(k.spec(int64(horizon))))
+func (k Recency) NewAggregate(h time.Duration) Aggregate { return newPlaced(k.placement(h)) }
+
+func (k Recency) placement(h time.Duration) placement {
+	spec, stat := k.spec(int64(h)), k.Stat
+	return placeAs(func(a *recencyAgg) error { a.stat = stat; return a.Init(spec) })
+}
+
+// recencyAgg adapts window.Recency to the stat its feature reports.
+type recencyAgg struct {
+	window.Recency
+	stat RecencyStat
+}
+
+func (a *recencyAgg) Add(t int64, _ float64, _ uint64) bool { return a.Recency.Add(t) }
+
+func (a *recencyAgg) At(t int64, _ uint64) float64 {
 	seconds := func(d int64, ok bool) float64 {
 		if !ok {
 			return math.NaN()
 		}
 		return float64(d) / float64(time.Second)
 	}
-	var at func(int64) float64
-	switch k.Stat {
+	switch a.stat {
 	case SinceLast:
-		at = func(t int64) float64 {
-			if t == math.MinInt64 {
-				return math.NaN() // nothing is strictly before; t-1 would wrap
-			}
-			last, ok := r.LastSeenAt(t - 1)
-			return seconds(t-last, ok)
+		if t == math.MinInt64 {
+			return math.NaN() // nothing is strictly before; t-1 would wrap
 		}
+		last, ok := a.LastSeenAt(t - 1)
+		return seconds(t-last, ok)
 	case Age:
-		at = func(t int64) float64 {
-			first, ok := r.FirstSeenAt(t)
-			return seconds(t-first, ok)
-		}
-	default:
-		at = func(t int64) float64 { return float64(r.SessionCountAt(t)) }
+		first, ok := a.FirstSeenAt(t)
+		return seconds(t-first, ok)
 	}
-	return adapt(r, func(t int64, _ float64) bool { return r.Add(t) }, at)
+	return float64(a.SessionCountAt(t))
 }

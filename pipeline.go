@@ -106,7 +106,8 @@ type entityState[E any] struct {
 	first   int         // index of the entity's first feature in a row
 	zero    []Aggregate // empty aggregates, to answer for unseen keys
 	horizon int64
-	ttl     int64 // records idle this long (by the watermark) expire; 0 never
+	ttl     int64         // records idle this long (by the watermark) expire; 0 never
+	lay     *recordLayout // how its records are laid out in memory (record.go)
 }
 
 // expired reports whether rec has been idle for the entity's ttl as of
@@ -121,13 +122,7 @@ func (es *entityState[E]) part(key string) *store.Table[*record] {
 	return es.parts[store.PartOf(key, len(es.parts))]
 }
 
-func (es *entityState[E]) fresh() []Aggregate {
-	aggs := make([]Aggregate, len(es.kinds))
-	for i, k := range es.kinds {
-		aggs[i] = k.NewAggregate(time.Duration(es.horizon))
-	}
-	return aggs
-}
+func (es *entityState[E]) fresh() []Aggregate { return es.lay.fresh() }
 
 // inputs are the values extracted from one event, validated before any
 // state is touched.
@@ -167,10 +162,11 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 			es.kinds = append(es.kinds, f.Kind)
 			p.names = append(p.names, ent.Name+"."+f.Name)
 		}
+		es.lay = newRecordLayout(es.kinds, time.Duration(horizon))
 		es.zero = es.fresh()
 		es.ttl = ttlFor(ent.Features, opts)
 		es.parts = store.NewParts(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
-			return decodeRecord(b, es.fresh)
+			return es.lay.decode(b)
 		}, opts.Workers, peekLast)
 		p.nfeat += len(ent.Features)
 		p.ents = append(p.ents, es)
@@ -535,10 +531,10 @@ func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp 
 			c.erasedSkips++
 			return nil, nil
 		}
-		sl = tb.Insert(key, &record{last: t, aggs: es.fresh()})
+		sl = tb.Insert(key, es.lay.newRecord(t))
 		c.live++
 	} else if es.expired(sl.Value, exp) {
-		sl.Value.aggs = es.fresh()
+		sl.Value.reset()
 	}
 	rec := sl.Value
 	for j, a := range rec.aggs {

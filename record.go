@@ -4,18 +4,155 @@ import (
 	"encoding/binary"
 	"errors"
 	"fmt"
+	"reflect"
+	"slices"
+	"strconv"
+	"time"
+	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/wire"
 )
 
 // record is the stored state of one entity key: every feature of its
 // entity, so an event costs one lookup per entity.
+//
+// Memory. A record made by a recordLayout is one heap object: this
+// header, the aggs array and every built-in aggregate by value (window
+// and sketch types built in place with their Init, their first panes,
+// raw events and items stored inside them). A sparse entity therefore
+// costs one allocation and the collector scans one object; only an
+// aggregate that outgrows its inline storage, or a user kind (built by
+// Kind.NewAggregate), holds objects of its own. A record built from a
+// bare []Aggregate (lay == nil) works the same, object by object.
 type record struct {
 	// last is the newest event time applied to this record.
 	last int64
 	// aggs holds one aggregate per feature of the entity, in definition
 	// order. Invariant: len(aggs) == len(entity.Features).
 	aggs []Aggregate
+	lay  *recordLayout // how the record was made; nil: aggregate by aggregate
+}
+
+// placedKind is implemented by built-in kinds whose aggregate can live by
+// value inside a record's one object. It is unexported: a user kind goes
+// through NewAggregate, as every kind did before.
+type placedKind interface {
+	Kind
+	placement(horizon time.Duration) placement
+}
+
+// placement says how to build one kind's aggregate in place.
+type placement struct {
+	typ  reflect.Type                     // the aggregate's value type; *typ implements Aggregate
+	init func(p unsafe.Pointer) Aggregate // makes *p an empty aggregate, whatever it held
+	self int                              // bytes of the value that its SizeBytes counts as its own
+}
+
+// placeAs is the placement of adapter type T, which embeds a window or
+// sketch value as its first field and is built by init.
+func placeAs[T any, PT interface {
+	*T
+	Aggregate
+}](init func(*T) error) placement {
+	typ := reflect.TypeFor[T]()
+	return placement{typ: typ, self: int(typ.Field(0).Type.Size()), init: func(p unsafe.Pointer) Aggregate {
+		x := (*T)(p)
+		if err := init(x); err != nil {
+			panic(err) // unreachable: Open validates every kind with its horizon first
+		}
+		return PT(x)
+	}}
+}
+
+// newPlaced builds a placed aggregate on its own, for NewAggregate.
+func newPlaced(pl placement) Aggregate { return pl.init(reflect.New(pl.typ).UnsafePointer()) }
+
+// recordLayout lays out the records of one entity: a struct type made at
+// Open, struct{ R record; A [n]Aggregate; F0 T0; F1 T1; ... }, with one
+// field per feature whose kind is placed.
+type recordLayout struct {
+	kinds   []Kind
+	horizon time.Duration
+	typ     reflect.Type
+	aggsOff uintptr
+	fields  []layoutField // per feature
+	// size is what one record object costs on the heap (its size class).
+	size int
+}
+
+type layoutField struct {
+	placed bool
+	off    uintptr
+	pl     placement
+}
+
+// newRecordLayout lays out records for kinds under horizon.
+func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
+	l := &recordLayout{kinds: kinds, horizon: horizon, fields: make([]layoutField, len(kinds))}
+	sf := []reflect.StructField{
+		{Name: "R", Type: reflect.TypeFor[record]()},
+		{Name: "A", Type: reflect.ArrayOf(len(kinds), reflect.TypeFor[Aggregate]())},
+	}
+	for i, k := range kinds {
+		if pk, ok := k.(placedKind); ok {
+			l.fields[i] = layoutField{placed: true, pl: pk.placement(horizon)}
+			sf = append(sf, reflect.StructField{Name: "F" + strconv.Itoa(i), Type: l.fields[i].pl.typ})
+		}
+	}
+	l.typ = reflect.StructOf(sf)
+	l.aggsOff = l.typ.Field(1).Offset
+	for i, j := 0, 2; i < len(kinds); i++ {
+		if l.fields[i].placed {
+			l.fields[i].off = l.typ.Field(j).Offset
+			j++
+		}
+	}
+	// Go rounds an allocation up to a size class; growing an empty slice
+	// to n bytes lands on the class of n.
+	l.size = cap(slices.Grow([]byte(nil), int(l.typ.Size())))
+	return l
+}
+
+// newRecord returns an empty record with newest time last: one
+// allocation, plus one per feature of a kind that is not placed.
+func (l *recordLayout) newRecord(last int64) *record {
+	base := reflect.New(l.typ).UnsafePointer()
+	r := (*record)(base)
+	r.last, r.lay = last, l
+	r.aggs = unsafe.Slice((*Aggregate)(unsafe.Add(base, l.aggsOff)), len(l.kinds))
+	l.empty(r)
+	return r
+}
+
+// empty makes every aggregate of r empty in place (placed ones reuse
+// their memory; others are made anew). last is kept.
+func (l *recordLayout) empty(r *record) {
+	base := unsafe.Pointer(r)
+	for i := range l.fields {
+		if f := &l.fields[i]; f.placed {
+			r.aggs[i] = f.pl.init(unsafe.Add(base, f.off))
+		} else {
+			r.aggs[i] = l.kinds[i].NewAggregate(l.horizon)
+		}
+	}
+}
+
+// reset empties an expired record in place, keeping its newest time: it
+// then reads as a new entity, without a new allocation for its placed
+// aggregates (their grown storage is released). r must come from a
+// layout, as every record of a pipeline does.
+func (r *record) reset() { r.lay.empty(r) }
+
+// fresh returns empty aggregates of a new record.
+func (l *recordLayout) fresh() []Aggregate { return l.newRecord(0).aggs }
+
+// decode decodes a stored record into a new one (see decodeRecord).
+func (l *recordLayout) decode(b []byte) (*record, error) {
+	r := l.newRecord(0)
+	if err := r.decode(b); err != nil {
+		return nil, err
+	}
+	return r, nil
 }
 
 const recordVersion1 = 1
@@ -52,11 +189,24 @@ func appendRecord(dst []byte, last int64, n int, feature func(i int, dst []byte)
 // LastTime returns the newest event time applied (store.Value).
 func (r *record) LastTime() int64 { return r.last }
 
-// SizeBytes estimates r's heap footprint.
+// SizeBytes estimates r's heap footprint: its object rounded up to Go's
+// size class, what its aggregates hold outside it, and each aggregate
+// that is an object of its own.
 func (r *record) SizeBytes() int {
-	n := 48 + 16*len(r.aggs)
-	for _, a := range r.aggs {
-		n += a.SizeBytes()
+	if r.lay == nil {
+		n := 48 + 16*len(r.aggs)
+		for _, a := range r.aggs {
+			n += a.SizeBytes()
+		}
+		return n
+	}
+	n := r.lay.size
+	for i, a := range r.aggs {
+		if f := &r.lay.fields[i]; f.placed {
+			n += a.SizeBytes() - f.pl.self
+		} else {
+			n += a.SizeBytes()
+		}
 	}
 	return n
 }
@@ -86,14 +236,24 @@ func peekLast(b []byte) (int64, error) {
 //	         versioned encoding
 //	then end of input
 func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
+	r := &record{aggs: fresh()}
+	if err := r.decode(b); err != nil {
+		return nil, err
+	}
+	return r, nil
+}
+
+// decode replaces r's state with the record b (layout on decodeRecord).
+// On error r is left part decoded: callers drop it.
+func (r *record) decode(b []byte) error {
 	d := wire.Decoder{B: b}
 	if v := d.Byte(); d.Err == nil && v != recordVersion1 {
-		return nil, fmt.Errorf("%w: unknown version %d", errRecord, v)
+		return fmt.Errorf("%w: unknown version %d", errRecord, v)
 	}
-	r := &record{last: d.Varint(), aggs: fresh()}
+	r.last = d.Varint()
 	n := d.Uvarint()
 	if d.Err == nil && n != uint64(len(r.aggs)) {
-		return nil, fmt.Errorf("%w: holds %d features, definition has %d", errRecord, n, len(r.aggs))
+		return fmt.Errorf("%w: holds %d features, definition has %d", errRecord, n, len(r.aggs))
 	}
 	for i := range r.aggs {
 		blob := d.Bytes(d.Len())
@@ -101,11 +261,11 @@ func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
 			break
 		}
 		if err := r.aggs[i].UnmarshalBinary(blob); err != nil {
-			return nil, fmt.Errorf("%w: feature %d: %w", errRecord, i, err)
+			return fmt.Errorf("%w: feature %d: %w", errRecord, i, err)
 		}
 	}
 	if err := d.Finish(); err != nil {
-		return nil, fmt.Errorf("%w: %w", errRecord, err)
+		return fmt.Errorf("%w: %w", errRecord, err)
 	}
-	return r, nil
+	return nil
 }

@@ -59,7 +59,7 @@ func TestDistinctAccuracy(t *testing.T) {
 			}
 			got := float64(d.DistinctAt(tm))
 			rel := (got - float64(n)) / float64(n)
-			if n <= d.spec.ExactLimit && got != float64(n) {
+			if n <= d.Spec().ExactLimit && got != float64(n) {
 				t.Fatalf("n=%d trial %d: exact range answered %v", n, trial, got)
 			}
 			se += rel * rel

@@ -7,13 +7,13 @@ import (
 	"github.com/tallyward/tallyward/internal/wire"
 )
 
-// header starts decoding b: it checks the version and kind bytes shared by
-// every encoding and returns a decoder positioned after them, whose Err is
-// set if they are wrong.
-func header(b []byte, kind byte) *wire.Decoder {
-	d := &wire.Decoder{B: b}
-	if len(b) < 2 {
-		d.Fail("header needs 2 bytes, have %d", len(b))
+// header starts decoding d's input: it checks the version and kind bytes
+// shared by every encoding, leaves d positioned after them with Err set
+// if they are wrong, and returns d. The caller owns d (on its stack, so a
+// decode allocates no decoder).
+func header(d *wire.Decoder, kind byte) *wire.Decoder {
+	if len(d.B) < 2 {
+		d.Fail("header needs 2 bytes, have %d", len(d.B))
 	}
 	d.Version(formatVersion1)
 	d.Kind(kind)

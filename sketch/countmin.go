@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"github.com/tallyward/tallyward/internal/check"
+	"github.com/tallyward/tallyward/internal/wire"
 	"math"
 	"math/bits"
 
@@ -183,7 +184,7 @@ func (c *CountMin) AppendBinary(dst []byte) ([]byte, error) {
 func (c *CountMin) UnmarshalBinary(b []byte) error { return named("count-min", c.unmarshal(b)) }
 
 func (c *CountMin) unmarshal(b []byte) error {
-	r := header(b, kindCountMin)
+	r := header(&wire.Decoder{B: b}, kindCountMin)
 	if r.Err != nil {
 		return r.Err
 	}

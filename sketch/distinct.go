@@ -6,6 +6,7 @@ import (
 	"math"
 	"slices"
 	"time"
+	"unsafe"
 
 	"github.com/tallyward/tallyward/internal/sat"
 )
@@ -111,41 +112,94 @@ func ceilDiv(a, b int64) int64 { return (a + b - 1) / b }
 // except near the exact-to-sketch switch, which the first add that makes
 // more than ExactLimit items live triggers (permanently).
 //
-// Cost: Add is O(ExactLimit) in exact mode (a sorted insert) and O(1)
+// Cost: Add is expected O(1) in exact mode (a hash probe and a walk of
+// the item's entries, one per retained pane it was seen in; a sort of
+// the entries every ExactLimit-or-so adds, O(log n) amortised) and O(1)
 // amortised in sketch mode; DistinctAt is O(live entries) in exact mode and
 // O(entries within Horizon) plus a cached O(64) estimate in sketch mode,
 // with an O(2^p) rebuild the first time a new window start is queried (once
 // per pane boundary). Not safe for concurrent use, including concurrent
 // queries.
 type Distinct struct {
-	spec   DistinctSpec // defaults applied
-	k      int64        // panes per window
-	has    bool
+	sh     *distinctShape // nil: not built from a valid spec
 	newest int64
+	has    bool
+	// cacheOK: the query cache below is valid.
+	cacheOK bool
+	nfp     int32 // exact mode: see exact
 
-	// Exact mode (regs == nil). Invariant: sorted by (fp, t), at most one
-	// entry per (fp, pane); nfp >= the number of distinct fp with an entry whose pane is
-	// retained.
+	// Exact mode (sk == nil). Entries are in no particular order; the
+	// entries of one fingerprint form a chain (exactEntry.link) that
+	// starts at its first entry. Invariants: at most one entry per
+	// (fp, pane) apart from one settled entry a normalisation rounded
+	// down to its pane's start; nfp == the number of chains >= the number
+	// of distinct fp with an entry whose pane is retained; index, when
+	// len(exact) > smallExact, maps every fp to its chain's first entry.
 	exact []exactEntry
-	nfp   int
+	index *fpIndex // allocated once past smallExact entries
+	// einl is exact's first storage, inside the value: most entities see
+	// an item or two. A value is therefore never copied once built.
+	einl [inlineExact]exactEntry
 
-	// Sketch mode.
+	// Sketch mode: allocated at the switch, so an exact summary (most
+	// entities) carries none of it.
+	sk *distinctSketch
+
+	// Query cache: the last answer, valid until the next mutation.
+	cacheT int64
+	cacheV uint64
+}
+
+// distinctShape is what a spec fixes, shared by every summary InitLike
+// builds from one prototype.
+type distinctShape struct {
+	spec DistinctSpec // defaults applied
+	k    int64        // panes per window
+}
+
+func newDistinctShape(spec DistinctSpec) *distinctShape {
+	spec = spec.withDefaults()
+	return &distinctShape{spec: spec, k: int64(spec.Window / spec.Resolution)}
+}
+
+// distinctSketch is the state of sketch mode.
+type distinctSketch struct {
 	regs     *slidingRegs
 	tail     []tailEntry // [tailHead:] sorted by (t, key), distinct; t > newest-Horizon
 	tailHead int
 	views    [3]regView
 	useClock uint64
 	scratch  []uint32
-
-	// Query cache: the last answer, valid until the next mutation.
-	cacheOK bool
-	cacheT  int64
-	cacheV  uint64
 }
 
+// exactEntry is one (fingerprint, time) of exact mode.
 type exactEntry struct {
 	fp uint32
-	t  int64
+	// link: bit 31 set on every entry of a chain but its first; the low
+	// 31 bits are 1 + the index of the chain's next entry, 0 at its end.
+	link uint32
+	t    int64
+}
+
+const (
+	linkLater   = 1 << 31
+	linkNext    = linkLater - 1
+	inlineExact = 2
+	// smallExact: up to this many entries a linear scan finds a chain
+	// faster than a hash index, which costs memory.
+	smallExact = 8
+)
+
+// fpIndex finds a fingerprint's chain: open addressing on fp, each slot
+// 1 + the index of the chain's first entry, 0 = empty.
+type fpIndex struct{ slots []uint32 }
+
+// slots returns the index's slots, nil if there is none.
+func (d *Distinct) slots() []uint32 {
+	if d.index == nil {
+		return nil
+	}
+	return d.index.slots
 }
 
 type tailEntry struct {
@@ -156,47 +210,76 @@ type tailEntry struct {
 // NewDistinct returns an empty windowed distinct count for spec, or an
 // error wrapping ErrInvalidSpec.
 func NewDistinct(spec DistinctSpec) (*Distinct, error) {
-	if err := spec.Validate(); err != nil {
+	d := new(Distinct)
+	if err := d.Init(spec); err != nil {
 		return nil, err
 	}
-	spec = spec.withDefaults()
-	return &Distinct{spec: spec, k: int64(spec.Window / spec.Resolution)}, nil
+	return d, nil
+}
+
+// Init makes d an empty count over spec in place, whatever d held, or
+// returns an error wrapping ErrInvalidSpec (d is then unusable: it
+// refuses adds and answers 0). A Distinct can so live by value inside a
+// larger object; its first entries are stored inside the value, so d
+// must not be copied afterwards. Init allocates the small immutable
+// parameters; InitLike shares those of a summary already built, with no
+// allocation.
+func (d *Distinct) Init(spec DistinctSpec) error {
+	*d = Distinct{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	d.InitLike(&Distinct{sh: newDistinctShape(spec)})
+	return nil
+}
+
+// InitLike makes d an empty count with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. d
+// must not be copied afterwards.
+func (d *Distinct) InitLike(proto *Distinct) {
+	*d = Distinct{sh: proto.sh}
+	d.exact = d.einl[:0]
 }
 
 // Spec returns the spec with defaults applied.
-func (d *Distinct) Spec() DistinctSpec { return d.spec }
+func (d *Distinct) Spec() DistinctSpec {
+	if d.sh == nil {
+		return DistinctSpec{}
+	}
+	return d.sh.spec
+}
 
 // Newest returns the largest time added so far, and false if nothing was.
 func (d *Distinct) Newest() (int64, bool) { return d.newest, d.has }
 
 // Exact reports whether the summary is still in exact mode.
-func (d *Distinct) Exact() bool { return d.regs == nil }
+func (d *Distinct) Exact() bool { return d.sk == nil }
 
 // RelativeError returns the relative standard error of DistinctAt: 0 while
 // exact, 1.04/sqrt(2^p) once in sketch mode (Flajolet et al., AofA 2007).
 // The pane trailing edge (see Distinct) is not included.
 func (d *Distinct) RelativeError() float64 {
-	if d.regs == nil {
+	if d.sk == nil {
 		return 0
 	}
-	return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision))
+	return 1.04 / math.Sqrt(float64(uint64(1)<<d.sh.spec.Precision))
 }
 
-func (d *Distinct) res() int64 { return int64(d.spec.Resolution) }
-func (d *Distinct) hor() int64 { return int64(d.spec.Horizon) }
+func (d *Distinct) res() int64 { return int64(d.sh.spec.Resolution) }
+func (d *Distinct) hor() int64 { return int64(d.sh.spec.Horizon) }
 
 func (d *Distinct) pane(t int64) int64 { return sat.FloorDiv(t, d.res()) }
 
 // floorPane is the oldest pane any query at t >= newest-Horizon reads.
 func (d *Distinct) floorPane() int64 {
-	return d.pane(d.newest-d.hor()) - d.k + 1
+	return d.pane(d.newest-d.hor()) - d.sh.k + 1
 }
 
 // Add records item h at time t. It returns false, changing nothing, if t is
 // outside ±2^62 or if t's pane is older than every window a query at or
 // after Newest()-Horizon can read (such an add could never be counted).
 func (d *Distinct) Add(t int64, h uint64) bool {
-	if t < minTime || t > maxTime {
+	if t < minTime || t > maxTime || d.sh == nil {
 		return false
 	}
 	if !d.has || t > d.newest {
@@ -206,11 +289,11 @@ func (d *Distinct) Add(t int64, h uint64) bool {
 		return false
 	}
 	d.cacheOK = false
-	if d.regs != nil {
-		d.addSketch(t, fpKey(uint32(h>>32), d.spec.Precision))
+	if d.sk != nil {
+		d.addSketch(t, fpKey(uint32(h>>32), d.sh.spec.Precision))
 		return true
 	}
-	d.addExact(exactEntry{fp: uint32(h >> 32), t: t})
+	d.addExact(uint32(h>>32), t)
 	return true
 }
 
@@ -221,33 +304,143 @@ func cmpExact(a, b exactEntry) int {
 	return cmp.Compare(a.t, b.t)
 }
 
-func (d *Distinct) addExact(e exactEntry) {
-	i, found := slices.BinarySearchFunc(d.exact, e, cmpExact)
-	if found {
-		return
-	}
+// addExact adds (fp, t) in expected O(1): one probe of the index (or a
+// scan of at most smallExact entries) and a walk of fp's chain, whose
+// length is bounded by the retained panes and is usually 1.
+func (d *Distinct) addExact(fp uint32, t int64) {
 	// Invariant: one entry per (fp, pane), the earliest. An entry is
 	// dominated by an earlier one of the same item in the same pane: any
-	// query that counts the later one counts the earlier one too.
-	p := d.pane(e.t)
-	if i > 0 && d.exact[i-1].fp == e.fp && d.pane(d.exact[i-1].t) == p {
-		return
-	}
-	if i < len(d.exact) && d.exact[i].fp == e.fp && d.pane(d.exact[i].t) == p {
-		d.exact[i] = e
-		return
-	}
-	newFP := (i == 0 || d.exact[i-1].fp != e.fp) && (i == len(d.exact) || d.exact[i].fp != e.fp)
-	d.exact = slices.Insert(d.exact, i, e)
-	if newFP {
+	// query that counts the later one counts the earlier one too. With a
+	// normalised settled entry beside an unsettled one in its pane, the
+	// earliest of them decides.
+	head := d.findExact(fp)
+	if head >= 0 {
+		p := d.pane(t)
+		best := -1
+		for i := head; i >= 0; i = d.exact[i].next() {
+			if e := d.exact[i]; d.pane(e.t) == p && (best < 0 || e.t < d.exact[best].t) {
+				best = i
+			}
+		}
+		if best >= 0 {
+			if t < d.exact[best].t {
+				d.exact[best].t = t
+			}
+			return
+		}
+		// Second in the chain: the chain's order does not matter.
+		i := len(d.exact)
+		d.exact = append(d.exact, exactEntry{fp: fp, t: t, link: linkLater | d.exact[head].link&linkNext})
+		d.exact[head].link = d.exact[head].link&linkLater | uint32(i+1)
+	} else {
+		d.exact = append(d.exact, exactEntry{fp: fp, t: t})
 		d.nfp++
+		if len(d.exact) > smallExact {
+			if len(d.slots()) < 2*int(d.nfp) {
+				d.buildIndex()
+			} else {
+				d.indexAdd(len(d.exact) - 1)
+			}
+		}
 	}
-	if d.nfp > d.spec.ExactLimit || len(d.exact) > 2*d.nfp+16 {
+	if len(d.exact) == smallExact+1 && len(d.slots()) == 0 {
+		d.buildIndex()
+	}
+	if int(d.nfp) > d.sh.spec.ExactLimit || len(d.exact) > 2*int(d.nfp)+16 {
 		d.normalizeExact()
-		if d.nfp > d.spec.ExactLimit {
+		if int(d.nfp) > d.sh.spec.ExactLimit {
 			d.promote()
 		}
 	}
+}
+
+// next is the index of the next entry of e's chain, or -1.
+func (e exactEntry) next() int { return int(e.link&linkNext) - 1 }
+
+// findExact returns the index of fp's first entry, or -1.
+func (d *Distinct) findExact(fp uint32) int {
+	ix := d.slots()
+	if len(d.exact) <= smallExact || len(ix) == 0 {
+		for i, e := range d.exact {
+			if e.fp == fp && e.link&linkLater == 0 {
+				return i
+			}
+		}
+		return -1
+	}
+	mask := uint32(len(ix) - 1)
+	for j := fp & mask; ; j = (j + 1) & mask {
+		x := ix[j]
+		if x == 0 {
+			return -1
+		}
+		if d.exact[x-1].fp == fp {
+			return int(x - 1)
+		}
+	}
+}
+
+// indexAdd enters the first entry of a new chain, at i, in the index.
+func (d *Distinct) indexAdd(i int) {
+	ix := d.index.slots
+	mask := uint32(len(ix) - 1)
+	j := d.exact[i].fp & mask
+	for ix[j] != 0 {
+		j = (j + 1) & mask
+	}
+	ix[j] = uint32(i + 1)
+}
+
+// buildIndex sizes the index to at least twice the chains (load <= 1/2)
+// and fills it; below smallExact entries it empties it.
+func (d *Distinct) buildIndex() {
+	if len(d.exact) <= smallExact {
+		if d.index != nil {
+			d.index.slots = d.index.slots[:0] // kept: a set that shrank often grows again
+		}
+		return
+	}
+	n := 16
+	for n < 2*int(d.nfp) {
+		n *= 2
+	}
+	if d.index == nil {
+		d.index = &fpIndex{}
+	}
+	if cap(d.index.slots) >= n {
+		d.index.slots = d.index.slots[:n]
+		clear(d.index.slots)
+	} else {
+		d.index.slots = make([]uint32, n)
+	}
+	for i, e := range d.exact {
+		if e.link&linkLater == 0 {
+			d.indexAdd(i)
+		}
+	}
+}
+
+// sortExact orders the entries by (fp, t), the order normalizeExact,
+// the encoding and promote read them in, and rebuilds the chains.
+func (d *Distinct) sortExact() {
+	slices.SortFunc(d.exact, cmpExact)
+	d.relink()
+}
+
+// relink rebuilds the chains and the index of entries sorted by (fp, t)
+// and recounts nfp.
+func (d *Distinct) relink() {
+	d.nfp = 0
+	for i := range d.exact {
+		d.exact[i].link = 0
+		if i > 0 && d.exact[i-1].fp == d.exact[i].fp {
+			d.exact[i].link = linkLater
+			d.exact[i-1].link |= uint32(i + 1)
+		} else {
+			d.nfp++
+		}
+	}
+	d.buildIndex()
 }
 
 // normalizeExact drops entries no allowed query can read, rounds settled
@@ -256,10 +449,10 @@ func (d *Distinct) addExact(e exactEntry) {
 // answer within the contract, so the encoding and the promotion point
 // depend only on what was added.
 func (d *Distinct) normalizeExact() {
+	slices.SortFunc(d.exact, cmpExact)
 	floorT := d.floorPane() * d.res()
 	settled := d.newest - d.hor()
 	out := d.exact[:0]
-	nfp := 0
 	for i := 0; i < len(d.exact); {
 		fp := d.exact[i].fp
 		j := i
@@ -274,34 +467,31 @@ func (d *Distinct) normalizeExact() {
 				best, haveBest = d.pane(e.t)*d.res(), true
 			}
 		}
-		start := len(out)
 		if haveBest {
-			out = append(out, exactEntry{fp, best})
+			out = append(out, exactEntry{fp: fp, t: best})
 		}
 		for ; i < j; i++ {
 			if e := d.exact[i]; e.t > settled && e.t >= floorT {
 				out = append(out, e)
 			}
 		}
-		if len(out) > start {
-			nfp++
-		}
 	}
 	clear(d.exact[len(out):])
 	d.exact = out
-	d.nfp = nfp
+	d.relink() // counts the chains: nfp items
 }
 
 // promote moves the exact entries into sliding registers.
 func (d *Distinct) promote() {
 	floor := d.floorPane()
-	d.regs = newSlidingRegs(d.spec.Precision, floor)
+	slices.SortFunc(d.exact, cmpExact)
+	d.sk = &distinctSketch{regs: newSlidingRegs(d.sh.spec.Precision, floor)}
 	for _, e := range d.exact {
 		if d.pane(e.t) >= floor {
-			d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+			d.addSketch(e.t, fpKey(e.fp, d.sh.spec.Precision))
 		}
 	}
-	d.exact, d.nfp = nil, 0
+	d.exact, d.nfp, d.index = d.einl[:0], 0, nil
 }
 
 func cmpTail(a, b tailEntry) int {
@@ -316,7 +506,7 @@ func (d *Distinct) addSketch(t int64, key uint32) {
 	if t > settled {
 		i, found := slices.BinarySearchFunc(d.liveTail(), tailEntry{t, key}, cmpTail)
 		if !found {
-			d.tail = slices.Insert(d.tail, d.tailHead+i, tailEntry{t, key})
+			d.sk.tail = slices.Insert(d.sk.tail, d.sk.tailHead+i, tailEntry{t, key})
 			d.applyViews(d.pane(t), key, true)
 		}
 	} else {
@@ -326,21 +516,21 @@ func (d *Distinct) addSketch(t int64, key uint32) {
 }
 
 // liveTail returns the unsettled entries.
-func (d *Distinct) liveTail() []tailEntry { return d.tail[d.tailHead:] }
+func (d *Distinct) liveTail() []tailEntry { return d.sk.tail[d.sk.tailHead:] }
 
 // settleTail folds the tail entries that newest has moved past. They are
 // dropped by advancing tailHead; the buffer is compacted in place once the
 // dropped prefix is the larger half, so the cost is amortised O(1).
 func (d *Distinct) settleTail() {
 	settled := d.newest - d.hor()
-	for d.tailHead < len(d.tail) && d.tail[d.tailHead].t <= settled {
-		d.fold(d.pane(d.tail[d.tailHead].t), d.tail[d.tailHead].key)
-		d.tailHead++
+	for d.sk.tailHead < len(d.sk.tail) && d.sk.tail[d.sk.tailHead].t <= settled {
+		d.fold(d.pane(d.sk.tail[d.sk.tailHead].t), d.sk.tail[d.sk.tailHead].key)
+		d.sk.tailHead++
 	}
-	if d.tailHead > 64 && 2*d.tailHead > len(d.tail) {
-		n := copy(d.tail, d.tail[d.tailHead:])
-		d.tail = d.tail[:n]
-		d.tailHead = 0
+	if d.sk.tailHead > 64 && 2*d.sk.tailHead > len(d.sk.tail) {
+		n := copy(d.sk.tail, d.sk.tail[d.sk.tailHead:])
+		d.sk.tail = d.sk.tail[:n]
+		d.sk.tailHead = 0
 	}
 }
 
@@ -350,7 +540,7 @@ func (d *Distinct) fold(pane int64, key uint32) {
 	if pane < floor {
 		return
 	}
-	r := d.regs
+	r := d.sk.regs
 	if pane-r.base > maxPaneOff {
 		r.rebase(floor)
 	}
@@ -365,8 +555,8 @@ func (d *Distinct) fold(pane int64, key uint32) {
 // tail view already holds changes nothing.
 func (d *Distinct) applyViews(pane int64, key uint32, tailOnly bool) {
 	j, rho := key>>6, uint8(key&63)
-	for i := range d.views {
-		v := &d.views[i]
+	for i := range d.sk.views {
+		v := &d.sk.views[i]
 		if v.valid && (v.withTail || !tailOnly) && pane >= v.start && rho > v.regs[j] {
 			v.hist[v.regs[j]]--
 			v.hist[rho]++
@@ -380,30 +570,30 @@ func (d *Distinct) applyViews(pane int64, key uint32, tailOnly bool) {
 // or without every tail entry, building it (O(2^p + tail)) if no cached
 // view matches.
 func (d *Distinct) view(start int64, withTail bool) *regView {
-	d.useClock++
+	d.sk.useClock++
 	slot := 0
-	for i := range d.views {
-		v := &d.views[i]
+	for i := range d.sk.views {
+		v := &d.sk.views[i]
 		if v.valid && v.start == start && v.withTail == withTail {
-			v.stamps = d.useClock
+			v.stamps = d.sk.useClock
 			return v
 		}
-		if !v.valid || v.stamps < d.views[slot].stamps {
+		if !v.valid || v.stamps < d.sk.views[slot].stamps {
 			slot = i
 		}
 	}
-	v := &d.views[slot]
-	m := 1 << d.spec.Precision
+	v := &d.sk.views[slot]
+	m := 1 << d.sh.spec.Precision
 	if len(v.regs) != m {
 		v.regs = make([]uint8, m)
 	}
 	v.hist = [64]uint32{}
 	for j := range v.regs {
-		x := d.regs.valueFrom(uint32(j), start)
+		x := d.sk.regs.valueFrom(uint32(j), start)
 		v.regs[j] = x
 		v.hist[x]++
 	}
-	v.start, v.withTail, v.valid, v.estOK, v.stamps = start, withTail, true, false, d.useClock
+	v.start, v.withTail, v.valid, v.estOK, v.stamps = start, withTail, true, false, d.sk.useClock
 	if withTail {
 		for _, e := range d.liveTail() {
 			if d.pane(e.t) >= start {
@@ -418,13 +608,13 @@ func (d *Distinct) view(start int64, withTail bool) *regView {
 // t (see Distinct for the window and the error). It never counts an item
 // added with a time newer than t.
 func (d *Distinct) DistinctAt(t int64) uint64 {
-	if !d.has || t < minTime || t > maxTime {
+	if !d.has || t < minTime || t > maxTime || d.sh == nil {
 		return 0
 	}
 	if d.cacheOK && d.cacheT == t {
 		return d.cacheV
 	}
-	if d.regs == nil && t < d.newest-d.hor() {
+	if d.sk == nil && t < d.newest-d.hor() {
 		// Outside the as-of contract (t before newest-Horizon) the answer would depend on whether
 		// the exact entries were compacted, which encoding does: answer
 		// from the compacted form, so a summary answers the same whether
@@ -435,18 +625,23 @@ func (d *Distinct) DistinctAt(t int64) uint64 {
 	// For the same reason a window reaching before the oldest retained
 	// pane starts there: what is older is not encoded. Within the
 	// contract this clamps nothing.
-	start := max(d.pane(t)-d.k+1, d.floorPane())
+	start := max(d.pane(t)-d.sh.k+1, d.floorPane())
 	startT := start * d.res()
 	var n uint64
-	if d.regs == nil {
-		var last uint32
-		counted := false
+	if d.sk == nil {
 		for _, e := range d.exact {
-			if e.t > t || e.t < startT || (counted && e.fp == last) {
+			if e.link&linkLater != 0 {
 				continue
 			}
-			n++
-			last, counted = e.fp, true
+			for ; ; e = d.exact[e.next()] {
+				if e.t <= t && e.t >= startT {
+					n++
+					break
+				}
+				if e.next() < 0 {
+					break
+				}
+			}
 		}
 	} else {
 		n = d.sketchAt(t, start, startT)
@@ -460,12 +655,12 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 		// Every tail entry is at or before t: the tail view holds them.
 		v := d.view(start, true)
 		if !v.estOK {
-			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+			v.est, v.estOK = estimateHist(&v.hist, d.sh.spec.Precision), true
 		}
 		return uint64(v.est + 0.5)
 	}
 	v := d.view(start, false)
-	keys := d.scratch[:0]
+	keys := d.sk.scratch[:0]
 	for _, e := range d.liveTail() {
 		if e.t > t {
 			break
@@ -474,10 +669,10 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 			keys = append(keys, e.key)
 		}
 	}
-	d.scratch = keys
+	d.sk.scratch = keys
 	if len(keys) == 0 {
 		if !v.estOK {
-			v.est, v.estOK = estimateHist(&v.hist, d.spec.Precision), true
+			v.est, v.estOK = estimateHist(&v.hist, d.sh.spec.Precision), true
 		}
 		return uint64(v.est + 0.5)
 	}
@@ -495,22 +690,28 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 		hist[v.regs[j]]--
 		hist[k&63]++
 	}
-	return uint64(estimateHist(&hist, d.spec.Precision) + 0.5)
+	return uint64(estimateHist(&hist, d.sh.spec.Precision) + 0.5)
 }
 
 // Reset empties the summary, keeping its spec.
 func (d *Distinct) Reset() {
-	*d = Distinct{spec: d.spec, k: d.k, exact: d.exact[:0]}
+	*d = Distinct{sh: d.sh, exact: d.exact[:0]}
 }
 
 // SizeBytes approximates the heap footprint in bytes.
 func (d *Distinct) SizeBytes() int {
-	n := 200 + 16*cap(d.exact) + 16*cap(d.tail) + 4*cap(d.scratch)
-	if d.regs != nil {
-		n += d.regs.sizeBytes()
+	n := int(unsafe.Sizeof(*d))
+	if d.index != nil {
+		n += int(unsafe.Sizeof(*d.index)) + 4*cap(d.index.slots)
 	}
-	for i := range d.views {
-		n += cap(d.views[i].regs)
+	if cap(d.exact) > 0 && unsafe.SliceData(d.exact) != &d.einl[0] {
+		n += int(unsafe.Sizeof(exactEntry{})) * cap(d.exact)
+	}
+	if s := d.sk; s != nil {
+		n += int(unsafe.Sizeof(*s)) + int(unsafe.Sizeof(tailEntry{}))*cap(s.tail) + 4*cap(s.scratch) + s.regs.sizeBytes()
+		for i := range s.views {
+			n += cap(s.views[i].regs)
+		}
 	}
 	return n
 }

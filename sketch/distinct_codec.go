@@ -4,6 +4,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math/bits"
+	"slices"
 	"time"
 
 	"github.com/tallyward/tallyward/internal/wire"
@@ -16,8 +17,8 @@ import (
 // mode, d switches too, even if a single summary fed both streams would
 // still be exact (see the package doc, Order).
 func (d *Distinct) Merge(o *Distinct) error {
-	if d.spec != o.spec {
-		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.spec, o.spec, ErrIncompatible)
+	if d.sh == nil || o.sh == nil || d.sh.spec != o.sh.spec {
+		return fmt.Errorf("distinct merge: spec %+v vs %+v: %w", d.Spec(), o.Spec(), ErrIncompatible)
 	}
 	if !o.has {
 		return nil
@@ -27,30 +28,30 @@ func (d *Distinct) Merge(o *Distinct) error {
 	}
 	d.cacheOK = false
 	floor := d.floorPane()
-	if o.regs == nil {
+	if o.sk == nil {
 		for _, e := range o.exact {
 			if d.pane(e.t) < floor {
 				continue
 			}
-			if d.regs != nil {
-				d.addSketch(e.t, fpKey(e.fp, d.spec.Precision))
+			if d.sk != nil {
+				d.addSketch(e.t, fpKey(e.fp, d.sh.spec.Precision))
 			} else {
-				d.addExact(e)
+				d.addExact(e.fp, e.t)
 			}
 		}
-		if d.regs != nil {
+		if d.sk != nil {
 			d.settleTail()
 		}
 		return nil
 	}
-	if d.regs == nil {
+	if d.sk == nil {
 		d.normalizeExact()
 		d.promote()
 	}
 	var arr [64]uint16
-	for j := range o.regs.words {
-		for _, e := range o.regs.load(uint32(j), arr[:0]) {
-			d.fold(o.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
+	for j := range o.sk.regs.words {
+		for _, e := range o.sk.regs.load(uint32(j), arr[:0]) {
+			d.fold(o.sk.regs.base+int64(e&maxPaneOff), uint32(j)<<6|uint32(e>>paneOffBits))
 		}
 	}
 	for _, e := range o.liveTail() {
@@ -68,7 +69,10 @@ const (
 // AppendBinary appends the encoding of d to dst (see UnmarshalBinary for
 // the layout). It may compact d's exact entries, which changes no answer.
 func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
-	s := d.spec
+	if d.sh == nil {
+		return dst, fmt.Errorf("distinct: %w: not built from a valid spec", ErrInvalidSpec)
+	}
+	s := d.sh.spec
 	dst = append(dst, formatVersion1, kindDistinct)
 	dst = binary.AppendUvarint(dst, uint64(s.Window))
 	dst = binary.AppendUvarint(dst, uint64(s.Resolution))
@@ -79,7 +83,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		return append(dst, 0), nil
 	}
 	flags := byte(flagHasNewest)
-	if d.regs != nil {
+	if d.sk != nil {
 		flags |= flagSketch
 	}
 	dst = append(dst, flags)
@@ -87,7 +91,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 	newestPane := d.pane(d.newest)
 	settled := d.newest - int64(s.Horizon)
 	floor := d.floorPane()
-	if d.regs == nil {
+	if d.sk == nil {
 		d.normalizeExact()
 		nSettled := 0
 		for _, e := range d.exact {
@@ -99,20 +103,22 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		if nSettled > 0 {
 			k := riceParam(nSettled)
 			ageBits := uint(bits.Len64(uint64(newestPane - floor)))
-			w := bitWriter{}
-			var prev uint32
-			for _, e := range d.exact {
-				if e.t > settled {
-					continue
-				}
-				w.rice(uint64(e.fp-prev), k)
-				w.write(uint64(newestPane-d.pane(e.t)), ageBits)
-				prev = e.fp
-			}
-			body := w.flush()
 			dst = append(dst, byte(k))
-			dst = binary.AppendUvarint(dst, uint64(len(body)))
-			dst = append(dst, body...)
+			// The bit stream goes straight into dst behind its length,
+			// with no buffer of its own.
+			dst, _ = wire.AppendFramed(dst, func(dst []byte) ([]byte, error) {
+				w := bitWriter{buf: dst}
+				var prev uint32
+				for _, e := range d.exact {
+					if e.t > settled {
+						continue
+					}
+					w.rice(uint64(e.fp-prev), k)
+					w.write(uint64(newestPane-d.pane(e.t)), ageBits)
+					prev = e.fp
+				}
+				return w.flush(), nil
+			})
 		}
 		dst = binary.AppendUvarint(dst, uint64(len(d.exact)-nSettled))
 		for _, e := range d.exact {
@@ -124,7 +130,7 @@ func (d *Distinct) AppendBinary(dst []byte) ([]byte, error) {
 		return dst, nil
 	}
 	var arr [64]uint16
-	r := d.regs
+	r := d.sk.regs
 	for j := range r.words {
 		list := r.load(uint32(j), arr[:0])
 		n := 0
@@ -202,7 +208,7 @@ func riceParam(n int) uint {
 func (d *Distinct) UnmarshalBinary(b []byte) error { return named("distinct", d.unmarshal(b)) }
 
 func (d *Distinct) unmarshal(b []byte) error {
-	r := header(b, kindDistinct)
+	r := header(&wire.Decoder{B: b}, kindDistinct)
 	if r.Err != nil {
 		return r.Err
 	}
@@ -222,7 +228,11 @@ func (d *Distinct) unmarshal(b []byte) error {
 	if err := s.Validate(); err != nil {
 		return corruptf("%v", err)
 	}
-	nd := &Distinct{spec: s, k: int64(s.Window / s.Resolution)}
+	sh := d.sh
+	if sh == nil || sh.spec != s {
+		sh = newDistinctShape(s) // a decoded spec other than the receiver's: its own shape
+	}
+	nd := &Distinct{sh: sh}
 	if flags&^(flagHasNewest|flagSketch) != 0 || flags == flagSketch {
 		return corruptf("flags %#x", flags)
 	}
@@ -231,6 +241,7 @@ func (d *Distinct) unmarshal(b []byte) error {
 			return err
 		}
 		*d = *nd
+		d.exact = d.einl[:0]
 		return nil
 	}
 	nd.has = true
@@ -241,19 +252,31 @@ func (d *Distinct) unmarshal(b []byte) error {
 	if r.Err != nil {
 		return r.Err
 	}
-	var err error
-	if flags&flagSketch == 0 {
-		err = nd.decodeExact(r)
-	} else {
-		err = nd.decodeSketch(r)
-	}
+	// Exact entries are decoded onto d's inline storage (a few entries
+	// need no allocation), which is put back if the input is refused.
+	saved := d.einl
+	nd.exact = d.einl[:0]
+	err := func() error {
+		if flags&flagSketch == 0 {
+			if err := nd.decodeExact(r); err != nil {
+				return err
+			}
+		} else if err := nd.decodeSketch(r); err != nil {
+			return err
+		}
+		return r.Finish()
+	}()
 	if err != nil {
+		d.einl = saved
 		return err
 	}
-	if err := r.Finish(); err != nil {
-		return err
-	}
+	nd.einl = d.einl
 	*d = *nd
+	if d.sk != nil {
+		d.exact = d.einl[:0]
+	} else if len(d.exact) <= inlineExact {
+		d.exact = append(d.einl[:0], d.exact...)
+	}
 	return nil
 }
 
@@ -261,7 +284,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 	P := d.pane(d.newest)
 	F := d.floorPane()
 	S := d.newest - d.hor()
-	limit := d.spec.ExactLimit
+	limit := d.sh.spec.ExactLimit
 	n := r.Count(0, uint64(limit))
 	if n > 0 {
 		k := uint(r.Byte())
@@ -275,7 +298,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 		ageBits := uint(bits.Len64(uint64(P - F)))
 		br := bitReader{b: body}
 		var fp uint64
-		d.exact = make([]exactEntry, 0, n)
+		d.exact = slices.Grow(d.exact[:0], n)
 		for i := range n {
 			delta := br.rice(k, (1<<32)>>k)
 			age := int64(br.read(ageBits))
@@ -287,7 +310,7 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 			if t > S {
 				return corruptf("settled entry %d at %d after settled time %d", i, t, S)
 			}
-			d.exact = append(d.exact, exactEntry{uint32(fp), t})
+			d.exact = append(d.exact, exactEntry{fp: uint32(fp), t: t})
 		}
 		if !br.padOK() {
 			return corruptf("settled bit stream length or padding")
@@ -317,10 +340,10 @@ func (d *Distinct) decodeExact(r *wire.Decoder) error {
 			return corruptf("duplicate entry")
 		}
 	}
-	d.nfp = countFP(d.exact)
-	if d.nfp > limit {
-		return corruptf("%d items exceed ExactLimit %d", d.nfp, limit)
+	if countFP(d.exact) > limit {
+		return corruptf("%d items exceed ExactLimit %d", countFP(d.exact), limit)
 	}
+	d.relink()
 	return nil
 }
 
@@ -335,7 +358,7 @@ func countFP(es []exactEntry) int {
 }
 
 func (d *Distinct) decodeSketch(r *wire.Decoder) error {
-	p := d.spec.Precision
+	p := d.sh.spec.Precision
 	P := d.pane(d.newest)
 	F := d.floorPane()
 	maxRho := 33 - p
@@ -343,7 +366,7 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 	if len(r.B) < m {
 		return corruptf("%d registers need at least %d bytes, %d remain", m, m, len(r.B))
 	}
-	d.regs = newSlidingRegs(p, F)
+	d.sk = &distinctSketch{regs: newSlidingRegs(p, F)}
 	var list [64]uint16
 	for j := range m {
 		n := int(r.Byte())
@@ -368,7 +391,7 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 			return r.Err
 		}
 		if n > 0 {
-			d.regs.store(uint32(j), l)
+			d.sk.regs.store(uint32(j), l)
 		}
 	}
 	nt := r.Count(2, uint64(len(r.B)))
@@ -383,10 +406,10 @@ func (d *Distinct) decodeSketch(r *wire.Decoder) error {
 			return corruptf("unsettled entry %d (key %d, age %d)", i, key, age)
 		}
 		e := tailEntry{t: d.newest - int64(age), key: uint32(key)}
-		if i > 0 && cmpTail(d.tail[i-1], e) >= 0 {
+		if i > 0 && cmpTail(d.sk.tail[i-1], e) >= 0 {
 			return corruptf("unsettled entry %d out of order", i)
 		}
-		d.tail = append(d.tail, e)
+		d.sk.tail = append(d.sk.tail, e)
 	}
 	return r.Err
 }

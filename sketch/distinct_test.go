@@ -137,7 +137,9 @@ func TestDistinctSketchModeTracksReference(t *testing.T) {
 	}
 }
 
-func (d *Distinct) relErrFor() float64 { return 1.04 / math.Sqrt(float64(uint64(1)<<d.spec.Precision)) }
+func (d *Distinct) relErrFor() float64 {
+	return 1.04 / math.Sqrt(float64(uint64(1)<<d.Spec().Precision))
+}
 
 // TestDistinctOrderIndependent: the same events in two arrival orders that
 // both respect the Horizon give identical answers at every allowed query

@@ -74,9 +74,15 @@
 // # Costs
 //
 // Distinct: Add about 45-190 ns amortised and 0 allocations; the per-event
-// Add+DistinctAt about 75-275 ns (BenchmarkDistinct; 2 shared cores). Exact
-// mode holds 16 bytes per live (item, pane) entry; sketch mode 8*2^p bytes
-// of register frontiers plus 2^p bytes per cached view (at most three),
+// Add+DistinctAt about 75-275 ns (BenchmarkDistinct; 2 shared cores). An
+// exact-mode Add is expected O(1) (a hash probe and a walk of the item's
+// entries). Exact mode holds 16 bytes per live (item, pane) entry, the
+// first two inside the value, and a summary is 112 bytes with those
+// two; Init and InitLike build one in place (InitLike shares a
+// prototype's parameters and allocates nothing), so it can live by value
+// inside a larger object and must not be copied once built. Sketch mode
+// holds 8*2^p bytes of register frontiers plus 2^p bytes per cached view
+// (at most three),
 // about 33 KiB at the default p=12 and 0.6 MiB at 10M items with p=12
 // (frontiers spill beyond four entries). A window start not seen before
 // costs one O(2^p) view rebuild (once per pane boundary). CountMin:

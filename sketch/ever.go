@@ -389,7 +389,7 @@ func (d *DistinctEver) UnmarshalBinary(b []byte) error {
 }
 
 func (d *DistinctEver) unmarshal(b []byte) error {
-	r := header(b, kindDistinctEver)
+	r := header(&wire.Decoder{B: b}, kindDistinctEver)
 	var s DistinctEverSpec
 	s.Precision = r.Byte()
 	s.Horizon = time.Duration(min(r.Uvarint(), 1<<62))

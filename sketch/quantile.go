@@ -313,7 +313,7 @@ func (s *Quantile) AppendBinary(dst []byte) ([]byte, error) {
 func (s *Quantile) UnmarshalBinary(b []byte) error { return named("quantile", s.unmarshal(b)) }
 
 func (s *Quantile) unmarshal(b []byte) error {
-	r := header(b, kindQuantile)
+	r := header(&wire.Decoder{B: b}, kindQuantile)
 	if r.Err != nil {
 		return r.Err
 	}

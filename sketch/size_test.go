@@ -40,3 +40,69 @@ func TestSmallEncodings(t *testing.T) {
 		}
 	}
 }
+
+// InitLike builds a Distinct in place with no allocation, and its first
+// two items fit the storage inside the value (a count, not a timing).
+func TestDistinctInitInPlaceAllocs(t *testing.T) {
+	var d Distinct
+	proto := mustDistinct(t, DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 1})
+	got := testing.AllocsPerRun(100, func() {
+		d.InitLike(proto)
+		d.Add(100*sec, HashString("a"))
+		d.Add(101*sec, HashString("b"))
+		if d.DistinctAt(101*sec) != 2 {
+			t.Fatal("wrong count")
+		}
+	})
+	if got != 0 {
+		t.Fatalf("%v allocations per Init and two adds, want 0", got)
+	}
+}
+
+// The zero value is safe: it refuses adds, answers 0 and neither encodes
+// nor merges.
+func TestDistinctZeroValue(t *testing.T) {
+	var z Distinct
+	z.Reset()
+	if z.Add(1, 1) || z.DistinctAt(1) != 0 || z.Spec() != (DistinctSpec{}) {
+		t.Fatal("zero value misbehaves")
+	}
+	if _, err := z.AppendBinary(nil); err == nil {
+		t.Fatal("zero value encodes")
+	}
+	if err := z.Merge(&Distinct{}); err == nil {
+		t.Fatal("zero values merge")
+	}
+}
+
+// Decoding a small exact summary into one built in place allocates
+// nothing (a count, not a timing): records reloaded from the store cost
+// no more than new ones. On refused input the receiver is unchanged.
+func TestDistinctDecodeAllocs(t *testing.T) {
+	proto := mustDistinct(t, DistinctSpec{Window: 3600 * sec, Resolution: 60 * sec, Horizon: 10 * sec})
+	var src Distinct
+	src.InitLike(proto)
+	src.Add(100*sec, HashString("a"))
+	src.Add(200*sec, HashString("b"))
+	b, err := src.AppendBinary(nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var d Distinct
+	d.InitLike(proto)
+	got := testing.AllocsPerRun(100, func() {
+		if err := d.UnmarshalBinary(b); err != nil {
+			t.Fatal(err)
+		}
+	})
+	if got != 0 || d.DistinctAt(200*sec) != 2 {
+		t.Fatalf("%v allocations per decode (want 0), %d items", got, d.DistinctAt(200*sec))
+	}
+	before, _ := d.AppendBinary(nil)
+	if d.UnmarshalBinary(b[:len(b)-1]) == nil {
+		t.Fatal("truncated input accepted")
+	}
+	if after, _ := d.AppendBinary(nil); string(after) != string(before) || d.DistinctAt(200*sec) != 2 {
+		t.Fatal("a refused decode changed the receiver")
+	}
+}

@@ -5,6 +5,7 @@ import (
 	"encoding/binary"
 	"fmt"
 	"github.com/tallyward/tallyward/internal/check"
+	"github.com/tallyward/tallyward/internal/wire"
 	"slices"
 
 	"github.com/tallyward/tallyward/internal/sat"
@@ -292,7 +293,7 @@ func (s *TopK) AppendBinary(dst []byte) ([]byte, error) {
 func (s *TopK) UnmarshalBinary(b []byte) error { return named("top-k", s.unmarshal(b)) }
 
 func (s *TopK) unmarshal(b []byte) error {
-	r := header(b, kindTopK)
+	r := header(&wire.Decoder{B: b}, kindTopK)
 	if r.Err != nil {
 		return r.Err
 	}

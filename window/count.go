@@ -43,11 +43,27 @@ type SlidingCount struct{ ring }
 // spec.Validate.
 func NewSlidingCount(spec SlidingSpec) (*SlidingCount, error) {
 	c := &SlidingCount{}
-	if err := c.init(spec, opCount, kindSlidingCount); err != nil {
+	if err := c.Init(spec); err != nil {
 		return nil, err
 	}
 	return c, nil
 }
+
+// Init makes c an empty count over spec in place, whatever c held, or
+// returns the errors of spec.Validate (c is then unusable, like the zero
+// value). A count can so live by value inside a larger object (one
+// allocation for many aggregates): its first panes and raw events are
+// stored inside the value, so c must not be copied afterwards. Init
+// allocates the count's small immutable parameters; InitLike shares
+// those of a count already built, with no allocation. The sliding sum,
+// min, max and mean have the same Init and InitLike.
+func (c *SlidingCount) Init(spec SlidingSpec) error { return c.init(spec, opCount, kindSlidingCount) }
+
+// InitLike makes c an empty count with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. c
+// must not be copied afterwards. The sliding sum, min, max and mean have
+// the same InitLike.
+func (c *SlidingCount) InitLike(proto *SlidingCount) { c.initLike(proto.sh) }
 
 // Add records one event at time t. It returns false, changing nothing, when
 // pane(t) is older than the floor (see the type doc); the caller counts the
@@ -57,6 +73,6 @@ func (c *SlidingCount) Add(t int64) bool { return c.add(t, 0) }
 // CountAt returns the number of events in the window as of t; see the type
 // doc for the exact set counted.
 func (c *SlidingCount) CountAt(t int64) uint64 {
-	n, _ := c.query(t, c.n)
+	n, _ := c.queryAll(t)
 	return n
 }

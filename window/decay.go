@@ -107,43 +107,73 @@ func (s DecaySpec) Validate() error {
 // safe for concurrent use.
 //
 // Invariants: raw is sorted by time with cutoff < t <= maxT;
-// land == floor(cutoff / (RebaseEvery·h)), landT and nextT are the
-// landmark and the next one in ns; W >= 0 and W == 0 implies
+// land == floor(cutoff / (RebaseEvery·h)), landT is the landmark in ns; W >= 0 and W == 0 implies
 // mean == 0 and M2 == 0; !seen implies an empty state.
 type Decayed struct {
-	spec  DecaySpec
-	valid bool
-	step  int64 // RebaseEvery · HalfLife
+	sh *decayShape // nil: not built from a valid spec
 
 	seen        bool
 	maxT        int64
 	land        int64 // landmark index: L = land · step
 	landT       int64 // L, saturated: startOf(land, step)
-	nextT       int64 // the next landmark: startOf(land+1, step)
 	w, mean, m2 float64
 	raw         seq[event]
+	rinl        [inlineEvents]event // raw's first storage; never copied once built
+}
+
+// decayShape is what a spec fixes, shared by the aggregates InitLike
+// builds from one prototype.
+type decayShape struct {
+	spec DecaySpec // defaults applied
+	step int64     // RebaseEvery · HalfLife
 }
 
 // NewDecayed returns empty decayed statistics over spec, or the errors of
 // spec.Validate.
 func NewDecayed(spec DecaySpec) (*Decayed, error) {
-	if err := spec.Validate(); err != nil {
+	d := new(Decayed)
+	if err := d.Init(spec); err != nil {
 		return nil, err
 	}
-	spec.RebaseEvery = spec.rebase()
-	d := &Decayed{spec: spec, valid: true}
-	d.step = spec.rebase() * int64(spec.HalfLife)
-	d.raw.buf = make([]event, 0, 8)
 	return d, nil
 }
 
+// Init makes d empty statistics over spec in place, whatever d held, or
+// returns the errors of spec.Validate (d is then unusable, like the zero
+// value). A Decayed can so live by value inside a larger object; d must
+// not be copied afterwards (its first storage is inside it). Init
+// allocates its small immutable parameters; InitLike shares those of
+// statistics already built, with no allocation.
+func (d *Decayed) Init(spec DecaySpec) error {
+	*d = Decayed{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	spec.RebaseEvery = spec.rebase()
+	d.InitLike(&Decayed{sh: &decayShape{spec: spec, step: spec.rebase() * int64(spec.HalfLife)}})
+	return nil
+}
+
+// InitLike makes d empty statistics with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. d
+// must not be copied afterwards.
+func (d *Decayed) InitLike(proto *Decayed) {
+	*d = Decayed{sh: proto.sh}
+	d.raw.buf = d.rinl[:0]
+}
+
 // Spec returns the spec the aggregate was built with, defaults applied.
-func (d *Decayed) Spec() DecaySpec { return d.spec }
+func (d *Decayed) Spec() DecaySpec {
+	if d.sh == nil {
+		return DecaySpec{}
+	}
+	return d.sh.spec
+}
 
 // Reset empties the aggregate and keeps its spec and storage.
 func (d *Decayed) Reset() {
 	d.seen, d.maxT, d.w, d.mean, d.m2 = false, 0, 0, 0, 0
-	d.setLand(0)
+	d.land, d.landT = 0, 0 // the landmark of pane 0, without the shape (nil for the zero value)
 	d.raw.clear()
 }
 
@@ -152,21 +182,21 @@ func (d *Decayed) Newest() (t int64, ok bool) { return d.maxT, d.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (d *Decayed) SizeBytes() int {
-	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+	return int(unsafe.Sizeof(*d)) + d.raw.sizeBytes(int(unsafe.Sizeof(event{})), d.rinl[:])
 }
 
-func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, int64(d.spec.Horizon)) }
+func (d *Decayed) cutoff() int64 { return sat.Sub(d.maxT, int64(d.sh.spec.Horizon)) }
 
 // Add records value x at time t. It returns false, changing nothing, when x
 // is NaN or |x| > MaxDecayedValue (or the spec is invalid).
 func (d *Decayed) Add(t int64, x float64) bool {
-	if !d.valid || !(math.Abs(x) <= MaxDecayedValue) {
+	if d.sh == nil || !(math.Abs(x) <= MaxDecayedValue) {
 		return false
 	}
 	switch {
 	case !d.seen:
 		d.seen, d.maxT = true, t
-		d.setLand(sat.FloorDiv(d.cutoff(), d.step))
+		d.setLand(sat.FloorDiv(d.cutoff(), d.sh.step))
 	case t > d.maxT:
 		d.maxT = t
 		d.advance()
@@ -179,16 +209,19 @@ func (d *Decayed) Add(t int64, x float64) bool {
 	return true
 }
 
+// nextLandT is the next landmark in ns: startOf(land+1, step).
+func (d *Decayed) nextLandT() int64 { return startOf(sat.Add(d.land, 1), d.sh.step) }
+
 func (d *Decayed) setLand(land int64) {
-	d.land, d.landT, d.nextT = land, startOf(land, d.step), startOf(sat.Add(land, 1), d.step)
+	d.land, d.landT = land, startOf(land, d.sh.step)
 }
 
 // advance moves the landmark to the new cutoff and folds raw events that
 // fell to or behind it.
 func (d *Decayed) advance() {
 	c := d.cutoff()
-	if c >= d.nextT {
-		nl := sat.FloorDiv(c, d.step)
+	if c >= d.nextLandT() {
+		nl := sat.FloorDiv(c, d.sh.step)
 		d.w, d.mean, d.m2 = d.rescaled(nl - d.land)
 		d.setLand(nl)
 	}
@@ -205,7 +238,7 @@ func (d *Decayed) advance() {
 func (d *Decayed) rescaled(j int64) (w, mean, m2 float64) {
 	e := -2000 // below the float64 range: 0
 	if j < 2000 {
-		e = -int(j * d.spec.rebase())
+		e = -int(j * d.sh.spec.rebase())
 	}
 	w, m2 = math.Ldexp(d.w, e), math.Ldexp(d.m2, e)
 	if w == 0 {
@@ -217,7 +250,7 @@ func (d *Decayed) rescaled(j int64) (w, mean, m2 float64) {
 // fold applies West's weighted update for (t, x) with weight
 // 2^((t − L)/h), L = landT. A weight that rounds to zero is skipped.
 func (d *Decayed) fold(w, mean, m2 float64, landT, t int64, x float64) (float64, float64, float64) {
-	g := math.Exp2(float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
+	g := math.Exp2(float64(sat.Sub(t, landT)) / float64(d.sh.spec.HalfLife))
 	if g == 0 {
 		return w, mean, m2
 	}
@@ -241,13 +274,13 @@ func westUpdate(w, mean, m2, g, x float64) (float64, float64, float64) {
 // at returns W, mean, M2 as of t >= cutoff relative to the landmark of t,
 // and the factor 2^(−(t − L)/h) that turns weights into decayed ones.
 func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
-	if !d.valid || !d.seen || t < d.cutoff() {
+	if d.sh == nil || !d.seen || t < d.cutoff() {
 		return 0, 0, 0, 0, false
 	}
 	land, landT := d.land, d.landT
-	if t >= d.nextT {
-		land = sat.FloorDiv(t, d.step)
-		landT = startOf(land, d.step)
+	if t >= d.nextLandT() {
+		land = sat.FloorDiv(t, d.sh.step)
+		landT = startOf(land, d.sh.step)
 	}
 	w, mean, m2 = d.rescaled(land - d.land)
 	for _, e := range d.raw.live() {
@@ -256,13 +289,13 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 		}
 		w, mean, m2 = d.fold(w, mean, m2, landT, e.t, e.v)
 	}
-	f = math.Exp2(-float64(sat.Sub(t, landT)) / float64(d.spec.HalfLife))
+	f = math.Exp2(-float64(sat.Sub(t, landT)) / float64(d.sh.spec.HalfLife))
 	return w, mean, m2, f, true
 }
 
 // stats returns all four statistics as of t (see the type doc).
 func (d *Decayed) stats(t int64) (count, sum, mean, variance float64) {
-	if d.valid && !d.seen {
+	if d.sh != nil && !d.seen {
 		return 0, 0, math.NaN(), math.NaN()
 	}
 	w, mean, m2, f, ok := d.at(t)
@@ -292,7 +325,7 @@ func (d *Decayed) VarianceAt(t int64) float64 { _, _, _, v := d.stats(t); return
 // AppendBinary appends the encoding of the state (not the spec) to dst; the
 // layout is given on UnmarshalBinary.
 func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
-	dst, done, err := appendHeader(dst, d.valid, d.seen, kindDecayed, 0, d.maxT)
+	dst, done, err := appendHeader(dst, d.sh != nil, d.seen, kindDecayed, 0, d.maxT)
 	if done {
 		return dst, err
 	}
@@ -324,7 +357,7 @@ func (d *Decayed) AppendBinary(dst []byte) ([]byte, error) {
 //	  float    value, |value| <= MaxDecayedValue
 //	then end of input (else ErrTrailingBytes).
 func (d *Decayed) UnmarshalBinary(b []byte) error {
-	return decodeTwoPass(d.valid, "decayed", b, d.decode)
+	return decodeTwoPass(d.sh != nil, "decayed", b, d.decode)
 }
 
 func (d *Decayed) decode(b []byte, store bool) error {
@@ -338,13 +371,13 @@ func (d *Decayed) decode(b []byte, store bool) error {
 		!(m2 >= 0 && m2 <= maxDecodedM2) || (w == 0 && (mean != 0 || m2 != 0))) {
 		r.Fail("weights out of range")
 	}
-	cutoff := sat.Sub(maxT, int64(d.spec.Horizon))
+	cutoff := sat.Sub(maxT, int64(d.sh.spec.Horizon))
 	readEvents(&r, &d.raw, maxT, cutoff, MaxDecayedValue, store)
 	if err := r.Finish(); err != nil || !store {
 		return err
 	}
 	d.seen, d.maxT = true, maxT
-	d.setLand(sat.FloorDiv(cutoff, d.step))
+	d.setLand(sat.FloorDiv(cutoff, d.sh.step))
 	d.w, d.mean, d.m2 = w, mean, m2
 	return nil
 }

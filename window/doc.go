@@ -53,6 +53,17 @@
 // plus a fixed header; SizeBytes reports it. A 1 h window at 1 min
 // resolution holding 10 events encodes in about 30 bytes.
 //
+// # Building in place
+//
+// Every aggregate can live by value inside a larger object, so that a
+// caller holding many aggregates per entity (the pipeline) makes one
+// allocation per entity rather than one per aggregate: Init builds one
+// from a spec in place (allocating only its small immutable parameters),
+// InitLike builds one like a prototype made by its New function, sharing
+// the prototype's parameters, with no validation and no allocation. The
+// first pane and raw event are stored inside the value, so an aggregate
+// must not be copied once built.
+//
 // # Not for
 //
 // Distinct counts, quantiles or heavy hitters (see the sketch package);

@@ -35,18 +35,36 @@ var (
 // under errors.Is. It is the same type as sketch.SpecError.
 type SpecError = check.SpecError
 
-// specErrs collects every problem of one spec, joined by errors.Join.
-type specErrs struct{ p *check.Problems }
+// specErrs collects every problem of one spec, joined by errors.Join. It
+// allocates only once a check fails, so validating a good spec (as Init
+// does for every aggregate built in place) costs no allocation.
+type specErrs struct {
+	spec string
+	p    *check.Problems
+}
 
-func newSpecErrs(spec string) specErrs { return specErrs{check.For("window." + spec)} }
+func newSpecErrs(spec string) specErrs { return specErrs{spec: spec} }
 
-func (s specErrs) check(ok bool, field, problem string) { s.p.Check(ok, field, "%s", problem) }
+func (s *specErrs) check(ok bool, field, problem string) {
+	if ok {
+		return
+	}
+	if s.p == nil {
+		s.p = check.For("window." + s.spec)
+	}
+	s.p.Check(false, field, "%s", problem)
+}
 
-func (s specErrs) positive(field string, x time.Duration) { s.check(x > 0, field, "must be > 0") }
+func (s *specErrs) positive(field string, x time.Duration) { s.check(x > 0, field, "must be > 0") }
 
-func (s specErrs) nonNegative(field string, x time.Duration) { s.check(x >= 0, field, "must be >= 0") }
+func (s *specErrs) nonNegative(field string, x time.Duration) { s.check(x >= 0, field, "must be >= 0") }
 
-func (s specErrs) err() error { return s.p.Err() }
+func (s *specErrs) err() error {
+	if s.p == nil {
+		return nil
+	}
+	return s.p.Err()
+}
 
 // Format version and kind bytes. Frozen: values are never reused or edited;
 // a new layout gets a new version.

@@ -97,8 +97,8 @@ func FuzzDecodeSliding(f *testing.F) {
 			}
 			checkDecoded(t, b, fresh, func(c codec) error {
 				g := c.(*ring)
-				_, _ = g.query(g.maxT, g.n)
-				_, _ = g.query(g.maxT-int64(spec.Horizon)-1, g.n)
+				_, _ = g.query(g.maxT, g.sh.n)
+				_, _ = g.query(g.maxT-int64(spec.Horizon)-1, g.sh.n)
 				g.add(g.maxT+1, 2)
 				g.add(g.maxT-int64(spec.Window), 2)
 				return g.checkInvariants()
@@ -117,8 +117,8 @@ func FuzzDecodeDecayed(f *testing.F) {
 			_ = d.VarianceAt(d.maxT)
 			_ = d.CountAt(d.maxT + hour)
 			d.Add(d.maxT+1, MaxDecayedValue)
-			d.Add(d.maxT-int64(d.spec.Horizon), -MaxDecayedValue)
-			d.Add(d.maxT+int64(d.spec.HalfLife)*100, 2)
+			d.Add(d.maxT-int64(d.Spec().Horizon), -MaxDecayedValue)
+			d.Add(d.maxT+int64(d.Spec().HalfLife)*100, 2)
 			return d.checkInvariants()
 		})
 	})

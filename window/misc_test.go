@@ -183,10 +183,61 @@ func TestDecayedExtremeValues(t *testing.T) {
 		}
 	}
 	b, _ := d.AppendBinary(nil)
-	if err := must(NewDecayed(d.spec)).UnmarshalBinary(b); err != nil {
+	if err := must(NewDecayed(d.Spec())).UnmarshalBinary(b); err != nil {
 		t.Fatalf("state from in-range values does not decode: %v", err)
 	}
 	if v := d.VarianceAt(d.maxT); math.IsNaN(v) || math.IsInf(v, 0) {
 		t.Fatalf("variance %v", v)
+	}
+}
+
+// InitLike builds an aggregate in place with no allocation (Recency's
+// Init needs none), and a first event fits the storage inside the value
+// (a count, not a timing).
+func TestInitInPlaceAllocs(t *testing.T) {
+	spec := SlidingSpec{Window: hour, Resolution: minute, Horizon: 1}
+	pc, ps := must(NewSlidingCount(spec)), must(NewSlidingSum(spec))
+	pv := must(NewVelocity(VelocitySpec{Short: 5 * time.Minute, Long: time.Hour, Horizon: 1}))
+	pd := must(NewDecayed(DecaySpec{HalfLife: hour, Horizon: 1}))
+	var c SlidingCount
+	var s SlidingSum
+	var v Velocity
+	var d Decayed
+	var r Recency
+	got := testing.AllocsPerRun(100, func() {
+		c.InitLike(pc)
+		s.InitLike(ps)
+		v.InitLike(pv)
+		d.InitLike(pd)
+		if r.Init(RecencySpec{}) != nil {
+			t.Fatal("Init failed")
+		}
+		c.Add(hour)
+		s.Add(hour, 2)
+		v.Add(hour)
+		d.Add(hour, 3)
+		r.Add(hour)
+	})
+	if got != 0 {
+		t.Fatalf("%v allocations per InitLike and first Add, want 0", got)
+	}
+	if c.CountAt(hour) != 1 || s.SumAt(hour) != 2 || d.MeanAt(hour) != 3 || v.Spec() != pv.Spec() {
+		t.Fatal("aggregates built in place answer wrongly")
+	}
+	// Init again empties the value: it answers like a new one.
+	if err := c.Init(spec); err != nil || c.CountAt(hour) != 0 {
+		t.Fatalf("Init did not empty the count: %v, %d", err, c.CountAt(hour))
+	}
+	// A zero value stays safe: it refuses adds and answers empty.
+	var z SlidingCount
+	var zd Decayed
+	var zv Velocity
+	z.Reset()
+	zd.Reset()
+	if z.Add(1) || zd.Add(1, 1) || zv.Add(1) || z.CountAt(1) != 0 || z.Spec() != (SlidingSpec{}) || !math.IsNaN(zv.RatioAt(1)) {
+		t.Fatal("zero value misbehaves")
+	}
+	if _, err := z.AppendBinary(nil); err == nil {
+		t.Fatal("zero value encodes")
 	}
 }

@@ -55,7 +55,7 @@ func TestDecayedFastVsNaive(t *testing.T) {
 
 func checkDecayedQuery(t *testing.T, d *Decayed, evs []event, maxT, q int64, ctx string) {
 	t.Helper()
-	h := float64(d.spec.HalfLife)
+	h := float64(d.Spec().HalfLife)
 	var w, s, sa float64
 	for _, e := range evs {
 		if e.t <= q {
@@ -76,7 +76,7 @@ func checkDecayedQuery(t *testing.T, d *Decayed, evs []event, maxT, q int64, ctx
 		}
 		vr = m2 / w
 	}
-	if q < maxT-int64(d.spec.Horizon) {
+	if q < maxT-int64(d.Spec().Horizon) {
 		w, s, mean, vr = math.NaN(), math.NaN(), math.NaN(), math.NaN()
 	}
 	got := [4]float64{d.CountAt(q), d.SumAt(q), d.MeanAt(q), d.VarianceAt(q)}
@@ -100,8 +100,8 @@ func (d *Decayed) checkInvariants() error {
 		return nil
 	}
 	c := d.cutoff()
-	if d.land != sat.FloorDiv(c, d.step) || d.landT != startOf(d.land, d.step) || d.nextT != startOf(d.land+1, d.step) {
-		return fmt.Errorf("land %d (%d, %d), want %d", d.land, d.landT, d.nextT, sat.FloorDiv(c, d.step))
+	if d.land != sat.FloorDiv(c, d.sh.step) || d.landT != startOf(d.land, d.sh.step) {
+		return fmt.Errorf("land %d (%d), want %d", d.land, d.landT, sat.FloorDiv(c, d.sh.step))
 	}
 	if d.w < 0 || d.m2 < 0 || (d.w == 0 && (d.mean != 0 || d.m2 != 0)) {
 		return fmt.Errorf("weights (%v, %v, %v)", d.w, d.mean, d.m2)
@@ -116,7 +116,7 @@ func (d *Decayed) checkInvariants() error {
 
 func decayedRoundTrip(t *testing.T, d *Decayed) {
 	t.Helper()
-	e := must(NewDecayed(d.spec))
+	e := must(NewDecayed(d.Spec()))
 	e.Add(99, 1) // dirty state must be replaced
 	roundTripCodec(t, d, e, func() bool {
 		return e.seen == d.seen && e.maxT == d.maxT && e.land == d.land && e.w == d.w &&

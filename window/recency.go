@@ -74,7 +74,8 @@ type Recency struct {
 	sStart int64
 	sLast  int64
 	sCount uint64
-	raw    seq[event] // values unused
+	raw    seq[event]          // values unused
+	rinl   [inlineEvents]event // raw's first storage; never copied once built
 }
 
 // session is a gap-based session being extended in time order.
@@ -86,13 +87,25 @@ type session struct {
 // NewRecency returns an empty recency tracker over spec, or the errors of
 // spec.Validate.
 func NewRecency(spec RecencySpec) (*Recency, error) {
-	if err := spec.Validate(); err != nil {
+	r := new(Recency)
+	if err := r.Init(spec); err != nil {
 		return nil, err
 	}
-	spec.Gap = cmp.Or(spec.Gap, DefaultGap)
-	r := &Recency{spec: spec, valid: true}
-	r.raw.buf = make([]event, 0, 8)
 	return r, nil
+}
+
+// Init makes r an empty tracker over spec in place, whatever r held, or
+// returns the errors of spec.Validate (r is then unusable, like the zero
+// value). It allocates nothing; r must not be copied afterwards.
+func (r *Recency) Init(spec RecencySpec) error {
+	*r = Recency{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	spec.Gap = cmp.Or(spec.Gap, DefaultGap)
+	r.spec, r.valid = spec, true
+	r.raw.buf = r.rinl[:0]
+	return nil
 }
 
 // Spec returns the spec the aggregate was built with, defaults applied.
@@ -110,7 +123,7 @@ func (r *Recency) Newest() (t int64, ok bool) { return r.maxT, r.seen }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (r *Recency) SizeBytes() int {
-	return int(unsafe.Sizeof(*r)) + r.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+	return int(unsafe.Sizeof(*r)) + r.raw.sizeBytes(int(unsafe.Sizeof(event{})), r.rinl[:])
 }
 
 func (r *Recency) cutoff() int64 { return sat.Sub(r.maxT, int64(r.spec.Horizon)) }

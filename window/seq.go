@@ -1,5 +1,7 @@
 package window
 
+import "unsafe"
+
 // seq is a slice used as a queue: elements leave at the front (advance lo),
 // arrive mostly at the back, and now and then in the middle. Storage is
 // reused: when the back is full the live part is moved down before growing,
@@ -59,4 +61,12 @@ func (s *seq[T]) setLen(n int) {
 	s.buf = s.buf[:n]
 }
 
-func (s *seq[T]) sizeBytes(elem int) int { return cap(s.buf) * elem }
+// sizeBytes is the storage s holds outside inl, the inline array its
+// owner started it on (nil: none): that array is part of the owner's
+// own size.
+func (s *seq[T]) sizeBytes(elem int, inl []T) int {
+	if cap(s.buf) == 0 || len(inl) > 0 && unsafe.SliceData(s.buf) == unsafe.SliceData(inl) {
+		return 0
+	}
+	return cap(s.buf) * elem
+}

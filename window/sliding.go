@@ -103,43 +103,77 @@ type pane struct {
 //   - panes are in strictly increasing idx order, each with n >= 1 and
 //     floor <= idx <= pane(cutoff);
 //   - raw is sorted by t (ties in arrival order), each cutoff < t <= maxT;
-//   - when seen, cutPane, cutStart, cutNext describe pane(cutoff).
 type ring struct {
-	spec  SlidingSpec
-	valid bool  // built by a constructor from a valid spec
-	n     int64 // Window / Resolution
-	res   int64 // Resolution in ns
-	hor   int64 // Horizon in ns
-	op    op
-	kind  byte
+	sh *ringShape // what the spec fixes; nil: not built from a valid spec
 
 	seen  bool
 	maxT  int64
 	total uint64
-	// cutPane = pane(cutoff), cutStart its first ns, cutNext the first ns
-	// of the next pane (saturated); they spare divisions on the hot path.
-	cutPane, cutStart, cutNext int64
-	panes                      seq[pane]
-	raw                        seq[event]
+	panes seq[pane]
+	raw   seq[event]
+	// Storage inside the value for the first panes and raw events, so
+	// that a sparse aggregate (most entities) holds no slice of its own.
+	// A value is therefore never copied once built.
+	pinl [inlinePanes]pane
+	rinl [inlineEvents]event
 }
 
-func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
+// Inline capacities: most entities have an event or two in a window, and
+// with a small Horizon the raw events are those at the newest time.
+const (
+	inlinePanes  = 1
+	inlineEvents = 1
+)
+
+// ringShape is what a spec fixes for a ring, immutable once built: every
+// aggregate made from one (InitLike) points to it rather than carrying a
+// copy, which keeps a per-entity aggregate small.
+type ringShape struct {
+	spec SlidingSpec
+	n    int64 // Window / Resolution
+	res  int64 // Resolution in ns
+	hor  int64 // Horizon in ns
+	op   op
+	kind byte
+	// Velocity only: its spec (defaults applied) and its short window in
+	// panes.
+	vspec VelocitySpec
+	short int64
+}
+
+func newRingShape(spec SlidingSpec, o op, kind byte) (*ringShape, error) {
 	if err := spec.Validate(); err != nil {
-		return err
+		return nil, err
 	}
 	spec = spec.withDefaults()
-	g.spec, g.op, g.kind, g.valid = spec, o, kind, true
-	g.res, g.hor = int64(spec.Resolution), int64(spec.Horizon)
-	g.n = int64(spec.Window / spec.Resolution)
-	// Small to start: most entities are sparse. Storage grows by append and
-	// is then reused, so the steady state allocates nothing.
-	g.panes.buf = make([]pane, 0, min(g.n, 3)+1) // n+1 would overflow at n = MaxInt64
-	g.raw.buf = make([]event, 0, 4)
-	return nil
+	return &ringShape{spec: spec, op: o, kind: kind, res: int64(spec.Resolution), hor: int64(spec.Horizon),
+		n: int64(spec.Window / spec.Resolution)}, nil
+}
+
+// init makes g an empty aggregate over spec in place, whatever it held.
+// It allocates the shape; initLike does not.
+func (g *ring) init(spec SlidingSpec, o op, kind byte) error {
+	sh, err := newRingShape(spec, o, kind)
+	g.initLike(sh)
+	return err
+}
+
+// initLike makes g an empty aggregate of shape sh (nil: unusable), in
+// place and with no allocation: storage starts on the inline arrays and
+// grows by append, then is reused, so the steady state allocates nothing.
+func (g *ring) initLike(sh *ringShape) {
+	*g = ring{sh: sh}
+	g.panes.buf = g.pinl[:0]
+	g.raw.buf = g.rinl[:0]
 }
 
 // Spec returns the spec the aggregate was built with, defaults applied.
-func (g *ring) Spec() SlidingSpec { return g.spec }
+func (g *ring) Spec() SlidingSpec {
+	if g.sh == nil {
+		return SlidingSpec{}
+	}
+	return g.sh.spec
+}
 
 // Reset empties the aggregate and keeps its spec and storage.
 func (g *ring) Reset() {
@@ -156,55 +190,40 @@ func (g *ring) Count() uint64 { return g.total }
 
 // SizeBytes returns the approximate heap footprint in bytes.
 func (g *ring) SizeBytes() int {
-	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{}))) +
-		g.raw.sizeBytes(int(unsafe.Sizeof(event{})))
+	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{})), g.pinl[:]) +
+		g.raw.sizeBytes(int(unsafe.Sizeof(event{})), g.rinl[:])
 }
 
-func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.res) }
+func (g *ring) paneOf(t int64) int64 { return sat.FloorDiv(t, g.sh.res) }
 
 // paneStart is the first time of pane idx, saturated to the int64 range.
-func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.res) }
+func (g *ring) paneStart(idx int64) int64 { return startOf(idx, g.sh.res) }
 
-func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.hor) }
-
-func (g *ring) setCut() {
-	g.cutPane = g.paneOf(g.cutoff())
-	g.cutStart = g.paneStart(g.cutPane)
-	g.cutNext = g.paneStart(sat.Add(g.cutPane, 1))
-}
-
-// foldedPane is pane(t) for t <= cutoff, without a division when t lies in
-// the cutoff's pane.
-func (g *ring) foldedPane(t int64) int64 {
-	if t >= g.cutStart {
-		return g.cutPane
-	}
-	return g.paneOf(t)
-}
+func (g *ring) cutoff() int64 { return sat.Sub(g.maxT, g.sh.hor) }
 
 // add applies one event; see SlidingCount.Add.
 func (g *ring) add(t int64, v float64) bool {
-	if !g.valid || (g.op.hasValue() && !finite(v)) {
+	if g.sh == nil || (g.sh.op.hasValue() && !finite(v)) {
 		return false
 	}
-	if !g.op.hasValue() {
+	if !g.sh.op.hasValue() {
 		v = 0
 	}
 	switch {
 	case !g.seen:
 		g.seen, g.maxT = true, t
-		g.setCut()
 	case t > g.maxT:
+		prev := g.maxT
 		g.maxT = t
-		g.advance()
+		g.advance(prev)
 	}
 	if t > g.cutoff() {
 		insertSorted(&g.raw, event{t, v})
 	} else {
 		// Only a time older than maxT can be rejected, so nothing has
 		// changed above when this returns false.
-		p := g.foldedPane(t)
-		if p < sat.Sub(g.cutPane, g.n-1) {
+		p := g.paneOf(t)
+		if p < sat.Sub(g.paneOf(g.cutoff()), g.sh.n-1) {
 			return false
 		}
 		g.foldLate(p, v)
@@ -213,36 +232,41 @@ func (g *ring) add(t int64, v float64) bool {
 	return true
 }
 
-// advance folds raw events that fell to or behind the cutoff and discards
-// panes older than the floor. Raw events are newer than the previous cutoff,
-// so they fold onto the last pane or after it.
-func (g *ring) advance() {
+// advance, after maxT rose from prev, discards panes older than the floor
+// and folds raw events that fell to or behind the cutoff. Raw events are
+// newer than the previous cutoff, so they fold onto the last pane or
+// after it. Discarding first means a sparse entity never holds its old
+// pane and the newly folded one at once: one pane of storage serves it.
+func (g *ring) advance(prev int64) {
 	c := g.cutoff()
-	moved := c >= g.cutNext
-	if moved {
-		g.setCut()
+	cp := g.paneOf(c)
+	f := sat.Sub(cp, g.sh.n-1)
+	if cp != g.paneOf(sat.Sub(prev, g.sh.hor)) { // the floor moved
+		k := 0
+		for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
+			g.total -= ps[k].n
+		}
+		g.panes.popFront(k)
 	}
 	k := foldable(&g.raw, c)
+	cstart := g.paneStart(cp)
 	for _, e := range g.raw.live()[:k] {
-		p := g.foldedPane(e.t)
-		if g.panes.len() > 0 && g.panes.last().idx == p {
+		p := cp // no division when e lies in the cutoff's pane
+		if e.t < cstart {
+			p = g.paneOf(e.t)
+		}
+		switch {
+		case p < f:
+			g.total-- // behind the floor already: gone
+		case g.panes.len() > 0 && g.panes.last().idx == p:
 			l := g.panes.last()
 			l.n++
-			l.v = g.op.merge(l.v, e.v)
-		} else {
+			l.v = g.sh.op.merge(l.v, e.v)
+		default:
 			g.panes.push(pane{idx: p, n: 1, v: e.v})
 		}
 	}
 	g.raw.popFront(k)
-	if !moved {
-		return // the floor did not move
-	}
-	f := sat.Sub(g.cutPane, g.n-1)
-	k = 0
-	for ps := g.panes.live(); k < len(ps) && ps[k].idx < f; k++ {
-		g.total -= ps[k].n
-	}
-	g.panes.popFront(k)
 }
 
 // foldLate adds an event at or behind the cutoff to pane p >= floor.
@@ -254,16 +278,24 @@ func (g *ring) foldLate(p int64, v float64) {
 	}
 	if i > 0 && ps[i-1].idx == p {
 		ps[i-1].n++
-		ps[i-1].v = g.op.merge(ps[i-1].v, v)
+		ps[i-1].v = g.sh.op.merge(ps[i-1].v, v)
 		return
 	}
 	g.panes.insert(i, pane{idx: p, n: 1, v: v})
 }
 
+// queryAll is query over the whole window (0 for an unusable ring).
+func (g *ring) queryAll(t int64) (n uint64, v float64) {
+	if g.sh == nil {
+		return 0, 0
+	}
+	return g.query(t, g.sh.n)
+}
+
 // query aggregates the events of the window of w panes as of t; see
 // SlidingCount.CountAt for the semantics. v is meaningless when n == 0.
 func (g *ring) query(t int64, w int64) (n uint64, v float64) {
-	if !g.valid || !g.seen {
+	if g.sh == nil || !g.seen {
 		return 0, 0
 	}
 	hi := g.paneOf(t)
@@ -272,7 +304,7 @@ func (g *ring) query(t int64, w int64) (n uint64, v float64) {
 	if !exact {
 		hi--
 	}
-	vals := g.op.hasValue()
+	vals := g.sh.op.hasValue()
 	ps := g.panes.live()
 	if exact && !vals {
 		return g.countExact(t, lo), 0
@@ -328,7 +360,7 @@ func (g *ring) mergeInto(n uint64, v, x float64) float64 {
 	if n == 0 {
 		return x
 	}
-	return g.op.merge(v, x)
+	return g.sh.op.merge(v, x)
 }
 
 // searchPane returns the first i with ps[i].idx >= lo.
@@ -348,7 +380,10 @@ func searchPane(ps []pane, lo int64) int {
 // AppendBinary appends the encoding of the state (not the spec) to dst.
 // The layout is given on UnmarshalBinary.
 func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
-	dst, done, err := appendHeader(dst, g.valid, g.seen, g.kind, 0, g.maxT)
+	if g.sh == nil {
+		return dst, errInvalidAgg
+	}
+	dst, done, err := appendHeader(dst, true, g.seen, g.sh.kind, 0, g.maxT)
 	if done {
 		return dst, err
 	}
@@ -359,11 +394,11 @@ func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
 		dst = binary.AppendUvarint(dst, uint64(prev-ps[i].idx))
 		prev = ps[i].idx - 1
 		dst = binary.AppendUvarint(dst, ps[i].n-1)
-		if g.op.hasValue() {
+		if g.sh.op.hasValue() {
 			dst = appendFloat(dst, ps[i].v)
 		}
 	}
-	dst = appendEvents(dst, g.raw.live(), g.maxT, g.op.hasValue())
+	dst = appendEvents(dst, g.raw.live(), g.maxT, g.sh.op.hasValue())
 	return dst, nil
 }
 
@@ -393,20 +428,20 @@ func (g *ring) AppendBinary(dst []byte) ([]byte, error) {
 //	  float    value (kinds 2..5 only)
 //	then end of input (else ErrTrailingBytes).
 func (g *ring) UnmarshalBinary(b []byte) error {
-	return decodeTwoPass(g.valid, "sliding", b, g.decode)
+	return decodeTwoPass(g.sh != nil, "sliding", b, g.decode)
 }
 
 func (g *ring) decode(b []byte, store bool) error {
 	r := wire.Decoder{B: b}
-	_, maxT, ok := startState(&r, g.kind, flagSeen, store, g.Reset)
+	_, maxT, ok := startState(&r, g.sh.kind, flagSeen, store, g.Reset)
 	if !ok {
 		return r.Err
 	}
-	cutoff := sat.Sub(maxT, g.hor)
+	cutoff := sat.Sub(maxT, g.sh.hor)
 	pc := g.paneOf(cutoff)
-	floor := sat.Sub(pc, g.n-1)
+	floor := sat.Sub(pc, g.sh.n-1)
 	vbytes := 0
-	if g.op.hasValue() {
+	if g.sh.op.hasValue() {
 		vbytes = 8
 	}
 	np := r.Count(2+vbytes, math.MaxUint64)
@@ -448,6 +483,5 @@ func (g *ring) decode(b []byte, store bool) error {
 		return err
 	}
 	g.seen, g.maxT, g.total = true, maxT, total+uint64(nr)
-	g.setCut()
 	return nil
 }

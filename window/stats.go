@@ -53,11 +53,29 @@ func newValued[T any](spec SlidingSpec, o op, kind byte, inner func(*T) *valued)
 	return x, nil
 }
 
+// Init makes s an empty sum over spec in place; see SlidingCount.Init.
+func (s *SlidingSum) Init(spec SlidingSpec) error { return s.init(spec, opSum, kindSlidingSum) }
+
+// Init makes s an empty minimum over spec in place; see SlidingCount.Init.
+func (s *SlidingMin) Init(spec SlidingSpec) error { return s.init(spec, opMin, kindSlidingMin) }
+
+// Init makes s an empty maximum over spec in place; see SlidingCount.Init.
+func (s *SlidingMax) Init(spec SlidingSpec) error { return s.init(spec, opMax, kindSlidingMax) }
+
+// Init makes s an empty mean over spec in place; see SlidingCount.Init.
+func (s *SlidingMean) Init(spec SlidingSpec) error { return s.init(spec, opSum, kindSlidingMean) }
+
+// InitLike makes s an empty aggregate like proto; see SlidingCount.InitLike.
+func (s *SlidingSum) InitLike(proto *SlidingSum) { s.initLike(proto.sh) }
+
 // NewSlidingSum returns an empty sum over spec, or the errors of
 // spec.Validate.
 func NewSlidingSum(spec SlidingSpec) (*SlidingSum, error) {
 	return newValued(spec, opSum, kindSlidingSum, func(s *SlidingSum) *valued { return &s.valued })
 }
+
+// InitLike makes s an empty aggregate like proto; see SlidingCount.InitLike.
+func (s *SlidingMin) InitLike(proto *SlidingMin) { s.initLike(proto.sh) }
 
 // NewSlidingMin returns an empty minimum over spec, or the errors of
 // spec.Validate.
@@ -65,11 +83,17 @@ func NewSlidingMin(spec SlidingSpec) (*SlidingMin, error) {
 	return newValued(spec, opMin, kindSlidingMin, func(s *SlidingMin) *valued { return &s.valued })
 }
 
+// InitLike makes s an empty aggregate like proto; see SlidingCount.InitLike.
+func (s *SlidingMax) InitLike(proto *SlidingMax) { s.initLike(proto.sh) }
+
 // NewSlidingMax returns an empty maximum over spec, or the errors of
 // spec.Validate.
 func NewSlidingMax(spec SlidingSpec) (*SlidingMax, error) {
 	return newValued(spec, opMax, kindSlidingMax, func(s *SlidingMax) *valued { return &s.valued })
 }
+
+// InitLike makes s an empty aggregate like proto; see SlidingCount.InitLike.
+func (s *SlidingMean) InitLike(proto *SlidingMean) { s.initLike(proto.sh) }
 
 // NewSlidingMean returns an empty mean over spec, or the errors of
 // spec.Validate.
@@ -79,32 +103,32 @@ func NewSlidingMean(spec SlidingSpec) (*SlidingMean, error) {
 
 // SumAt returns the sum of the values in the window as of t, 0 if empty.
 func (s *SlidingSum) SumAt(t int64) float64 {
-	n, v := s.query(t, s.n)
+	n, v := s.queryAll(t)
 	return orEmpty(n, v, 0)
 }
 
 // MinAt returns the least value in the window as of t, NaN if empty.
 func (s *SlidingMin) MinAt(t int64) float64 {
-	n, v := s.query(t, s.n)
+	n, v := s.queryAll(t)
 	return orEmpty(n, v, math.NaN())
 }
 
 // MaxAt returns the greatest value in the window as of t, NaN if empty.
 func (s *SlidingMax) MaxAt(t int64) float64 {
-	n, v := s.query(t, s.n)
+	n, v := s.queryAll(t)
 	return orEmpty(n, v, math.NaN())
 }
 
 // MeanAt returns the mean of the values in the window as of t, NaN if
 // empty.
 func (s *SlidingMean) MeanAt(t int64) float64 {
-	n, v := s.query(t, s.n)
+	n, v := s.queryAll(t)
 	return orEmpty(n, v/float64(n), math.NaN())
 }
 
 // CountAt returns the number of events the mean as of t averages.
 func (s *SlidingMean) CountAt(t int64) uint64 {
-	n, _ := s.query(t, s.n)
+	n, _ := s.queryAll(t)
 	return n
 }
 

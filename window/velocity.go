@@ -77,45 +77,71 @@ func (s VelocitySpec) Validate() error {
 // Build with NewVelocity; the zero value ignores Add and answers NaN. Not
 // safe for concurrent use.
 type Velocity struct {
-	ring
-	vspec VelocitySpec
-	short int64 // panes in Short
+	ring // its shape holds the velocity spec and the short window
 }
 
 // NewVelocity returns an empty velocity ratio over spec, or the errors of
 // spec.Validate.
 func NewVelocity(spec VelocitySpec) (*Velocity, error) {
-	if err := spec.Validate(); err != nil {
+	v := new(Velocity)
+	if err := v.Init(spec); err != nil {
 		return nil, err
 	}
-	spec = spec.withDefaults()
-	v := &Velocity{vspec: spec}
-	if err := v.init(spec.sliding(), opCount, kindVelocity); err != nil {
-		return nil, err
-	}
-	v.short = int64(spec.Short / spec.Resolution)
 	return v, nil
 }
 
+// Init makes v an empty ratio over spec in place, whatever v held, or
+// returns the errors of spec.Validate (v is then unusable, like the zero
+// value). It allocates only its immutable parameters (InitLike shares
+// them); v must not be copied afterwards.
+func (v *Velocity) Init(spec VelocitySpec) error {
+	*v = Velocity{}
+	if err := spec.Validate(); err != nil {
+		return err
+	}
+	spec = spec.withDefaults()
+	sh, err := newRingShape(spec.sliding(), opCount, kindVelocity)
+	if err != nil {
+		return err
+	}
+	sh.vspec, sh.short = spec, int64(spec.Short/spec.Resolution)
+	v.initLike(sh)
+	return nil
+}
+
+// InitLike makes v an empty ratio with the spec proto was built with,
+// sharing proto's immutable parameters: no validation, no allocation. v
+// must not be copied afterwards.
+func (v *Velocity) InitLike(proto *Velocity) { v.initLike(proto.sh) }
+
 // Spec returns the spec the aggregate was built with, defaults applied.
-func (v *Velocity) Spec() VelocitySpec { return v.vspec }
+func (v *Velocity) Spec() VelocitySpec {
+	if v.sh == nil {
+		return VelocitySpec{}
+	}
+	return v.sh.vspec
+}
 
 // Add records one event at time t; see SlidingCount.Add.
 func (v *Velocity) Add(t int64) bool { return v.add(t, 0) }
 
 // CountsAt returns the short and long window counts as of t.
 func (v *Velocity) CountsAt(t int64) (short, long uint64) {
-	short, _ = v.query(t, v.short)
-	long, _ = v.query(t, v.n)
+	if v.sh == nil {
+		return 0, 0
+	}
+	short, _ = v.query(t, v.sh.short)
+	long, _ = v.query(t, v.sh.n)
 	return short, long
 }
 
 // RatioAt returns the smoothed velocity ratio as of t (formula on the type).
 func (v *Velocity) RatioAt(t int64) float64 {
-	if !v.valid {
+	if v.sh == nil {
 		return math.NaN()
 	}
 	cs, cl := v.CountsAt(t)
-	a := v.vspec.Smoothing
-	return (float64(cs) + a) / (float64(cl)*float64(v.vspec.Short)/float64(v.vspec.Long) + a)
+	vs := &v.sh.vspec
+	a := vs.Smoothing
+	return (float64(cs) + a) / (float64(cl)*float64(vs.Short)/float64(vs.Long) + a)
 }
