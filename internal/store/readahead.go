@@ -1,7 +1,7 @@
 package store
 
 import (
-	"errors"
+	"bytes"
 	"math"
 
 	"github.com/cockroachdb/pebble/v2"
@@ -64,8 +64,25 @@ func (s *Store) readAhead(w int64, peek map[string]func([]byte) (int64, error)) 
 		return nil
 	}
 	defer it.Close()
+	// One iterator over the records, sought once per entry: a point Get
+	// builds iterators over the files it reads each time, and that was
+	// the largest share of a pipeline's allocations.
+	recs, err := s.db.NewIter(&pebble.IterOptions{LowerBound: []byte{tagRecord}, UpperBound: []byte{tagRecord + 1}})
+	if err != nil {
+		return nil
+	}
+	defer recs.Close()
 	out = aheadTimes{}
-	var key []byte
+	var key, arena []byte
+	// keep returns key as a string sharing an arena chunk, so the map
+	// costs no allocation per entry.
+	keep := func(key []byte) string {
+		if cap(arena)-len(arena) < len(key) {
+			arena = make([]byte, 0, max(64<<10, len(key)))
+		}
+		arena = append(arena, key...)
+		return viewString(arena[len(arena)-len(key):])
+	}
 	for ok, n := it.First(), 0; ok && n < SweepLimit; ok, n = it.Next(), n+1 {
 		_, table, entity, err := parseExpiryKey(it.Key())
 		if err != nil {
@@ -76,18 +93,19 @@ func (s *Store) readAhead(w int64, peek map[string]func([]byte) (int64, error)) 
 			continue
 		}
 		key = RecordKey(key[:0], table, entity)
-		v, closer, err := s.db.Get(key)
-		if errors.Is(err, pebble.ErrNotFound) {
-			out[string(key)] = aheadTime{}
+		if !recs.SeekGE(key) || !bytes.Equal(recs.Key(), key) {
+			if err := recs.Error(); err != nil {
+				return out
+			}
+			out[keep(key)] = aheadTime{}
 			continue
 		}
+		v, err := recs.ValueAndErr()
 		if err != nil {
 			return out
 		}
-		last, perr := pk(v)
-		closer.Close()
-		if perr == nil {
-			out[string(key)] = aheadTime{last: last, found: true}
+		if last, perr := pk(v); perr == nil {
+			out[keep(key)] = aheadTime{last: last, found: true}
 		}
 	}
 	return out

@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"unsafe"
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/vfs"
@@ -41,6 +42,10 @@ func expiryKey(dst []byte, bucket int64, table, entity string) []byte {
 	return append(dst, entity...)
 }
 
+// parseExpiryKey splits an expiry index key. The table and entity it
+// returns share k's bytes (the sweep examines every due entry, and a copy
+// of each was a third of its allocations): they are valid only while k
+// is unchanged, so a caller that keeps one must copy it.
 func parseExpiryKey(k []byte) (bucket int64, table, entity string, err error) {
 	if len(k) < 10 || k[0] != tagExpiry {
 		return 0, "", "", fmt.Errorf("%w: expiry key %q", ErrCorrupt, k)
@@ -51,7 +56,16 @@ func parseExpiryKey(k []byte) (bucket int64, table, entity string, err error) {
 		return 0, "", "", fmt.Errorf("%w: expiry key %q", ErrCorrupt, k)
 	}
 	rest := k[9+w:]
-	return bucket, string(rest[:n]), string(rest[n:]), nil
+	return bucket, viewString(rest[:n]), viewString(rest[n:]), nil
+}
+
+// viewString returns b's bytes as a string without copying; b must not
+// change while the string is in use.
+func viewString(b []byte) string {
+	if len(b) == 0 {
+		return ""
+	}
+	return unsafe.String(&b[0], len(b))
 }
 
 // expirer is a table that can judge and remove expired records.
@@ -117,9 +131,11 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 	defer it.Close()
 	removed := 0
 	n := 0
+	var key []byte // the entry's key: entity below is a view of it
 	for ok := it.First(); ok && n < SweepLimit; ok = it.Next() {
 		n++
-		bucket, table, entity, err := parseExpiryKey(it.Key())
+		key = append(key[:0], it.Key()...)
+		bucket, table, entity, err := parseExpiryKey(key)
 		if err != nil {
 			return removed, err
 		}
@@ -127,12 +143,12 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 		if t == nil {
 			// A table no longer defined: its records are dropped by the
 			// definition reset that removed it; the entry is stale.
-			if err := b.Delete(it.Key(), nil); err != nil {
+			if err := b.Delete(key, nil); err != nil {
 				return removed, err
 			}
 			continue
 		}
-		gone, err := t.expire(b, bytes.Clone(it.Key()), bucket, entity, w)
+		gone, err := t.expire(b, key, bucket, entity, w)
 		if err != nil {
 			return removed, err
 		}
