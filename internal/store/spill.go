@@ -54,10 +54,11 @@ func (sp *spill) delete(key []byte) {
 	sp.bytes += int64(len(key) + spillEntryBytes)
 }
 
-// keep copies b into the arena.
+// keep copies b into the arena. Chunks start small and double up to
+// spillChunk, so a store that stages little holds little.
 func (sp *spill) keep(b []byte) []byte {
 	if cap(sp.arena)-len(sp.arena) < len(b) {
-		sp.arena = make([]byte, 0, max(spillChunk, len(b)))
+		sp.arena = make([]byte, 0, max(min(2*cap(sp.arena), spillChunk), 4<<10, len(b)))
 	}
 	sp.arena = append(sp.arena, b...)
 	return sp.arena[len(sp.arena)-len(b) : len(sp.arena) : len(sp.arena)]
