@@ -148,6 +148,25 @@ func (l *Live[E]) scoreGrouped(ctx context.Context, e E, dst []float64) ([]float
 	if l.p.emitting.Load() && calledFromEmit() {
 		return dst, ErrReentered
 	}
+	// Alone (the core free, no call waiting), the call runs here as with
+	// one worker: queueing it and handing its one event to the workers
+	// only adds a channel, an allocation and two goroutine switches (one
+	// caller scored at 0.6x of its one-worker rate that way).
+	select {
+	case l.sem <- struct{}{}:
+		l.qmu.Lock()
+		alone := len(l.queued) == 0
+		l.qmu.Unlock()
+		if alone {
+			defer l.unlock()
+			if l.closed {
+				return dst, ErrClosed
+			}
+			return l.submitLocked(e, l.clock.Now(), dst, true)
+		}
+		<-l.sem // others wait: join them below, in arrival order
+	default:
+	}
 	c := &scoreCall[E]{e: e, now: l.clock.Now(), dst: dst, done: make(chan struct{})}
 	l.qmu.Lock()
 	l.queued = append(l.queued, c)
