@@ -2,6 +2,7 @@ package store
 
 import (
 	"fmt"
+	"math"
 	"slices"
 	"sync/atomic"
 
@@ -27,21 +28,24 @@ type budget struct {
 
 // Slot is one cached entry. Callers mutate Value in place and then call
 // Table.Touch so the change is committed and its size accounted.
+//
+// Fields are ordered and sized so a slot is 64 bytes (one per cached
+// entity; 80 with int-sized fields).
 type Slot[V Value] struct {
 	Key   string
 	Value V
 
-	size    int
-	dirty   bool
-	evicted bool
-	ref     bool   // used since the clock hand last passed
-	idx     int    // position in Table.slots
 	indexed int64  // expiry bucket of this key's stored index entry; 0 = none
 	taken   uint64 // the commit (Store.gen) that last took this slot's bytes
-
 	// Handing the value to a commit in flight (see handoff.go).
-	state   atomic.Int32
 	claimed *claimedBytes
+	state   atomic.Int32
+
+	size    int32 // bytes counted against the budget
+	idx     int32 // position in Table.slots
+	dirty   bool
+	evicted bool
+	ref     bool // used since the clock hand last passed
 }
 
 // Table is a write-back cache of one kind of record (one key space under a
@@ -165,9 +169,9 @@ func (t *Table[V]) Touch(sl *Slot[V]) {
 }
 
 func (t *Table[V]) resize(sl *Slot[V]) {
-	n := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead
-	used := t.store.budget.used.Add(int64(n - sl.size))
-	sl.size = n
+	n := min(sl.Value.SizeBytes()+len(sl.Key)+slotOverhead, math.MaxInt32)
+	used := t.store.budget.used.Add(int64(n) - int64(sl.size))
+	sl.size = int32(n)
 	// Records evicted dirty wait in the pending batch and count against
 	// the same budget: eviction makes room for them too, and past half
 	// the budget OverBudget asks the caller to commit.
@@ -322,7 +326,7 @@ func (t *Table[V]) CacheStats() (hits, misses, evictions uint64) {
 
 func (t *Table[V]) link(sl *Slot[V]) {
 	t.m[sl.Key] = sl
-	sl.idx = len(t.slots)
+	sl.idx = int32(len(t.slots))
 	sl.ref = true
 	t.slots = append(t.slots, sl)
 }

@@ -8,6 +8,7 @@ import (
 	"math/rand/v2"
 	"strings"
 	"testing"
+	"unsafe"
 
 	"github.com/cockroachdb/pebble/v2"
 	"github.com/cockroachdb/pebble/v2/vfs"
@@ -383,5 +384,13 @@ func TestKnownAbsentStaysAfterDelete(t *testing.T) {
 	}
 	if _, misses, _ := tb.CacheStats(); misses != missesBefore+3 {
 		t.Fatalf("misses %d, want %d", misses, missesBefore+3)
+	}
+}
+
+// A slot is allocated per cached entity: keep it in the 64-byte size
+// class (see the field order in Slot).
+func TestSlotSize(t *testing.T) {
+	if n := unsafe.Sizeof(Slot[*tv]{}); n > 64 {
+		t.Fatalf("Slot is %d bytes, want at most 64", n)
 	}
 }

@@ -104,7 +104,7 @@ func checkCacheInvariants(s *Store) error {
 			return fmt.Errorf("table %s: %d map entries, %d slots", t.name, len(t.m), len(t.slots))
 		}
 		for i, sl := range t.slots {
-			if sl.idx != i {
+			if int(sl.idx) != i {
 				return fmt.Errorf("table %s: slots[%d].idx = %d", t.name, i, sl.idx)
 			}
 			if t.m[sl.Key] != sl {
@@ -113,7 +113,7 @@ func checkCacheInvariants(s *Store) error {
 			if sl.evicted {
 				return fmt.Errorf("table %s: cached slot %q marked evicted", t.name, sl.Key)
 			}
-			if want := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead; sl.size != want {
+			if want := sl.Value.SizeBytes() + len(sl.Key) + slotOverhead; int(sl.size) != want {
 				return fmt.Errorf("table %s: slot %q size %d, want %d", t.name, sl.Key, sl.size, want)
 			}
 			sum += int64(sl.size)
