@@ -37,6 +37,7 @@ var (
 	featCache       = flag.Int64("features.cache", 0, "record cache bytes (0: 256 MiB scaled by accounts/1M)")
 	featNaive       = flag.Int("features.naive-events", 300_000, "events of the naive baseline (a prefix: it runs ~40x slower)")
 	featCommitEvery = flag.Int("features.commit-every", 100_000, "automatic commit interval (events) of the latency benchmark")
+	featRate        = flag.Int("features.rate", 0, "calls per second the latency benchmark paces its timed calls to, as a service under a steady load would see them (0: as fast as they run)")
 	benchWorkers    = flag.Int("workers", 0, "Options.Workers of the pipelines of BenchmarkFeatures, BenchmarkFeaturesLatency, BenchmarkLive and BenchmarkProcess (0: the pipeline's default)")
 )
 
@@ -249,7 +250,10 @@ func (n naiveStore) event(b *testing.B, e payment) {
 // that cut a commit; p99 and max of the calls that started within 1 s
 // after a cut (the pipeline does not say when a background commit lands,
 // so the window stands for it); and the worst call: its index in the
-// timed half and whether it cut a commit (also logged).
+// timed half and whether it cut a commit (also logged). With
+// -features.rate the timed calls follow a fixed schedule of that many per
+// second, as an inline service under a steady load sees them; without it
+// they run back to back, so the background commits compete with them.
 func BenchmarkFeaturesLatency(b *testing.B) {
 	data := featureEvents()
 	commitEvery := *featCommitEvery
@@ -280,7 +284,16 @@ func BenchmarkFeaturesLatency(b *testing.B) {
 		hits, all, afterCut = hits[:0], all[:0], afterCut[:0]
 		var cut time.Time
 		b.StartTimer()
+		began := time.Now()
 		for i := half; i < len(data.events); i++ {
+			if *featRate > 0 {
+				// A fixed schedule: sleep while ahead of it; calls that
+				// fall behind are made at once until it is caught up.
+				due := began.Add(time.Duration(i-half) * time.Second / time.Duration(*featRate))
+				if d := time.Until(due); d > 0 {
+					time.Sleep(d)
+				}
+			}
 			t0 := time.Now()
 			out, err = p.Score(data.events[i], out[:0])
 			d := time.Since(t0)

@@ -38,6 +38,7 @@ func main() {
 	signin := flag.Int("signin-events", 1_000_000, "sign-in attempts the demo generates (five sixths are replayed)")
 	workerList := flag.String("workers", fmt.Sprintf("1,%d", runtime.GOMAXPROCS(0)), "Options.Workers values of the six-feature Eager and Settled rows; the last one is used for every other row")
 	verbose := flag.Bool("v", false, "echo the benchmarks' output")
+	pacedRate := flag.Int("paced-rate", 50_000, "calls per second of the paced inline Score row (0: no such row)")
 	flag.Parse()
 	var workers []int
 	for _, f := range strings.Split(*workerList, ",") {
@@ -62,6 +63,10 @@ func main() {
 	}
 	refs := m.bench("^BenchmarkFeatures$/^(naive|ceiling)$", "1x", wl)
 	lat := m.bench("^BenchmarkFeaturesLatency$", "1x", withWorkers(wmax, wl))
+	var paced map[string]map[string]float64
+	if *pacedRate > 0 {
+		paced = m.bench("^BenchmarkFeaturesLatency$", "1x", append(withWorkers(wmax, wl), "-features.rate", strconv.Itoa(*pacedRate)))
+	}
 	live := m.bench("^BenchmarkLive$", "1x", withWorkers(wmax, wl))
 	n := fmt.Sprintf("%dx", *oneFeature)
 	one := m.bench("^BenchmarkProcess$/^disk/cache-fits/warm$", n, withWorkers(wmax, nil))
@@ -98,12 +103,18 @@ func main() {
 			">= 400k events/s; <= 2 allocs/event")
 	}
 	l := "BenchmarkFeaturesLatency"
-	row(fmt.Sprintf("inline Score, 6 features, warm store, commits every 100k events, %d worker(s)", wmax),
-		fmt.Sprintf("cache hits p50 %.1f us, p99 %.1f us; all calls p99.9 %.0f us, max %.1f ms; call cutting a commit max %.1f ms; calls within 1 s after a cut p99 %.0f us, max %.1f ms; worst call #%.0f (cut a commit: %v)",
-			get(lat, l, "p50-hit-ns")/1e3, get(lat, l, "p99-hit-ns")/1e3, get(lat, l, "p99.9-ns")/1e3, get(lat, l, "max-ns")/1e6,
-			get(lat, l, "max-cut-call-ns")/1e6, get(lat, l, "p99-after-cut-ns")/1e3, get(lat, l, "max-after-cut-ns")/1e6,
-			get(lat, l, "worst-call"), get(lat, l, "worst-cut") == 1),
-		"p99 <= 20 us on cache hits; no call > 1 ms because of a commit")
+	latency := func(name string, lat map[string]map[string]float64) {
+		row(name,
+			fmt.Sprintf("cache hits p50 %.1f us, p99 %.1f us; all calls p99.9 %.0f us, max %.1f ms; call cutting a commit max %.1f ms; calls within 1 s after a cut p99 %.0f us, max %.1f ms; worst call #%.0f (cut a commit: %v)",
+				get(lat, l, "p50-hit-ns")/1e3, get(lat, l, "p99-hit-ns")/1e3, get(lat, l, "p99.9-ns")/1e3, get(lat, l, "max-ns")/1e6,
+				get(lat, l, "max-cut-call-ns")/1e6, get(lat, l, "p99-after-cut-ns")/1e3, get(lat, l, "max-after-cut-ns")/1e6,
+				get(lat, l, "worst-call"), get(lat, l, "worst-cut") == 1),
+			"p99 <= 20 us on cache hits; no call > 1 ms because of a commit")
+	}
+	latency(fmt.Sprintf("inline Score, 6 features, warm store, commits every 100k events, calls back to back, %d worker(s)", wmax), lat)
+	if paced != nil {
+		latency(fmt.Sprintf("the same, calls paced at %d/s", *pacedRate), paced)
+	}
 	oneEPS := get(one, "BenchmarkProcess/disk/cache-fits/warm", "events/s")
 	row(fmt.Sprintf("1 feature (10 min sliding count), 1M keys, Zipf(1.1), Eager, on disk, %d worker(s); pipeline, naive and ceiling each after the same 2M untimed events", wmax),
 		fmt.Sprintf("%.2f us/event; %.1f x naive per-event Pebble Get+Set; %.0f%% of the in-memory ring ceiling",
