@@ -38,22 +38,7 @@ func churn(t *testing.T, steps int, mode tallyward.Mode) {
 	if mode == tallyward.Settled {
 		opts.MaxDisorder = 5 * time.Minute
 	}
-	spec := accountSpec()
-	want := map[string][]float64{}
-	spec.Emit = func(r tallyward.Row[payment]) { want[r.Event.ID] = append([]float64(nil), r.Values...) }
-	ref, err := tallyward.Open(spec, opts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, e := range evs {
-		if err := ref.Process(e); err != nil {
-			t.Fatal(err)
-		}
-	}
-	if err := ref.Flush(); err != nil {
-		t.Fatal(err)
-	}
-	ref.Close()
+	want := referenceWith(t, accountSpec(), opts, evs)
 
 	cl := newCluster(t, 8)
 	rd := cl.follow(cl.out)

@@ -117,10 +117,16 @@ func decodePayment(r *kgo.Record) (payment, error) {
 // reference runs the events through one in-memory pipeline, in the order
 // given: the single-instance replay the scaled-out runs must equal.
 func reference(t testing.TB, spec tallyward.Spec[payment], evs []payment) map[string][]float64 {
+	return referenceWith(t, spec, pipelineOptions(), evs)
+}
+
+// referenceWith is reference with the given options; held rows are
+// flushed at the end (Settled).
+func referenceWith(t testing.TB, spec tallyward.Spec[payment], opts tallyward.Options, evs []payment) map[string][]float64 {
 	t.Helper()
 	want := map[string][]float64{}
 	spec.Emit = func(r tallyward.Row[payment]) { want[r.Event.ID] = append([]float64(nil), r.Values...) }
-	p, err := tallyward.Open(spec, pipelineOptions())
+	p, err := tallyward.Open(spec, opts)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -129,6 +135,9 @@ func reference(t testing.TB, spec tallyward.Spec[payment], evs []payment) map[st
 		if err := p.Process(e); err != nil && !errors.Is(err, tallyward.ErrRejected) {
 			t.Fatal(err)
 		}
+	}
+	if err := p.Flush(); err != nil {
+		t.Fatal(err)
 	}
 	return want
 }

@@ -201,22 +201,7 @@ func TestSettledHandOverRereadsHeldEvents(t *testing.T) {
 	evs := payments(18, 4000, 300, 200)
 	settled := pipelineOptions()
 	settled.Mode, settled.MaxDisorder = tallyward.Settled, 5*time.Minute
-	spec := accountSpec()
-	want := map[string][]float64{}
-	spec.Emit = func(r tallyward.Row[payment]) { want[r.Event.ID] = append([]float64(nil), r.Values...) }
-	ref, err := tallyward.Open(spec, settled)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, e := range evs {
-		if err := ref.Process(e); err != nil {
-			t.Fatal(err)
-		}
-	}
-	if err := ref.Flush(); err != nil {
-		t.Fatal(err)
-	}
-	ref.Close()
+	want := referenceWith(t, accountSpec(), settled, evs)
 
 	cl := newCluster(t, 4)
 	rd := cl.follow(cl.out)

@@ -32,21 +32,7 @@ func TestTwoEntityTopology(t *testing.T) {
 	settled.Mode, settled.MaxDisorder = tallyward.Settled, disorder
 	both := accountSpec()
 	both.Entities = append(both.Entities, deviceSpec().Entities...)
-	want := map[string][]float64{}
-	both.Emit = func(r tallyward.Row[payment]) { want[r.Event.ID] = append([]float64(nil), r.Values...) }
-	ref, err := tallyward.Open(both, settled)
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, e := range evs {
-		if err := ref.Process(e); err != nil {
-			t.Fatal(err)
-		}
-	}
-	if err := ref.Flush(); err != nil {
-		t.Fatal(err)
-	}
-	ref.Close()
+	want := referenceWith(t, both, settled, evs)
 
 	cl := newCluster(t, 6, kfake.SeedTopics(4, "payments-by-device"), kfake.SeedTopics(1, "device-rows"))
 	accRows, devRows := cl.follow("rows"), cl.follow("device-rows")
