@@ -335,14 +335,20 @@ type frequencySummary struct{ *sketch.CountMin }
 // UnmarshalBinary also checks the stored parameters against the
 // definition's: the definition check on Open covers the kind, this covers
 // a record written under other parameters.
+// The parameters are read first, so a blob naming others is refused
+// before its cells are allocated.
 func (s *frequencySummary) UnmarshalBinary(b []byte) error {
 	want := s.Params()
+	got, err := sketch.CountMinParamsOf(b)
+	if err != nil {
+		return err
+	}
+	if got != want {
+		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errTailed, got, want)
+	}
 	var cm sketch.CountMin
 	if err := cm.UnmarshalBinary(b); err != nil {
 		return err
-	}
-	if got := cm.Params(); got != want {
-		return fmt.Errorf("%w: count-min parameters %+v, definition has %+v", errTailed, got, want)
 	}
 	*s.CountMin = cm
 	return nil

@@ -183,6 +183,20 @@ func (c *CountMin) AppendBinary(dst []byte) ([]byte, error) {
 // malformed ErrCorrupt.
 func (c *CountMin) UnmarshalBinary(b []byte) error { return named("count-min", c.unmarshal(b)) }
 
+// CountMinParamsOf reads the parameters of an encoded Count-Min sketch
+// without decoding its cells. A caller that expects given parameters
+// checks them first: the cells are allocated from the parameters
+// (width × depth counters, up to 32 MiB), so a damaged or foreign blob
+// would otherwise cost that allocation before it is refused.
+func CountMinParamsOf(b []byte) (CountMinParams, error) {
+	r := header(&wire.Decoder{B: b}, kindCountMin)
+	p := CountMinParams{Epsilon: r.Float64BE(), Delta: r.Float64BE()}
+	if r.Err != nil {
+		return CountMinParams{}, named("count-min", r.Err)
+	}
+	return p, nil
+}
+
 func (c *CountMin) unmarshal(b []byte) error {
 	r := header(&wire.Decoder{B: b}, kindCountMin)
 	if r.Err != nil {

@@ -118,3 +118,21 @@ func TestCountMinDefaultDims(t *testing.T) {
 		t.Fatalf("default dims %d x %d, want 272 x 5", w, d)
 	}
 }
+
+// CountMinParamsOf reads the parameters alone, so a caller can refuse a
+// blob before its cells are allocated; a damaged header is an error.
+func TestCountMinParamsOf(t *testing.T) {
+	p := CountMinParams{Epsilon: 0.001, Delta: 0.01}
+	c := mustCM(t, p)
+	c.Add(HashString("a"), 3)
+	blob, _ := c.AppendBinary(nil)
+	got, err := CountMinParamsOf(blob)
+	if err != nil || got != p {
+		t.Fatalf("CountMinParamsOf = %+v, %v; want %+v", got, err, p)
+	}
+	for _, bad := range [][]byte{nil, blob[:1], blob[:10], append([]byte{0xff}, blob[1:]...)} {
+		if _, err := CountMinParamsOf(bad); err == nil {
+			t.Fatalf("CountMinParamsOf(%x) gave no error", bad)
+		}
+	}
+}
