@@ -48,10 +48,10 @@ const (
 	// ApplyLate applies the event to state and emits its features at once,
 	// marked late. Window aggregates answer it within their stated
 	// as-of guarantees (see package window). Expiry (Options.TTL) is
-	// judged at the current watermark, not the late event's time: an
-	// entity idle for its TTL by now reads as new even if it was alive
-	// at that time, so the answer does not depend on when a commit
-	// removed the record.
+	// judged by the newest event time less MaxDisorder, not the late
+	// event's time: an entity idle for its TTL by now reads as new even
+	// if it was alive at that time, so the answer does not depend on
+	// when a commit removed the record.
 	ApplyLate Lateness = 1
 	// DivertLate hands the event to Spec.OnLate and does not apply it.
 	DivertLate Lateness = 2

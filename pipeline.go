@@ -690,7 +690,7 @@ func (p *Pipeline[E]) expiryClock() int64 {
 	return sat.Sub(p.maxT, int64(p.opts.MaxDisorder))
 }
 
-// expiryClockAt is the expiry clock for an event at t. A Settled event
+// expiryClockFor is the expiry clock for an event at t. A Settled event
 // is applied and answered once the watermark has passed it, possibly far
 // past it after a quiet spell; judged by the current clock, its entity
 // could read as expired although nothing within reach of t had aged out.
