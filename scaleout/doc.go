@@ -65,6 +65,10 @@
 //   - The group refuses a commit (a rebalance during it, a fenced
 //     producer): the transaction aborts and the member rolls every changed
 //     partition back to its confirmed snapshot and rewinds the fetch there.
+//     The rebalance can restart the fetch at the group offset instead,
+//     past a Settled state's resume point: the member drops what comes
+//     from there and seeks back (Stats.Rewound), so the held events are
+//     read again rather than skipped.
 //   - A group offset with no snapshot at it (shared storage lost, or
 //     offsets moved by hand): the member stops with ErrNoSnapshot rather
 //     than start empty and emit wrong features.

@@ -189,6 +189,7 @@ type Stats struct {
 	Aborted     int64 // commits the group refused (a rebalance); state rolled back
 	Loaded      int64 // partitions taken over from a snapshot
 	Produced    int64 // output records produced (including aborted ones)
+	Rewound     int64 // seeks back to a state's resume point after a fetch restarted past it
 }
 
 // Member is one instance of a scaled-out pipeline: a member of the
@@ -231,6 +232,13 @@ type part[E any] struct {
 	// committed offset); dirty is set once records were consumed after it.
 	confirmed int64
 	dirty     bool
+	// rewind is the offset the state must be fed from next when it is
+	// below confirmed (a Settled state's held events are read again);
+	// -1 once a record below confirmed arrived. rewinds counts the
+	// seeks made for it and dropped is the last record dropped meanwhile
+	// (see reseek).
+	rewind, dropped int64
+	rewinds         int
 }
 
 // NewMember validates cfg and connects a member to the group. It consumes
@@ -369,6 +377,16 @@ func (m *Member[E]) process(r *kgo.Record) error {
 	if pt == nil {
 		return fmt.Errorf("scaleout: record of %s/%d, which this member does not own", r.Topic, r.Partition)
 	}
+	if pt.rewind >= 0 {
+		if r.Offset >= pt.confirmed {
+			// The fetch started at the group offset, not at the state's
+			// resume point: a rebalance after a refused commit restarts
+			// fetching at the committed offsets and undoes the seek.
+			// Feeding this record would skip the held events for good.
+			return m.reseek(pt, r)
+		}
+		pt.rewind = -1
+	}
 	m.stats.Consumed++
 	if pt.start < 0 && pt.confirmed < 0 {
 		pt.start = r.Offset
@@ -391,6 +409,29 @@ func (m *Member[E]) process(r *kgo.Record) error {
 	if e := m.prodErr.Load(); e != nil {
 		return *e
 	}
+	return nil
+}
+
+// maxRewinds bounds the seeks back to one partition's resume point: if
+// the records there never come (deleted by retention, say), the member
+// stops with an error rather than seek forever or skip them.
+const maxRewinds = 8
+
+// reseek moves the fetch of pt back to its resume point and drops r
+// (fetched again after the records before it). m.mu is held, on the
+// polling goroutine.
+func (m *Member[E]) reseek(pt *part[E], r *kgo.Record) error {
+	if pt.rewinds > 0 && r.Offset > pt.dropped {
+		pt.dropped = r.Offset // the rest of a fetch the last seek covers
+		return nil
+	}
+	pt.dropped = r.Offset
+	if pt.rewinds++; pt.rewinds > maxRewinds {
+		return fmt.Errorf("scaleout: %s: records from offset %d, which the state must read again, were not delivered after %d seeks (the fetch restarts at %d)", pt.id, pt.rewind, maxRewinds, r.Offset)
+	}
+	m.stats.Rewound++
+	m.cfg.Logger.Warn("fetch restarted past the state's resume point; seeking back", "member", m.cfg.Name, "partition", pt.id.String(), "resume", pt.rewind, "offset", r.Offset)
+	m.cl.SetOffsets(map[string]map[int32]kgo.EpochOffset{pt.id.Topic: {pt.id.Partition: {Epoch: -1, Offset: pt.rewind}}})
 	return nil
 }
 
@@ -527,7 +568,7 @@ func (m *Member[E]) openPart(ctx context.Context, id Partition, head int64) (*pa
 			return nil, 0, false, fmt.Errorf("scaleout: taking over %s at offset %d: %w", id, head, err)
 		}
 	}
-	pt := &part[E]{id: id, dir: dir, head: head, start: -1, confirmed: head}
+	pt := &part[E]{id: id, dir: dir, head: head, start: -1, confirmed: head, rewind: -1}
 	spec := m.cfg.Spec
 	userEmit := spec.Emit
 	if m.cfg.OutputTopic != "" {
@@ -563,6 +604,9 @@ func (m *Member[E]) openPart(ctx context.Context, id Partition, head int64) (*pa
 			return nil, 0, false, fmt.Errorf("scaleout: %s: %w", id, err)
 		}
 		resume, pt.head = c.resume, c.resume
+		if resume < head {
+			pt.rewind = resume
+		}
 	}
 	p.SetCommitHook(func(cp tallyward.CommitPoint) ([]byte, error) {
 		at := func(seq uint64) int64 {
