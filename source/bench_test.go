@@ -195,37 +195,45 @@ func BenchmarkReplay(b *testing.B) {
 		})
 		// replay: decode + the pipeline (5 features, Settled, state in
 		// Pebble on disk, commits every 100k events) + a Parquet table,
-		// as the command runs it.
-		b.Run(format+"/replay", func(b *testing.B) {
-			n := 0
-			cpu0 := cpuTime()
-			for b.Loop() {
-				dir := b.TempDir()
-				r, err := source.Open(in, f.Schema, opts, nil, 0)
-				if err != nil {
-					b.Fatal(err)
-				}
-				p, table := openBenchPipeline(b, f, dir)
-				p.SetCommitHook(func(cp tallyward.CommitPoint) ([]byte, error) {
-					if _, err := table.Commit(); err != nil {
-						return nil, err
+		// as the command runs it; replay-ahead reads through Ahead, as
+		// the command does.
+		for _, ahead := range []bool{false, true} {
+			name := map[bool]string{false: "/replay", true: "/replay-ahead"}[ahead]
+			b.Run(format+name, func(b *testing.B) {
+				n := 0
+				cpu0 := cpuTime()
+				for b.Loop() {
+					dir := b.TempDir()
+					r, err := source.Open(in, f.Schema, opts, nil, 0)
+					if err != nil {
+						b.Fatal(err)
 					}
-					return r.CursorAt(cp.Resume)
-				})
-				if err := p.Replay(context.Background(), r.Events()); err != nil {
-					b.Fatal(err)
+					p, table := openBenchPipeline(b, f, dir)
+					p.SetCommitHook(func(cp tallyward.CommitPoint) ([]byte, error) {
+						if _, err := table.Commit(); err != nil {
+							return nil, err
+						}
+						return r.CursorAt(cp.Resume)
+					})
+					src := r.Events()
+					if ahead {
+						src = source.Ahead(src) // decoding on a goroutine of its own
+					}
+					if err := p.Replay(context.Background(), src); err != nil {
+						b.Fatal(err)
+					}
+					p.SetCommitHook(nil)
+					if err := table.Close(); err != nil {
+						b.Fatal(err)
+					}
+					n += int(p.Stats().Events)
+					p.Close()
+					r.Close()
 				}
-				p.SetCommitHook(nil)
-				if err := table.Close(); err != nil {
-					b.Fatal(err)
-				}
-				n += int(p.Stats().Events)
-				p.Close()
-				r.Close()
-			}
-			b.ReportMetric(float64(n)/b.Elapsed().Seconds(), "events/s")
-			b.ReportMetric(float64(n)/(cpuTime()-cpu0).Seconds(), "events/cpu-s")
-		})
+				b.ReportMetric(float64(n)/b.Elapsed().Seconds(), "events/s")
+				b.ReportMetric(float64(n)/(cpuTime()-cpu0).Seconds(), "events/cpu-s")
+			})
+		}
 	}
 }
 

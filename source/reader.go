@@ -8,6 +8,7 @@ import (
 	"math"
 	"os"
 	"slices"
+	"sync"
 	"time"
 
 	"github.com/tallyward/tallyward"
@@ -82,7 +83,11 @@ type logEntry struct {
 }
 
 // Reader merges files into one stream ordered by event time.
+//
+// Events may run on another goroutine than the one calling CursorAt,
+// Progress and BadRows (see Ahead): mu guards what they share.
 type Reader struct {
+	mu    sync.Mutex
 	s     *specfile.Schema
 	opts  Options
 	files []*input
@@ -92,6 +97,9 @@ type Reader struct {
 	log     []logEntry
 	logBase uint64
 	err     error
+	// badQueue holds rejected rows for Options.OnBadRow, called outside
+	// mu so that it may call the Reader.
+	badQueue []*RowError
 }
 
 // Open opens files (read in the order given; ties in time go to the
@@ -199,6 +207,12 @@ func (r *Reader) Close() error {
 
 // BadRows is the number of rows rejected so far (as of the next event).
 func (r *Reader) BadRows() int64 {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	return r.badRows()
+}
+
+func (r *Reader) badRows() int64 {
 	var n int64
 	for _, in := range r.files {
 		n += in.cur.bad
@@ -208,6 +222,8 @@ func (r *Reader) BadRows() int64 {
 
 // Progress reports bytes read from the files and their total size.
 func (r *Reader) Progress() (read, total int64) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
 	for _, in := range r.files {
 		read += in.read
 		total += in.size
@@ -229,9 +245,9 @@ func (r *Reader) fill(in *input) error {
 			in.cur.at = in.rr.pos()
 			in.cur.bad++
 			if r.opts.OnBadRow != nil {
-				r.opts.OnBadRow(re)
+				r.badQueue = append(r.badQueue, re) // told by next, unlocked
 			}
-			if r.opts.MaxBadRows >= 0 && r.BadRows() > r.opts.MaxBadRows {
+			if r.opts.MaxBadRows >= 0 && r.badRows() > r.opts.MaxBadRows {
 				return fmt.Errorf("%w (more than %d): last: %w", ErrTooManyBadRows, r.opts.MaxBadRows, re)
 			}
 			continue
@@ -270,30 +286,51 @@ func (r *Reader) Events() tallyward.Source[specfile.Event] {
 			return
 		}
 		for {
-			best := -1
-			for i, in := range r.files {
-				if err := r.fill(in); err != nil {
-					r.err = err
-					yield(specfile.Event{}, err)
-					return
-				}
-				if in.has && (best < 0 || in.head.Time < r.files[best].head.Time) {
-					best = i
-				}
-			}
-			if best < 0 {
+			ev, ok, err := r.next()
+			if err != nil {
+				yield(specfile.Event{}, err)
 				return
 			}
-			in := r.files[best]
-			r.log = append(r.log, logEntry{file: best, state: in.headState})
-			ev := in.head
-			in.head, in.has = specfile.Event{}, false
-			r.seq++
-			if !yield(ev, nil) {
+			if !ok || !yield(ev, nil) {
 				return
 			}
 		}
 	}
+}
+
+// next takes the next event in time order; ok is false at the end.
+func (r *Reader) next() (specfile.Event, bool, error) {
+	r.mu.Lock()
+	ev, ok, err := r.nextLocked()
+	bad := r.badQueue
+	r.badQueue = nil
+	r.mu.Unlock()
+	for _, re := range bad {
+		r.opts.OnBadRow(re)
+	}
+	return ev, ok, err
+}
+
+func (r *Reader) nextLocked() (ev specfile.Event, ok bool, err error) {
+	best := -1
+	for i, in := range r.files {
+		if err := r.fill(in); err != nil {
+			r.err = err
+			return ev, false, err
+		}
+		if in.has && (best < 0 || in.head.Time < r.files[best].head.Time) {
+			best = i
+		}
+	}
+	if best < 0 {
+		return ev, false, nil
+	}
+	in := r.files[best]
+	r.log = append(r.log, logEntry{file: best, state: in.headState})
+	ev = in.head
+	in.head, in.has = specfile.Event{}, false
+	r.seq++
+	return ev, true, nil
 }
 
 // CursorAt returns the cursor of the position just before event seq was
@@ -303,6 +340,8 @@ func (r *Reader) Events() tallyward.Source[specfile.Event] {
 // forgotten, so seq must not decrease from call to call: pass the
 // pipeline's CommitPoint.Resume.
 func (r *Reader) CursorAt(seq uint64) ([]byte, error) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
 	if seq < r.logBase || seq > r.seq {
 		return nil, fmt.Errorf("source: CursorAt(%d) outside the kept range %d..%d", seq, r.logBase, r.seq)
 	}

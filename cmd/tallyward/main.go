@@ -32,6 +32,7 @@ import (
 	"os"
 	"slices"
 	"strings"
+	"sync"
 )
 
 // Exit codes; documented in the package comment and in usage.
@@ -68,6 +69,19 @@ func register(c *command) { commands[c.name] = c }
 // built binary, so nothing else is injected.
 type env struct {
 	stdout, stderr io.Writer
+}
+
+// lockedWriter serialises writes from several goroutines (the replay's
+// reading goroutine tells bad rows while the progress line is drawn).
+type lockedWriter struct {
+	mu sync.Mutex
+	w  io.Writer
+}
+
+func (l *lockedWriter) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.w.Write(p)
 }
 
 func (e *env) errorf(format string, args ...any) {

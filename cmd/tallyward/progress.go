@@ -30,7 +30,11 @@ type progress struct {
 func newProgress(e *env, mode string, p *tallyward.Pipeline[specfile.Event], rd *source.Reader) *progress {
 	on := mode == "always"
 	if mode == "auto" {
-		if f, ok := e.stderr.(*os.File); ok {
+		w := e.stderr
+		if l, ok := w.(*lockedWriter); ok {
+			w = l.w
+		}
+		if f, ok := w.(*os.File); ok {
 			on = term.IsTerminal(int(f.Fd()))
 		}
 	}

@@ -84,6 +84,7 @@ const replayCursorVersion = 1
 const maxShownBad = 100
 
 func replay(e *env, o *replayFlags, inputs []string) int {
+	e = &env{stdout: e.stdout, stderr: &lockedWriter{w: e.stderr}}
 	if len(inputs) == 0 {
 		e.errorf("replay needs at least one input file")
 		return exitUsage
@@ -202,7 +203,10 @@ func replay(e *env, o *replayFlags, inputs []string) int {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	prog := newProgress(e, o.progress, p, rd)
-	events := prog.wrap(rd.Events(), p.ResumeSeq())
+	// Decoding runs ahead on a goroutine of its own, overlapping the
+	// pipeline's work; bad rows are then told from there (e.stderr is
+	// locked for it above).
+	events := prog.wrap(source.Ahead(rd.Events()), p.ResumeSeq())
 	err = p.Replay(ctx, events)
 	prog.done()
 	if err == nil {
