@@ -86,16 +86,26 @@ type Config[E any] struct {
 	Logger *slog.Logger
 }
 
+// groupChecks starts a Validate: it returns the function that records a
+// problem in errs (wrapping ErrConfig), after checking what every
+// configuration that joins a group needs.
+func groupChecks(errs *[]error, brokers []string, group string) func(string, ...any) {
+	bad := func(f string, a ...any) {
+		*errs = append(*errs, fmt.Errorf("%w: "+f, append([]any{ErrConfig}, a...)...))
+	}
+	if len(brokers) == 0 {
+		bad("Brokers is empty")
+	}
+	if group == "" {
+		bad("Group is empty")
+	}
+	return bad
+}
+
 // Validate reports every problem with c at once.
 func (c *Config[E]) Validate() error {
 	var errs []error
-	bad := func(f string, a ...any) { errs = append(errs, fmt.Errorf("%w: "+f, append([]any{ErrConfig}, a...)...)) }
-	if len(c.Brokers) == 0 {
-		bad("Brokers is empty")
-	}
-	if c.Group == "" {
-		bad("Group is empty")
-	}
+	bad := groupChecks(&errs, c.Brokers, c.Group)
 	if c.Topic == "" {
 		bad("Topic is empty")
 	}
@@ -796,13 +806,18 @@ func (m *Member[E]) Close(ctx context.Context) error {
 		err = m.commit(ctx)
 	}
 	m.cl.CloseAllowingRebalance()
+	m.closeAll()
+	return err
+}
+
+// closeAll closes every owned partition's pipeline and local store.
+func (m *Member[E]) closeAll() {
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	for id, pt := range m.parts {
 		m.closePart(pt)
 		delete(m.parts, id)
 	}
-	return err
 }
 
 // abandon stops the member as a crash would: no commit, no hand-over, the
@@ -814,10 +829,5 @@ func (m *Member[E]) abandon(ctx context.Context) {
 		m.txn.End(ctx, kgo.TryAbort)
 	}
 	m.cl.Close()
-	m.mu.Lock()
-	defer m.mu.Unlock()
-	for id, pt := range m.parts {
-		m.closePart(pt)
-		delete(m.parts, id)
-	}
+	m.closeAll()
 }

@@ -3,7 +3,6 @@ package scaleout
 import (
 	"context"
 	"errors"
-	"fmt"
 
 	"github.com/twmb/franz-go/pkg/kgo"
 )
@@ -43,13 +42,7 @@ type RekeyStats struct {
 // Validate reports every problem with c at once.
 func (c *RekeyConfig) Validate() error {
 	var errs []error
-	bad := func(f string, a ...any) { errs = append(errs, fmt.Errorf("%w: "+f, append([]any{ErrConfig}, a...)...)) }
-	if len(c.Brokers) == 0 {
-		bad("Brokers is empty")
-	}
-	if c.Group == "" {
-		bad("Group is empty")
-	}
+	bad := groupChecks(&errs, c.Brokers, c.Group)
 	if c.From == "" || c.To == "" || c.From == c.To {
 		bad("From %q and To %q must be set and differ", c.From, c.To)
 	}
