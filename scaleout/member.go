@@ -186,7 +186,8 @@ type Change struct {
 	// FromSnapshot is set when Assigned loaded state from Snapshots
 	// (false: a partition with no committed offset, started empty).
 	FromSnapshot bool
-	// Took is how long obtaining and opening the state took (Assigned).
+	// Took is how long obtaining and opening the state took (Assigned),
+	// by the pipelines' Options.MetricsClock.
 	Took time.Duration
 }
 
@@ -654,7 +655,7 @@ func (m *Member[E]) adjust(ctx context.Context, offsets map[string]map[int32]kgo
 	m.mu.Lock()
 	defer m.mu.Unlock()
 	for id, off := range offsets[m.cfg.Topic] {
-		began := time.Now()
+		began := m.now()
 		head := off.EpochOffset().Offset
 		if head < 0 {
 			head = -1
@@ -674,9 +675,18 @@ func (m *Member[E]) adjust(ctx context.Context, offsets map[string]map[int32]kgo
 		if resume >= 0 {
 			offsets[m.cfg.Topic][id] = kgo.NewOffset().At(resume).WithEpoch(-1)
 		}
-		m.tell(Change{Part: pt.id, What: Assigned, Head: head, FromSnapshot: loaded, Took: time.Since(began)})
+		m.tell(Change{Part: pt.id, What: Assigned, Head: head, FromSnapshot: loaded, Took: time.Duration(m.now() - began)})
 	}
 	return offsets, nil
+}
+
+// now reads the clock hand-over durations are timed by: the pipelines'
+// Options.MetricsClock (the wall clock by default), so tests can inject it.
+func (m *Member[E]) now() int64 {
+	if c := m.cfg.Options.MetricsClock; c != nil {
+		return c.Now()
+	}
+	return tallyward.SystemClock{}.Now()
 }
 
 func (m *Member[E]) tell(c Change) {
