@@ -352,6 +352,18 @@ func (cl *cluster) finishTopic(rd *reader, topic string) {
 
 // checkRows asserts that the rows read equal want: every event's row
 // once, none missing, none twice, values equal bit for bit.
+// expectAll waits for a row of every wanted event, stops the members,
+// reads the output to its end and checks the rows against want.
+func (cl *cluster) expectAll(t testing.TB, rd *reader, want map[string][]float64, members ...*running) {
+	t.Helper()
+	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
+	for _, m := range members {
+		m.stop(t)
+	}
+	cl.finish(rd)
+	checkRows(t, rd, want)
+}
+
 func checkRows(t testing.TB, rd *reader, want map[string][]float64) {
 	t.Helper()
 	rd.mu.Lock()

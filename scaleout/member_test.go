@@ -77,11 +77,7 @@ func TestMemberAddedAndRemovedMidStream(t *testing.T) {
 	rd.waitFor(t, "rows of the second third", 2*time.Minute, func(d, _ int, _ bool) bool { return d >= third+third/2 })
 	a.stop(t) // removed cleanly: commits and hands its partitions over
 	cl.produce(evs[2*third:], byAccount)
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	b.stop(t)
-	c.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, b, c)
 	if c.m.Stats().Loaded == 0 {
 		t.Errorf("the added member took no partition over from a snapshot: %+v", c.m.Stats())
 	}
@@ -100,11 +96,7 @@ func TestMemberKilledWithoutRevoke(t *testing.T) {
 	// the next owner, whose rows must not repeat b's committed ones.
 	killHolding(t, b, func() { cl.produce(evs[half-200:half], byAccount) }, nil)
 	cl.produce(evs[half:], byAccount)
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	a.stop(t)
-	c.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, a, c)
 	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
 
@@ -231,11 +223,7 @@ func TestSettledHandOverRereadsHeldEvents(t *testing.T) {
 			t.Fatal(err)
 		}
 	}
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	a.stop(t)
-	c.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, a, c)
 	t.Logf("killed b: %+v; a: %+v; c: %+v", b.m.Stats(), a.m.Stats(), c.m.Stats())
 }
 
@@ -323,9 +311,5 @@ func TestPlainRevokeCommitsPendingWork(t *testing.T) {
 	b := cl.start("b", func(c *Config[payment]) { c.TransactionalID = "" })
 	waitCond(t, "b to take partitions over from a's snapshots", func() bool { return b.m.Stats().Loaded > 0 })
 	cl.produce(evs[half:], byAccount)
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	a.stop(t)
-	b.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, a, b)
 }

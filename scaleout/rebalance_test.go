@@ -53,11 +53,7 @@ func TestRebalanceDuringCommit(t *testing.T) {
 	b := cl.start("b")
 	waitCond(t, "the rebalance to wait on a's commit", a.m.blocked.Load)
 	close(gate.release)
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	a.stop(t)
-	b.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, a, b)
 	t.Logf("a: %+v; b: %+v", a.m.Stats(), b.m.Stats())
 }
 
@@ -96,11 +92,7 @@ func TestCommitRefusedByGroup(t *testing.T) {
 	})
 	cl.produce(evs[half:], byAccount)
 	waitChan(t, "a commit to be refused", refused)
-	rd.waitFor(t, "every row", 2*time.Minute, func(d, _ int, _ bool) bool { return d == len(want) })
-	a.stop(t)
-	b.stop(t)
-	cl.finish(rd)
-	checkRows(t, rd, want)
+	cl.expectAll(t, rd, want, a, b)
 	if a.m.Stats().Aborted+b.m.Stats().Aborted == 0 {
 		t.Errorf("no commit was aborted: a %+v, b %+v", a.m.Stats(), b.m.Stats())
 	}
