@@ -73,16 +73,10 @@ func (s *Store) readAhead(w int64, peek map[string]func([]byte) (int64, error)) 
 	}
 	defer recs.Close()
 	out = aheadTimes{}
-	var key, arena []byte
-	// keep returns key as a string sharing an arena chunk, so the map
-	// costs no allocation per entry.
-	keep := func(key []byte) string {
-		if cap(arena)-len(arena) < len(key) {
-			arena = make([]byte, 0, max(64<<10, len(key)))
-		}
-		arena = append(arena, key...)
-		return viewString(arena[len(arena)-len(key):])
-	}
+	var key []byte
+	// The map's keys share arena chunks: no allocation per entry.
+	var keys arena
+	keep := func(key []byte) string { return viewString(keys.keep(key)) }
 	for ok, n := it.First(), 0; ok && n < SweepLimit; ok, n = it.Next(), n+1 {
 		_, table, entity, err := parseExpiryKey(it.Key())
 		if err != nil {

@@ -21,8 +21,8 @@ import (
 // spill, else in the pending batch.
 type spill struct {
 	m     map[string]spilled
-	arena []byte // values, in chunks
-	bytes int64  // approximate memory, for the budget
+	arena arena // keys and values
+	bytes int64 // approximate memory, for the budget
 }
 
 // spillEntryBytes approximates a map entry's memory beside key and value.
@@ -40,7 +40,7 @@ func newSpill() *spill { return &spill{m: map[string]spilled{}} }
 // reset empties sp for reuse, keeping its map's room and its last chunk.
 func (sp *spill) reset() {
 	clear(sp.m)
-	sp.arena = sp.arena[:0]
+	sp.arena.reset()
 	sp.bytes = 0
 }
 
@@ -54,15 +54,25 @@ func (sp *spill) delete(key []byte) {
 	sp.bytes += int64(len(key) + spillEntryBytes)
 }
 
-// keep copies b into the arena. Chunks start small and double up to
-// spillChunk, so a store that stages little holds little.
-func (sp *spill) keep(b []byte) []byte {
-	if cap(sp.arena)-len(sp.arena) < len(b) {
-		sp.arena = make([]byte, 0, max(min(2*cap(sp.arena), spillChunk), 4<<10, len(b)))
+// keep copies b into the spill's arena.
+func (sp *spill) keep(b []byte) []byte { return sp.arena.keep(b) }
+
+// arena hands out copies of byte slices from chunks that start small and
+// double up to spillChunk, so a store that stages little holds little.
+// A copy stays valid until reset, which keeps the last chunk for reuse:
+// whoever holds copies (map keys that view them, say) must drop them
+// first.
+type arena struct{ buf []byte }
+
+func (a *arena) keep(b []byte) []byte {
+	if cap(a.buf)-len(a.buf) < len(b) {
+		a.buf = make([]byte, 0, max(min(2*cap(a.buf), spillChunk), 4<<10, len(b)))
 	}
-	sp.arena = append(sp.arena, b...)
-	return sp.arena[len(sp.arena)-len(b) : len(sp.arena) : len(sp.arena)]
+	a.buf = append(a.buf, b...)
+	return a.buf[len(a.buf)-len(b) : len(a.buf) : len(a.buf)]
 }
+
+func (a *arena) reset() { a.buf = a.buf[:0] }
 
 // key returns a map key for key that shares a copy in the arena: a
 // string allocated per staged write was a fifth of a pipeline's
