@@ -67,8 +67,7 @@ func TestCommitsInFlightChangeNothing(t *testing.T) {
 		// still being written.
 		clone := fs.CrashClone(vfs.CrashCloneCfg{UnsyncedDataPercent: r.IntN(100), RNG: rand.New(rand.NewPCG(13, uint64(crashes)))})
 		mergeRows(t, all, rows.rows)
-		p.closed = true
-		p.store.DB().Close()
+		abandonCrashed(p)
 		fs = clone
 		opts.FS = fs
 	}
