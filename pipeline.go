@@ -832,24 +832,21 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if err := p.runCommitHook(&m); err != nil {
 		return err
 	}
-	n, err := p.store.Sweep(p.expiryClock())
-	if err != nil {
-		p.err = err
-		return err
-	}
-	p.c.expired += uint64(n)
-	p.c.live -= int64(n)
-	pr := p.progress()
-	pr.resumeNewest = resumeNewest
-	m.Extra = pr.append(nil)
 	// The next commit's sweep is at this watermark or above: let this
 	// commit read its records ahead, off the caller's path.
 	p.store.SweepAhead(p.expiryClock())
-	write := p.store.Commit
-	if async {
-		write = p.store.CommitAsync
+	err := p.store.SweepCommitAsync(p.expiryClock(), func(removed int) store.Mark {
+		p.c.expired += uint64(removed)
+		p.c.live -= int64(removed)
+		pr := p.progress()
+		pr.resumeNewest = resumeNewest
+		m.Extra = pr.append(nil)
+		return m
+	})
+	if err == nil && !async {
+		err = p.store.Settle()
 	}
-	if err := write(m); err != nil {
+	if err != nil {
 		p.err = err
 		return err
 	}

@@ -42,9 +42,11 @@ type flight struct {
 	ahead aheadTimes // read ahead after the write (readahead.go)
 }
 
-// freeze takes the writes of a commit of m and starts writing them. The
-// store must be settled.
-func (s *Store) freeze(m Mark) error {
+// freeze takes the writes of a commit and starts writing them. The store
+// must be settled. A w above math.MinInt64 sweeps at w in the same cut
+// (see SweepCommitAsync). mark gets the number of records the sweep
+// removed and returns the commit's Mark.
+func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	// The collector and spill of the last landed commit are reused: a
 	// commit's buffers run to megabytes, and allocating them anew while
 	// the GC marks makes the caller pay for marking in proportion.
@@ -72,6 +74,20 @@ func (s *Store) freeze(m Mark) error {
 			return s.fail(fmt.Errorf("state: unexpected %v in pending batch", kind))
 		}
 	}
+	cw := cutWriter{s, c}
+	removed, err := s.sweep(cw, w)
+	if err != nil {
+		return s.fail(fmt.Errorf("state: expiry sweep: %w", err))
+	}
+	s.gen++
+	for _, t := range s.tables {
+		n, err := t.freezeDirty(cw, w)
+		removed += n
+		if err != nil {
+			return s.fail(err)
+		}
+	}
+	// The spill last: the walks above staged their record deletions in it.
 	for k, e := range s.spill.m {
 		if e.del {
 			c.Delete([]byte(k), nil)
@@ -79,12 +95,7 @@ func (s *Store) freeze(m Mark) error {
 			c.Set([]byte(k), e.val, nil)
 		}
 	}
-	s.gen++
-	for _, t := range s.tables {
-		if err := t.freezeDirty(c); err != nil {
-			return s.fail(err)
-		}
-	}
+	m := mark(removed)
 	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
 	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill, c: c}
 	if sp := s.spareSpill; sp != nil {
@@ -116,6 +127,31 @@ func (s *Store) freeze(m Mark) error {
 		f.done <- err
 	}()
 	return nil
+}
+
+// cutWriter is where a commit's cut writes. Record writes are staged in
+// the spill, so that reads see them while the commit is in flight (the
+// spill then goes to the commit whole). Expiry index writes go straight
+// into the commit: only a sweep reads the index, and the next one runs
+// after this commit landed. Staging them in the pending batch instead
+// inserted each into its skiplist on the caller's path.
+type cutWriter struct {
+	s *Store
+	c *collector
+}
+
+func (w cutWriter) Set(key, value []byte, _ *pebble.WriteOptions) error {
+	if len(key) > 0 && key[0] == tagRecord {
+		return staging{w.s}.Set(key, value, nil)
+	}
+	return w.c.Set(key, value, nil)
+}
+
+func (w cutWriter) Delete(key []byte, _ *pebble.WriteOptions) error {
+	if len(key) > 0 && key[0] == tagRecord {
+		return staging{w.s}.Delete(key, nil)
+	}
+	return w.c.Delete(key, nil)
 }
 
 // inFlight reports whether sl's newest bytes are only in the commit in

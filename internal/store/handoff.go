@@ -52,16 +52,25 @@ func (sl *Slot[V]) claim() {
 }
 
 // freezeDirty is the caller's half: it moves the expiry index entries of
-// dirty slots into c and marks the slots frozen for encodeFrozen.
-func (t *Table[V]) freezeDirty(c *collector) error {
+// dirty slots (in b) and marks the slots frozen for encodeFrozen. Dirty
+// records already expired as of w are removed instead (as expireDirty
+// would, in the same walk over the dirty list); it returns how many.
+func (t *Table[V]) freezeDirty(b writer, w int64) (removed int, err error) {
 	clear(t.frozen)
 	t.frozen = t.frozen[:0]
 	for _, sl := range t.dirty {
 		if !sl.dirty {
 			continue
 		}
-		if err := t.moveIndex(c, sl); err != nil {
-			return err
+		if t.expiredAt(sl, w) {
+			if err := t.removeExpired(b, sl); err != nil {
+				return removed, err
+			}
+			removed++
+			continue
+		}
+		if err := t.moveIndex(b, sl); err != nil {
+			return removed, err
 		}
 		sl.dirty = false
 		sl.taken = t.store.gen
@@ -71,7 +80,7 @@ func (t *Table[V]) freezeDirty(c *collector) error {
 	}
 	clear(t.dirty)
 	t.dirty = t.dirty[:0]
-	return nil
+	return removed, nil
 }
 
 // encodeFrozen is the commit goroutine's half: it adds every frozen

@@ -53,7 +53,8 @@ func partPrefix(name string) []byte {
 
 // partFlusher adapts a Part to the commit's two halves: the part is not
 // safe for concurrent use, so all of its work happens in the freeze, on
-// the caller's goroutine, straight into the commit's collector; the half
+// the caller's goroutine, straight into the commit (through the cut's
+// writer: part keys are not records, so they go to the collector); the half
 // on the commit goroutine has nothing left to do.
 type partFlusher struct {
 	name string
@@ -61,13 +62,13 @@ type partFlusher struct {
 	pw   PartWriter
 }
 
-func (f *partFlusher) freezeDirty(c *collector) error {
-	f.pw.w = c
+func (f *partFlusher) freezeDirty(b writer, _ int64) (int, error) {
+	f.pw.w = b
 	defer func() { f.pw.w = nil }()
 	if err := f.part.Stage(&f.pw); err != nil {
-		return fmt.Errorf("state: part %q: %w", f.name, err)
+		return 0, fmt.Errorf("state: part %q: %w", f.name, err)
 	}
-	return nil
+	return 0, nil
 }
 
 func (f *partFlusher) encodeFrozen(*collector) error { return nil }

@@ -72,45 +72,57 @@ func viewString(b []byte) string {
 type expirer interface {
 	flusher
 	tableName() string
-	expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error)
-	expireDirty(b *pebble.Batch, w int64) (int, error)
+	expire(b writer, indexKey []byte, bucket int64, entity string, w int64) (bool, error)
+	expireDirty(b writer, w int64) (int, error)
 }
 
 // expireDirty removes the dirty cached records that are already expired
 // as of w: they would otherwise be written, indexed and only swept at a
 // later commit, so the live count would lag by a commit interval.
-func (t *Table[V]) expireDirty(b *pebble.Batch, w int64) (int, error) {
-	if t.ttl <= 0 {
-		return 0, nil
-	}
+func (t *Table[V]) expireDirty(b writer, w int64) (int, error) {
 	n := 0
 	for _, sl := range t.dirty {
-		if !sl.dirty || sat.Add(sl.Value.LastTime(), t.ttl) > w {
+		if !sl.dirty || !t.expiredAt(sl, w) {
 			continue
 		}
-		if sl.indexed != 0 {
-			t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, sl.Key)
-			if err := b.Delete(t.keybuf, nil); err != nil {
-				return n, err
-			}
-		}
-		t.keybuf = RecordKey(t.keybuf[:0], t.name, sl.Key)
-		if err := b.Delete(t.keybuf, nil); err != nil {
+		if err := t.removeExpired(b, sl); err != nil {
 			return n, err
 		}
-		sl.dirty = false
-		t.drop(sl)
 		n++
 	}
 	return n, nil
+}
+
+// expiredAt reports whether sl's record is expired as of watermark w.
+func (t *Table[V]) expiredAt(sl *Slot[V], w int64) bool {
+	return t.ttl > 0 && w != math.MinInt64 && sat.Add(sl.Value.LastTime(), t.ttl) <= w
+}
+
+// removeExpired drops the cached, expired sl and writes the deletion of
+// its record and index entry to b.
+func (t *Table[V]) removeExpired(b writer, sl *Slot[V]) error {
+	if sl.indexed != 0 {
+		t.keybuf = expiryKey(t.keybuf[:0], sl.indexed, t.name, sl.Key)
+		if err := b.Delete(t.keybuf, nil); err != nil {
+			return err
+		}
+	}
+	t.keybuf = RecordKey(t.keybuf[:0], t.name, sl.Key)
+	if err := b.Delete(t.keybuf, nil); err != nil {
+		return err
+	}
+	sl.dirty = false
+	t.drop(sl)
+	return nil
 }
 
 func (t *Table[V]) tableName() string { return t.name }
 
 // sweep examines up to SweepLimit expiry index entries with a bucket at or
 // below w and removes, in b, the records whose last time + ttl <= w. It
-// returns how many records it removed.
-func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
+// returns how many records it removed. Dirty cached records are left to
+// the caller (expireDirty, or the freeze of a commit cut at w).
+func (s *Store) sweep(b writer, w int64) (int, error) {
 	if w == math.MinInt64 {
 		return 0, nil
 	}
@@ -156,25 +168,11 @@ func (s *Store) sweep(b *pebble.Batch, w int64) (int, error) {
 			removed++
 		}
 	}
-	if err := it.Error(); err != nil {
-		return removed, err
-	}
-	for _, f := range s.tables {
-		t, ok := f.(expirer)
-		if !ok {
-			continue
-		}
-		n, err := t.expireDirty(b, w)
-		removed += n
-		if err != nil {
-			return removed, err
-		}
-	}
-	return removed, nil
+	return removed, it.Error()
 }
 
 // expire handles one expiry index entry at or below the watermark w.
-func (t *Table[V]) expire(b *pebble.Batch, indexKey []byte, bucket int64, entity string, w int64) (bool, error) {
+func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string, w int64) (bool, error) {
 	if o := t.owner(entity); o != t {
 		return o.expire(b, indexKey, bucket, entity, w)
 	}

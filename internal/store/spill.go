@@ -1,8 +1,6 @@
 package store
 
 import (
-	"fmt"
-
 	"github.com/cockroachdb/pebble/v2"
 )
 
@@ -152,27 +150,4 @@ func (s *Store) lookupStaged(key []byte) (v []byte, del, found bool) {
 		}
 	}
 	return nil, false, false
-}
-
-// stageBatch stages the writes of b, in order.
-func (s *Store) stageBatch(b *pebble.Batch) error {
-	w := staging{s}
-	r := b.Reader()
-	for {
-		kind, k, v, ok, err := r.Next()
-		if err != nil || !ok {
-			return err
-		}
-		switch kind {
-		case pebble.InternalKeyKindSet:
-			err = w.Set(k, v, nil)
-		case pebble.InternalKeyKindDelete:
-			err = w.Delete(k, nil)
-		default:
-			err = fmt.Errorf("state: unexpected %v in batch", kind)
-		}
-		if err != nil {
-			return err
-		}
-	}
 }

@@ -291,7 +291,7 @@ type Store struct {
 
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
-	freezeDirty(c *collector) error
+	freezeDirty(b writer, w int64) (removed int, err error)
 	encodeFrozen(c *collector) error
 	frozenCount() int
 }
@@ -627,7 +627,17 @@ func (s *Store) Commit(m Mark) error {
 // see the commit's writes, while it is in flight. It first waits for the
 // previous commit, so at most one is in flight; Mark and Commits report
 // the last commit that landed.
-func (s *Store) CommitAsync(m Mark) (err error) {
+func (s *Store) CommitAsync(m Mark) error {
+	return s.SweepCommitAsync(math.MinInt64, func(int) Mark { return m })
+}
+
+// SweepCommitAsync is Sweep(w) followed by CommitAsync, cut at once (w =
+// math.MinInt64 sweeps nothing): mark
+// gets the number of records the sweep removed and returns the Mark to
+// commit. It does less on the caller's path than the two calls: the
+// sweep's index writes go straight into the commit, and the dirty records
+// expired as of w are found in the walk that freezes the others.
+func (s *Store) SweepCommitAsync(w int64, mark func(removed int) Mark) (err error) {
 	defer s.guard(&err)
 	if err := s.Settle(); err != nil {
 		return err
@@ -635,7 +645,7 @@ func (s *Store) CommitAsync(m Mark) (err error) {
 	if s.opts.ReadOnly {
 		return ErrReadOnly
 	}
-	return s.freeze(m)
+	return s.freeze(w, mark)
 }
 
 // committed records a successful commit of m.
@@ -663,11 +673,17 @@ func (s *Store) Sweep(w int64) (_ int, err error) {
 	if err := s.Settle(); err != nil {
 		return 0, err
 	}
-	b := s.db.NewBatch()
-	defer b.Close()
+	b := staging{s}
 	n, err := s.sweep(b, w)
-	if err == nil && !b.Empty() {
-		err = s.stageBatch(b)
+	for _, f := range s.tables {
+		if err != nil {
+			break
+		}
+		if t, ok := f.(expirer); ok {
+			var d int
+			d, err = t.expireDirty(b, w)
+			n += d
+		}
 	}
 	if err != nil {
 		return 0, s.fail(fmt.Errorf("state: expiry sweep: %w", err))
