@@ -36,6 +36,15 @@ func PebbleOptions(opts Options) *pebble.Options {
 		// holding it are compacted away (see Compact).
 		MaxManifestFileSize: 1,
 	}
+	// Every commit table carries deletions (expired records, moved
+	// expiry index entries), enough for Pebble to judge it tombstone-dense
+	// and compact it into the bottom level alone, rewriting that level once
+	// per commit. Without those compactions the commit tables wait in L0
+	// until the count threshold above and go down together: on the
+	// six-feature workload half the bytes compacted and 12% less CPU per
+	// event. Deleted bytes stay on disk a little longer; Compact still
+	// removes them.
+	popts.Experimental.TombstoneDenseCompactionThreshold = -1
 	// A lookup of an entity never seen before is common; bloom filters on
 	// every level make it cheap.
 	for i := range popts.Levels {
