@@ -105,7 +105,11 @@ func (s *Store) readAhead(w int64, peek map[string]func([]byte) (int64, error)) 
 	return out
 }
 
-// peekFuncs returns each expiring table's PeekLast by table name.
+// peekFuncs returns each expiring table's PeekLast by table name, for the
+// tables whose sweep may read Pebble: a table that has never let a record
+// go from its cache but by deletion (knownAbsent, in every part) knows
+// that what it does not cache is stored nowhere, so reading ahead for it
+// would only read records it holds.
 func (s *Store) peekFuncs() map[string]func([]byte) (int64, error) {
 	m := map[string]func([]byte) (int64, error){}
 	for _, f := range s.tables {
@@ -121,10 +125,20 @@ func (s *Store) peekFuncs() map[string]func([]byte) (int64, error) {
 }
 
 func (t *Table[V]) peeker() func([]byte) (int64, error) {
-	if t.ttl <= 0 {
+	if t.ttl <= 0 || t.allKnownAbsent() {
 		return nil
 	}
 	return t.PeekLast
+}
+
+// allKnownAbsent reports whether every part of t's table is knownAbsent.
+func (t *Table[V]) allKnownAbsent() bool {
+	for _, p := range t.group() {
+		if !p.knownAbsent {
+			return false
+		}
+	}
+	return true
 }
 
 // aheadLast returns the read-ahead newest time of the record under key,

@@ -181,7 +181,7 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 	found := sl != nil
 	if found {
 		last = sl.Value.LastTime()
-	} else {
+	} else if !t.knownAbsent {
 		t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
 		var ok bool
 		if last, found, ok = t.store.aheadLast(t.keybuf); !ok {
