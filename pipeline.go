@@ -531,7 +531,7 @@ func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp 
 			c.erasedSkips++
 			return nil, nil
 		}
-		sl = tb.Insert(key, es.lay.newRecord(t))
+		sl = tb.Insert(key, es.lay.recordFor(tb, t))
 		c.live++
 	} else if es.expired(sl.Value, exp) {
 		sl.Value.reset()

@@ -10,6 +10,7 @@ import (
 	"time"
 	"unsafe"
 
+	"github.com/tallyward/tallyward/internal/store"
 	"github.com/tallyward/tallyward/internal/wire"
 )
 
@@ -121,6 +122,19 @@ func (l *recordLayout) newRecord(last int64) *record {
 	r.last, r.lay = last, l
 	r.aggs = unsafe.Slice((*Aggregate)(unsafe.Add(base, l.aggsOff)), len(l.kinds))
 	l.empty(r)
+	return r
+}
+
+// recordFor returns a new, empty record at last for tb: the record of an
+// entity a commit removed as expired if tb kept one (the same layout:
+// tables hold one entity's records), else a new one.
+func (l *recordLayout) recordFor(tb *store.Table[*record], last int64) *record {
+	r, ok := tb.Reuse()
+	if !ok {
+		return l.newRecord(last)
+	}
+	l.empty(r)
+	r.last = last
 	return r
 }
 

@@ -20,7 +20,8 @@ type Value interface {
 
 // budget is the byte bound shared by all tables of one store.
 //
-// Invariant: used == sum of Slot.size over every slot in every table.
+// Invariant: used == sum of Slot.size over every slot in every table, plus
+// the sizes of the values tables keep for Reuse.
 type budget struct {
 	used  atomic.Int64 // parts of a table add to it concurrently
 	limit int64
@@ -80,6 +81,7 @@ type Table[V Value] struct {
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
 	hand   int        // clock hand into slots
 	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
+	free   []kept[V]  // values of expired slots, for Reuse (see recycle)
 	frozen []*Slot[V] // slots whose bytes the commit in flight writes; owned by it while in flight
 	keybuf []byte
 	valbuf []byte
@@ -176,6 +178,11 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 	// the same budget: eviction makes room for them too, and past half
 	// the budget OverBudget asks the caller to commit.
 	for used+t.store.pendingBytes() > t.store.budget.limit && len(t.slots) > 1 {
+		if len(t.free) > 0 {
+			t.releaseFree()
+			used = t.store.budget.used.Load()
+			continue
+		}
 		if t.hand >= len(t.slots) {
 			t.hand = 0
 		}
@@ -215,6 +222,55 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 		t.dirty = slices.DeleteFunc(t.dirty, func(sl *Slot[V]) bool { return !sl.dirty })
 	}
 	return nil
+}
+
+// recycle drops sl, expired and removed by a commit's cut, and keeps its
+// value for Reuse: a commit removes about as many expired records as new
+// entities arrive before the next, and a record is an entity's largest
+// allocation. Only the cut recycles: no event is in progress then, so no
+// caller still holds the value (a slot evicted during an event may still
+// be read by that event's answer, so eviction does not recycle). Kept
+// values count against the budget until reused; over budget they go
+// before any cached entry (resize).
+func (t *Table[V]) recycle(sl *Slot[V]) {
+	v := sl.Value
+	t.drop(sl)
+	if len(t.free) >= len(t.slots)/16+64 {
+		return
+	}
+	k := kept[V]{v, int64(v.SizeBytes())}
+	t.free = append(t.free, k)
+	t.store.budget.used.Add(k.size)
+}
+
+// kept is a value kept for Reuse and the bytes it counts in the budget.
+type kept[V Value] struct {
+	v    V
+	size int64
+}
+
+// Reuse returns the value of a record a commit removed as expired, if one
+// is kept, for the caller to make empty and Insert under another key. Its
+// contents are the expired record's.
+func (t *Table[V]) Reuse() (v V, ok bool) {
+	n := len(t.free)
+	if n == 0 {
+		return v, false
+	}
+	k := t.free[n-1]
+	t.free[n-1] = kept[V]{}
+	t.free = t.free[:n-1]
+	t.store.budget.used.Add(-k.size)
+	return k.v, true
+}
+
+// releaseFree lets the values kept for Reuse go.
+func (t *Table[V]) releaseFree() {
+	for _, k := range t.free {
+		t.store.budget.used.Add(-k.size)
+	}
+	clear(t.free)
+	t.free = t.free[:0]
 }
 
 // drop removes sl from memory (not from the store).

@@ -118,9 +118,12 @@ func checkCacheInvariants(s *Store) error {
 			}
 			sum += int64(sl.size)
 		}
+		for _, k := range t.free {
+			sum += k.size
+		}
 	}
 	if sum != s.budget.used.Load() {
-		return fmt.Errorf("budget.used = %d, sum of slot sizes = %d", s.budget.used.Load(), sum)
+		return fmt.Errorf("budget.used = %d, sum of slot sizes and kept values = %d", s.budget.used.Load(), sum)
 	}
 	return nil
 }

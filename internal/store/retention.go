@@ -112,7 +112,7 @@ func (t *Table[V]) removeExpired(b writer, sl *Slot[V]) error {
 		return err
 	}
 	sl.dirty = false
-	t.drop(sl)
+	t.recycle(sl)
 	return nil
 }
 
@@ -215,7 +215,7 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 	}
 	if sl != nil {
 		sl.dirty = false
-		t.drop(sl)
+		t.recycle(sl)
 	}
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
 	return true, b.Delete(t.keybuf, nil)

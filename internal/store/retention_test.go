@@ -62,13 +62,25 @@ func TestExpiryMatchesModel(t *testing.T) {
 	// ahead: each commit reads ahead at its sweep's watermark (the next
 	// sweep may be lower or higher): removals must not change, and the
 	// sweeps must use the read-ahead times.
-	for _, c := range []struct{ peek, ahead bool }{{false, false}, {true, false}, {true, true}} {
+	// cut: the sweep and the commit are one cut (SweepCommitAsync), and
+	// new records reuse the values it removed. big: the cache never
+	// evicts, so the table knows that what it does not cache is absent
+	// and its sweep reads nothing.
+	cases := []struct{ peek, ahead, cut, big bool }{
+		{false, false, false, false}, {true, false, false, false}, {true, true, false, false},
+		{true, true, true, false}, {true, true, true, true}, {false, false, false, true},
+	}
+	for _, c := range cases {
 		peek := c.peek
-		t.Run(fmt.Sprintf("peek=%v/ahead=%v", peek, c.ahead), func(t *testing.T) {
+		cacheBytes := int64(8_000)
+		if c.big {
+			cacheBytes = 1 << 30
+		}
+		t.Run(fmt.Sprintf("peek=%v/ahead=%v/cut=%v/big=%v", peek, c.ahead, c.cut, c.big), func(t *testing.T) {
 			const ttl = 1600
 			r := rand.New(rand.NewPCG(11, 12))
 			fs := vfs.NewMem()
-			s := mustOpen(t, Options{FS: fs, CacheBytes: 8_000})
+			s := mustOpen(t, Options{FS: fs, CacheBytes: cacheBytes})
 			defer func() { s.Close() }()
 			open := func() *Table[*tv] {
 				tb := NewTable(s, "x", ttl, decodeTV)
@@ -99,7 +111,12 @@ func TestExpiryMatchesModel(t *testing.T) {
 					}
 					if sl == nil {
 						v := rec{Last: clock, N: 1, Pad: r.IntN(60)}
-						tb.Insert(k, v.value())
+						if old, ok := tb.Reuse(); ok && c.cut {
+							*old = *v.value()
+							tb.Insert(k, old)
+						} else {
+							tb.Insert(k, v.value())
+						}
 						model[k] = v
 						continue
 					}
@@ -121,7 +138,22 @@ func TestExpiryMatchesModel(t *testing.T) {
 						expect = append(expect, k)
 					}
 				}
-				n, err := s.Sweep(w)
+				var n int
+				var err error
+				if c.cut {
+					if c.ahead {
+						s.SweepAhead(w)
+					}
+					err = s.SweepCommitAsync(w, func(removed int) Mark {
+						n = removed
+						return Mark{Seen: uint64(step), Watermark: w}
+					})
+					if err == nil {
+						err = s.Settle()
+					}
+				} else {
+					n, err = s.Sweep(w)
+				}
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -132,13 +164,18 @@ func TestExpiryMatchesModel(t *testing.T) {
 					delete(model, k)
 				}
 				removedTotal += n
-				if c.ahead {
+				if c.ahead && !c.cut {
 					s.SweepAhead(w)
 				}
 				aheadUsed += s.aheadUsed
 				s.aheadUsed = 0
-				if err := s.Commit(Mark{Seen: uint64(step), Watermark: w}); err != nil {
-					t.Fatal(err)
+				if !c.cut {
+					if err := s.Commit(Mark{Seen: uint64(step), Watermark: w}); err != nil {
+						t.Fatal(err)
+					}
+				}
+				if err := checkCacheInvariants(s); err != nil {
+					t.Fatalf("step %d: %v", step, err)
 				}
 				if got := storedRecords(t, s.DB(), "x"); !maps.Equal(got, model) {
 					t.Fatalf("step %d: committed %d records, model %d", step, len(got), len(model))
@@ -146,7 +183,7 @@ func TestExpiryMatchesModel(t *testing.T) {
 				checkIndex(t, s.DB(), "x", ttl)
 				if step%40 == 39 {
 					s.Close()
-					s = mustOpen(t, Options{FS: fs, CacheBytes: 8_000})
+					s = mustOpen(t, Options{FS: fs, CacheBytes: cacheBytes})
 					tb = open()
 				}
 			}
