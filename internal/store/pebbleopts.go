@@ -25,8 +25,14 @@ func PebbleOptions(opts Options) *pebble.Options {
 		// room for a flush to finish while the next commit is written.
 		MemTableSize:                uint64(opts.MemTableBytes),
 		MemTableStopWritesThreshold: 4,
-		L0CompactionThreshold:       4,
-		L0StopWritesThreshold:       24,
+		// A large commit is one table ingested into L0; compacting eight
+		// of them at a time rather than four halves the bytes rewritten
+		// (six-feature Eager workload, cache holding every entity: 9%
+		// less CPU per event). With a cache that evicts, reads of missed
+		// records go through more L0 tables: no CPU difference measured
+		// there, 0.25 more allocations per event.
+		L0CompactionThreshold: 8,
+		L0StopWritesThreshold: 24,
 		// Table bounds are keys, and every MANIFEST edit keeps the bounds
 		// of the tables it adds until the MANIFEST is rewritten as a
 		// snapshot of the live tables. The smallest size threshold makes
