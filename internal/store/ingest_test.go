@@ -1,0 +1,61 @@
+package store
+
+import (
+	"bytes"
+	"math/rand/v2"
+	"slices"
+	"testing"
+)
+
+// TestCollectorSortedMatchesStableSort checks sorted against a reference:
+// a stable sort of the writes by key (bytes.Compare), keeping the last
+// write of each key. Keys are drawn to hit the prefix comparison's edges:
+// shared prefixes longer than the 32 inline bytes, keys that differ only
+// by trailing zero bytes, empty keys and repeated keys.
+func TestCollectorSortedMatchesStableSort(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 4))
+	alphabet := []byte{0, 1, 'a', 'b', 0xff}
+	for trial := range 300 {
+		var c collector
+		type write struct {
+			key, val []byte
+			del      bool
+		}
+		var ws []write
+		stem := bytes.Repeat([]byte{'s'}, r.IntN(40))
+		for range r.IntN(200) {
+			k := slices.Clone(stem[:r.IntN(len(stem)+1)])
+			for range r.IntN(6) {
+				k = append(k, alphabet[r.IntN(len(alphabet))])
+			}
+			w := write{key: k, val: []byte{byte(len(ws))}, del: r.IntN(4) == 0}
+			ws = append(ws, w)
+			if w.del {
+				c.Delete(w.key, nil)
+			} else {
+				c.Set(w.key, w.val, nil)
+			}
+		}
+		want := slices.Clone(ws)
+		slices.SortStableFunc(want, func(a, b write) int { return bytes.Compare(a.key, b.key) })
+		var last []write
+		for i, w := range want {
+			if i+1 < len(want) && bytes.Equal(want[i+1].key, w.key) {
+				continue
+			}
+			last = append(last, w)
+		}
+		got := c.sorted()
+		if len(got) != len(last) {
+			t.Fatalf("trial %d: %d writes out, want %d", trial, len(got), len(last))
+		}
+		for i, e := range got {
+			w := last[i]
+			if !bytes.Equal(e.key, w.key) || e.del != w.del || (!w.del && !bytes.Equal(e.val, w.val)) {
+				t.Fatalf("trial %d: write %d is %q del=%v val=%v, want %q del=%v val=%v", trial, i, e.key, e.del, e.val, w.key, w.del, w.val)
+			}
+		}
+		// The collector is reused after reset, as commits do.
+		c.reset()
+	}
+}
