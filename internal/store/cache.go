@@ -224,14 +224,16 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 	return nil
 }
 
-// recycle drops sl, expired and removed by a commit's cut, and keeps its
-// value for Reuse: a commit removes about as many expired records as new
+// recycle drops sl, expired and removed by a sweep, and keeps its value
+// for Reuse: a commit removes about as many expired records as new
 // entities arrive before the next, and a record is an entity's largest
-// allocation. Only the cut recycles: no event is in progress then, so no
-// caller still holds the value (a slot evicted during an event may still
-// be read by that event's answer, so eviction does not recycle). Kept
-// values count against the budget until reused; over budget they go
-// before any cached entry (resize).
+// allocation. Only sweeps recycle (a commit's cut, or Sweep just before a
+// commit): they run between events, with the commit before landed, so
+// neither a caller nor a commit's goroutine still reads the value (a slot
+// evicted during an event may still be read by that event's answer, so
+// eviction does not recycle). Kept values count against the budget until
+// reused; over budget a part lets its own go before any cached entry
+// (resize).
 func (t *Table[V]) recycle(sl *Slot[V]) {
 	v := sl.Value
 	t.drop(sl)
