@@ -123,7 +123,7 @@ type Decayed struct {
 }
 
 // foldMemo is what at computed last: the statistics after folding the
-// first n raw events onto the base, relative to landmark landT. A query
+// first n raw events onto the base, relative to the base's landmark. A query
 // at the newest time folds every raw event, with an Exp2 each; a busy
 // entity with a long horizon holds many, and folded them all again on
 // every query (a quarter of all CPU of a live service with a 10-minute
@@ -135,7 +135,6 @@ type Decayed struct {
 // advance folds k leading raw events into the base, it does so with the
 // same operations, so the memo then covers n − k events of the base.
 type foldMemo struct {
-	landT       int64
 	n           int // 0: nothing kept
 	w, mean, m2 float64
 }
@@ -334,7 +333,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 	i := 0
 	m := d.memo
 	same := land == d.land // the memo is relative to the base's landmark
-	if same && m != nil && m.n > 0 && m.n <= len(raw) && m.landT == landT && raw[m.n-1].t <= t {
+	if same && m != nil && m.n > 0 && m.n <= len(raw) && raw[m.n-1].t <= t {
 		w, mean, m2, i = m.w, m.mean, m.m2, m.n
 	}
 	from := i
@@ -346,7 +345,7 @@ func (d *Decayed) at(t int64) (w, mean, m2, f float64, ok bool) {
 			m = new(foldMemo)
 			d.memo = m
 		}
-		*m = foldMemo{landT: landT, n: i, w: w, mean: mean, m2: m2}
+		*m = foldMemo{n: i, w: w, mean: mean, m2: m2}
 	}
 	f = math.Exp2(-float64(sat.Sub(t, landT)) / float64(d.sh.spec.HalfLife))
 	return w, mean, m2, f, true
