@@ -36,15 +36,16 @@ type Slot[V Value] struct {
 	Key   string
 	Value V
 
-	indexed int64  // expiry bucket of this key's stored index entry; 0 = none
-	taken   uint64 // the commit (Store.gen) that last took this slot's bytes
+	indexed int64 // expiry bucket of this key's stored index entry; 0 = none
+	// dirtyIn is the generation (Store.gen) in which the slot was last
+	// changed: dirty while it equals the store's, 0 when clean or staged.
+	dirtyIn uint64
 	// Handing the value to a commit in flight (see handoff.go).
 	claimed *claimedBytes
-	state   atomic.Int32
+	hand    atomic.Int32
 
 	size    int32 // bytes counted against the budget
 	idx     int32 // position in Table.slots
-	dirty   bool
 	evicted bool
 	ref     bool // used since the clock hand last passed
 }
@@ -82,9 +83,13 @@ type Table[V Value] struct {
 	hand   int        // clock hand into slots
 	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
 	free   []kept[V]  // values of expired slots, for Reuse (see recycle)
-	frozen []*Slot[V] // slots whose bytes the commit in flight writes; owned by it while in flight
-	keybuf []byte
-	valbuf []byte
+	frozen []*Slot[V] // the dirty list of the commit in flight; owned by it while in flight
+	// dirtyLow is at most the newest time of every slot in dirty (as
+	// Touch saw it): a cut at a watermark it has not expired by need not
+	// look at the dirty slots for expired ones.
+	dirtyLow int64
+	keybuf   []byte
+	valbuf   []byte
 
 	hits, misses, evictions uint64
 }
@@ -96,7 +101,7 @@ type Table[V Value] struct {
 // keeps them forever. The ttl must be the one the store's expiry index was
 // built with: a caller that changes it calls RebuildExpiry first.
 func NewTable[V Value](s *Store, name string, ttl int64, decode func(b []byte) (V, error)) *Table[V] {
-	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}}
+	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}, dirtyLow: maxTime}
 	s.tables = append(s.tables, t)
 	t.knownAbsent = s.empty(RecordKey(nil, name, ""))
 	return t
@@ -127,8 +132,8 @@ func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if sl := t.m[key]; sl != nil {
 		t.hits++
 		sl.ref = true
-		if st := sl.state.Load(); st == slotFrozen || st == slotEncoding {
-			sl.claim()
+		if sl.dirtyIn == t.store.flightGen && sl.dirtyIn != 0 {
+			t.claim(sl)
 		}
 		return sl, nil
 	}
@@ -163,12 +168,21 @@ func (t *Table[V]) Insert(key string, v V) *Slot[V] {
 // table returned and has not since evicted or deleted: slots are only
 // valid until the next call that can evict.
 func (t *Table[V]) Touch(sl *Slot[V]) {
-	if !sl.dirty {
-		sl.dirty = true
-		t.dirty = append(t.dirty, sl)
-	}
+	t.markDirty(sl)
 	t.resize(sl)
 }
+
+// markDirty adds sl to the dirty list unless it is on it.
+func (t *Table[V]) markDirty(sl *Slot[V]) {
+	if sl.dirtyIn != t.store.gen {
+		sl.dirtyIn = t.store.gen
+		t.dirty = append(t.dirty, sl)
+	}
+	t.dirtyLow = min(t.dirtyLow, sl.Value.LastTime())
+}
+
+// isDirty reports whether sl changed since the last commit was cut.
+func (t *Table[V]) isDirty(sl *Slot[V]) bool { return sl.dirtyIn == t.store.gen }
 
 func (t *Table[V]) resize(sl *Slot[V]) {
 	n := min(sl.Value.SizeBytes()+len(sl.Key)+slotOverhead, math.MaxInt32)
@@ -206,12 +220,15 @@ const slotOverhead = 96
 // evict drops victim from memory, staging it in the pending batch first if
 // it is dirty so that later reads and the next commit still see it.
 func (t *Table[V]) evict(victim *Slot[V]) error {
-	victim.claim()
-	if victim.dirty || t.store.inFlight(victim.taken) {
+	inFlight := victim.dirtyIn == t.store.flightGen && victim.dirtyIn != 0
+	if inFlight {
+		t.claim(victim)
+	}
+	if t.isDirty(victim) || inFlight {
 		if err := t.stage(staging{t.store}, victim); err != nil {
 			return err
 		}
-		victim.dirty = false
+		victim.dirtyIn = 0
 	}
 	t.knownAbsent = false
 	t.drop(victim)
@@ -219,7 +236,7 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 	// Dropped slots stay in t.dirty until the next commit; once they are
 	// most of it, filter them out so that memory follows the budget.
 	if len(t.dirty) > 1024 && len(t.dirty) > 2*len(t.slots) {
-		t.dirty = slices.DeleteFunc(t.dirty, func(sl *Slot[V]) bool { return !sl.dirty })
+		t.dirty = slices.DeleteFunc(t.dirty, func(sl *Slot[V]) bool { return !t.isDirty(sl) })
 	}
 	return nil
 }
@@ -356,7 +373,7 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	if err != nil || sl == nil {
 		return false, err
 	}
-	sl.dirty = false
+	sl.dirtyIn = 0
 	t.drop(sl)
 	b := staging{t.store}
 	if sl.indexed != 0 {

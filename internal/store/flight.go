@@ -79,7 +79,6 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	if err != nil {
 		return s.fail(fmt.Errorf("state: expiry sweep: %w", err))
 	}
-	s.gen++
 	for _, t := range s.tables {
 		n, err := t.freezeDirty(cw, w)
 		removed += n
@@ -87,6 +86,8 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 			return s.fail(err)
 		}
 	}
+	gen := s.gen
+	s.gen++
 	// The spill last: the walks above staged their record deletions in it.
 	for k, e := range s.spill.m {
 		if e.del {
@@ -103,7 +104,7 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	} else {
 		s.spill = newSpill()
 	}
-	s.flight = f
+	s.flight, s.flightGen = f, gen
 	s.noteStaged()
 	n := len(c.ents)
 	for _, t := range s.tables {
@@ -115,7 +116,7 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	aheadW, peek := s.aheadW, s.peekFuncs()
 	s.aheadW = math.MinInt64
 	go func() {
-		err := encodeAll(tables, c)
+		err := encodeAll(tables, c, gen)
 		if err == nil {
 			buf, _ := m.AppendBinary(nil)
 			c.Set(metaKey(metaMark), buf, nil)
@@ -154,10 +155,6 @@ func (w cutWriter) Delete(key []byte, _ *pebble.WriteOptions) error {
 	return w.c.Delete(key, nil)
 }
 
-// inFlight reports whether sl's newest bytes are only in the commit in
-// flight: evicting it must then stage it so reads still find it.
-func (s *Store) inFlight(gen uint64) bool { return s.flight != nil && gen == s.gen }
-
 // Settle waits for the commit in flight, if any, and reports its failure
 // (which also fails the store).
 func (s *Store) Settle() error {
@@ -166,7 +163,7 @@ func (s *Store) Settle() error {
 		return s.check()
 	}
 	err := <-f.done
-	s.flight = nil
+	s.flight, s.flightGen = nil, 0
 	var fw fatalWrite
 	if errors.As(err, &fw) {
 		// As guard does for a fatal error on the caller's goroutine.

@@ -12,14 +12,18 @@ import (
 // while commits are in flight: every read must see the newest value (a
 // model map is the reference), every landed commit must hold exactly the
 // model as of its freeze, and a reopen must find the last one. Run both
-// commit paths (batch and ingested table).
+// commit paths (batch and ingested table), with and without a ttl: with
+// one, every landed commit's expiry index must also hold exactly one entry
+// per record, in the bucket of its newest time (the frozen records' index
+// moves are made by whichever side encodes them).
 func TestCommitInFlight(t *testing.T) {
-	for _, threshold := range []int{-1, 1} {
-		r := rand.New(rand.NewPCG(7, uint64(threshold+2)))
+	for _, c := range []struct{ threshold, ttl int }{{-1, 0}, {1, 0}, {-1, 1600}, {1, 1600}} {
+		threshold := c.threshold
+		r := rand.New(rand.NewPCG(7, uint64(threshold+2+c.ttl)))
 		fs := vfs.NewMem()
 		opts := Options{Dir: "db", FS: fs, CacheBytes: 4 << 10, IngestThreshold: threshold}
 		s := mustOpen(t, opts)
-		tb := NewTable(s, "t", 0, decodeTV)
+		tb := NewTable(s, "t", int64(c.ttl), decodeTV)
 		model := map[string]rec{}
 		var frozen map[string]rec // the model at the freeze of the commit in flight
 		check := func(key string) {
@@ -69,6 +73,7 @@ func TestCommitInFlight(t *testing.T) {
 					if got := storedRecords(t, s.DB(), "t"); !maps.Equal(got, frozen) {
 						t.Fatalf("threshold %d: landed commit holds %d records, model at freeze %d", threshold, len(got), len(frozen))
 					}
+					checkIndex(t, s.DB(), "t", int64(c.ttl))
 				}
 				if err := s.CommitAsync(Mark{Seen: uint64(i), Resume: uint64(i)}); err != nil {
 					t.Fatal(err)
@@ -89,6 +94,7 @@ func TestCommitInFlight(t *testing.T) {
 		if got := storedRecords(t, s.DB(), "t"); !maps.Equal(got, model) {
 			t.Fatalf("threshold %d: reopened store holds %d records, model %d", threshold, len(got), len(model))
 		}
+		checkIndex(t, s.DB(), "t", int64(c.ttl))
 		if s.Mark().Seen != 20_000 {
 			t.Fatalf("mark %+v", s.Mark())
 		}

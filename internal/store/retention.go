@@ -81,8 +81,11 @@ type expirer interface {
 // later commit, so the live count would lag by a commit interval.
 func (t *Table[V]) expireDirty(b writer, w int64) (int, error) {
 	n := 0
+	if !t.expiredLow(t.dirtyLow, w) {
+		return 0, nil
+	}
 	for _, sl := range t.dirty {
-		if !sl.dirty || !t.expiredAt(sl, w) {
+		if !t.isDirty(sl) || !t.expiredAt(sl, w) {
 			continue
 		}
 		if err := t.removeExpired(b, sl); err != nil {
@@ -95,7 +98,16 @@ func (t *Table[V]) expireDirty(b writer, w int64) (int, error) {
 
 // expiredAt reports whether sl's record is expired as of watermark w.
 func (t *Table[V]) expiredAt(sl *Slot[V], w int64) bool {
-	return t.ttl > 0 && w != math.MinInt64 && sat.Add(sl.Value.LastTime(), t.ttl) <= w
+	return t.expiredLow(sl.Value.LastTime(), w)
+}
+
+// maxTime is dirtyLow when no slot is dirty.
+const maxTime = math.MaxInt64
+
+// expiredLow reports whether a record last updated at last is expired as
+// of watermark w.
+func (t *Table[V]) expiredLow(last, w int64) bool {
+	return t.ttl > 0 && w != math.MinInt64 && last != maxTime && sat.Add(last, t.ttl) <= w
 }
 
 // removeExpired drops the cached, expired sl and writes the deletion of
@@ -111,7 +123,7 @@ func (t *Table[V]) removeExpired(b writer, sl *Slot[V]) error {
 	if err := b.Delete(t.keybuf, nil); err != nil {
 		return err
 	}
-	sl.dirty = false
+	sl.dirtyIn = 0
 	t.recycle(sl)
 	return nil
 }
@@ -204,17 +216,14 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 			if sl.indexed == bucket {
 				sl.indexed = 0
 			}
-			if !sl.dirty {
-				sl.dirty = true
-				t.dirty = append(t.dirty, sl)
-			}
+			t.markDirty(sl)
 			return false, nil
 		}
 		t.keybuf = expiryKey(t.keybuf[:0], t.bucket(last), t.name, entity)
 		return false, b.Set(t.keybuf, nil, nil)
 	}
 	if sl != nil {
-		sl.dirty = false
+		sl.dirtyIn = 0
 		t.recycle(sl)
 	}
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
@@ -331,7 +340,7 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 	for _, e := range out {
 		o := t.owner(string(e.k[len(lower):]))
 		if sl := o.m[string(e.k[len(lower):])]; sl != nil {
-			sl.dirty = false
+			sl.dirtyIn = 0
 			o.drop(sl)
 		}
 		if e.v == nil {

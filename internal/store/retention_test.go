@@ -130,7 +130,7 @@ func TestExpiryMatchesModel(t *testing.T) {
 				for k, v := range model {
 					sl := tb.m[k]
 					switch {
-					case sl != nil && sl.dirty:
+					case sl != nil && tb.isDirty(sl):
 						if v.Last+ttl <= w {
 							expect = append(expect, k)
 						}

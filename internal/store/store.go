@@ -251,7 +251,10 @@ type Store struct {
 	spareSpill *spill
 	// pendingRecords: the pending batch may hold record keys (see spill).
 	pendingRecords bool
-	gen            uint64 // number of commits taken (frozen) since Open
+	// gen is the generation records changed now are dirty in (see
+	// Slot.dirtyIn): 1 at Open, raised by every cut. flightGen is the
+	// generation the commit in flight took, 0 when none is.
+	gen, flightGen uint64
 	popts          *pebble.Options
 	dir            string
 	fs             *storeFS
@@ -292,7 +295,7 @@ type Store struct {
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
 	freezeDirty(b writer, w int64) (removed int, err error)
-	encodeFrozen(c *collector) error
+	encodeFrozen(c *collector, gen uint64) error
 	frozenCount() int
 }
 
@@ -347,7 +350,7 @@ func Open(opts Options) (_ *Store, err error) {
 		cache.Unref()
 		return nil, err
 	}
-	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes}, aheadW: math.MinInt64, prevAheadW: math.MinInt64,
+	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes}, gen: 1, aheadW: math.MinInt64, prevAheadW: math.MinInt64,
 		notices: in.notices, rollback: in.rollback}
 	defer func() {
 		if err != nil {
