@@ -253,6 +253,9 @@ func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
 			}
 		}
 	}()
+	if c.err != nil {
+		return c.err
+	}
 	if ingest {
 		return s.writeTable(c, seq)
 	}
@@ -261,10 +264,10 @@ func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
 	b := s.db.NewBatch()
 	defer b.Close()
 	for _, e := range c.ents {
-		if e.del {
-			err = b.Delete(e.key, nil)
+		if e.del() {
+			err = b.Delete(c.key(e), nil)
 		} else {
-			err = b.Set(e.key, e.val, nil)
+			err = b.Set(c.key(e), c.val(e), nil)
 		}
 		if err != nil {
 			return err
@@ -288,10 +291,10 @@ func (s *Store) writeTable(c *collector, seq uint64) error {
 	}
 	w := sstable.NewWriter(objstorageprovider.NewFileWritable(f), s.popts.MakeWriterOptions(0, s.db.TableFormat()))
 	for _, e := range c.sorted() {
-		if e.del {
-			err = w.Delete(e.key)
+		if e.del() {
+			err = w.Delete(c.key(e))
 		} else {
-			err = w.Set(e.key, e.val)
+			err = w.Set(c.key(e), c.val(e))
 		}
 		if err != nil {
 			w.Close()

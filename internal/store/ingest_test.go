@@ -51,8 +51,8 @@ func TestCollectorSortedMatchesStableSort(t *testing.T) {
 		}
 		for i, e := range got {
 			w := last[i]
-			if !bytes.Equal(e.key, w.key) || e.del != w.del || (!w.del && !bytes.Equal(e.val, w.val)) {
-				t.Fatalf("trial %d: write %d is %q del=%v val=%v, want %q del=%v val=%v", trial, i, e.key, e.del, e.val, w.key, w.del, w.val)
+			if !bytes.Equal(c.key(e), w.key) || e.del() != w.del || (!w.del && !bytes.Equal(c.val(e), w.val)) {
+				t.Fatalf("trial %d: write %d is %q del=%v val=%v, want %q del=%v val=%v", trial, i, c.key(e), e.del(), c.val(e), w.key, w.del, w.val)
 			}
 		}
 		// The collector is reused after reset, as commits do.
