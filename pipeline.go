@@ -59,6 +59,7 @@ type Pipeline[E any] struct {
 	resetTo        newestTime
 	resetWm        int64
 	lastCommitSeen uint64
+	sweptSeen      uint64 // Store.Swept already counted in c
 	// Commit latency by MetricsClock, for Stats only.
 	lastCommitNanos, commitNanos int64
 	commitHist                   [len(CommitBuckets) + 1]uint64
@@ -679,6 +680,15 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 	}
 }
 
+// syncSwept counts the records that commits landed since the last call
+// removed as expired.
+func (p *Pipeline[E]) syncSwept() {
+	d := p.store.Swept() - p.sweptSeen
+	p.sweptSeen += d
+	p.c.expired += d
+	p.c.live -= int64(d)
+}
+
 // expiryClock is the time records expire by: the watermark as the data
 // alone define it (newest time − MaxDisorder). Raises of the watermark by
 // Flush or an idle Advance do not count, so the end of a replay keeps its
@@ -812,6 +822,7 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 		p.err = err
 		return err
 	}
+	p.syncSwept()
 	m := store.Mark{Seen: p.seen, Resume: p.seen, Watermark: p.wm, Cursor: cursor}
 	if cursor == nil {
 		m.Cursor = p.store.Mark().Cursor
@@ -832,19 +843,21 @@ func (p *Pipeline[E]) commit(cursor []byte, async bool) error {
 	if err := p.runCommitHook(&m); err != nil {
 		return err
 	}
-	// The next commit's sweep is at this watermark or above: let this
-	// commit read its records ahead, off the caller's path.
-	p.store.SweepAhead(p.expiryClock())
+	// The commit's goroutine fixes the Mark once it knows how many
+	// records the commit removes; it sees the progress as of the cut.
+	pr := p.progress()
+	pr.resumeNewest = resumeNewest
+	pr.skipReread = slices.Clone(pr.skipReread)
 	err := p.store.SweepCommitAsync(p.expiryClock(), func(removed int) store.Mark {
-		p.c.expired += uint64(removed)
-		p.c.live -= int64(removed)
-		pr := p.progress()
-		pr.resumeNewest = resumeNewest
+		pr.c.expired += uint64(removed)
+		pr.c.live -= int64(removed)
 		m.Extra = pr.append(nil)
 		return m
 	})
 	if err == nil && !async {
 		err = p.store.Settle()
+		p.syncSwept()
+		p.store.DropSwept()
 	}
 	if err != nil {
 		p.err = err

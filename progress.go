@@ -271,6 +271,7 @@ func (s Stats) HitRate() float64 {
 // far (see Options.Workers); the cache figures wait for the workers.
 func (p *Pipeline[E]) Stats() Stats {
 	p.joinWork()
+	p.syncSwept()
 	s := Stats{
 		Events: p.c.events, Applied: p.c.applied, Emitted: p.c.emitted, Late: p.c.late, TooOld: p.c.tooOld,
 		LiveEntities: p.c.live, Expired: p.c.expired, Erased: p.c.erased, ErasedSkips: p.c.erasedSkips,

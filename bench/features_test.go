@@ -338,6 +338,14 @@ func BenchmarkFeaturesLatency(b *testing.B) {
 	b.ReportMetric(q(all, 1), "max-ns")
 	b.ReportMetric(q(hits, 0.5), "p50-hit-ns")
 	b.ReportMetric(q(hits, 0.99), "p99-hit-ns")
+	slow := 0
+	for _, d := range cuts {
+		if d > time.Millisecond {
+			slow++
+		}
+	}
+	b.ReportMetric(float64(len(cuts)), "cut-calls")
+	b.ReportMetric(float64(slow), "cut-calls-over-1ms")
 	b.ReportMetric(q(cuts, 0.5), "p50-cut-call-ns")
 	b.ReportMetric(float64(cutMax.Nanoseconds()), "max-cut-call-ns")
 	b.ReportMetric(q(afterCut, 0.99), "p99-after-cut-ns")

@@ -77,6 +77,7 @@ type Table[V Value] struct {
 	// parts lists every part of a split table (see parts.go), this one
 	// included; nil when the table is not split.
 	parts []*Table[V]
+	part  int // t's index in parts
 
 	m      map[string]*Slot[V]
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
@@ -84,12 +85,9 @@ type Table[V Value] struct {
 	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
 	free   []kept[V]  // values of expired slots, for Reuse (see recycle)
 	frozen []*Slot[V] // the dirty list of the commit in flight; owned by it while in flight
-	// dirtyLow is at most the newest time of every slot in dirty (as
-	// Touch saw it): a cut at a watermark it has not expired by need not
-	// look at the dirty slots for expired ones.
-	dirtyLow int64
-	keybuf   []byte
-	valbuf   []byte
+	dropQ  []string   // entities landed commits removed, to drop (see queueSwept)
+	keybuf []byte
+	valbuf []byte
 
 	hits, misses, evictions uint64
 }
@@ -101,16 +99,17 @@ type Table[V Value] struct {
 // keeps them forever. The ttl must be the one the store's expiry index was
 // built with: a caller that changes it calls RebuildExpiry first.
 func NewTable[V Value](s *Store, name string, ttl int64, decode func(b []byte) (V, error)) *Table[V] {
-	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}, dirtyLow: maxTime}
+	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}}
 	s.tables = append(s.tables, t)
 	t.knownAbsent = s.empty(RecordKey(nil, name, ""))
 	return t
 }
 
-// load reads key from the store without caching it.
-func (t *Table[V]) load(key string) (v V, found bool, err error) {
+// load reads key from the store without caching it. fresh reports a
+// record written since the last cut, which no commit has judged yet.
+func (t *Table[V]) load(key string) (v V, found, fresh bool, err error) {
 	t.keybuf = RecordKey(t.keybuf[:0], t.name, key)
-	found, err = t.store.getRaw(t.keybuf, func(b []byte) error {
+	found, fresh, err = t.store.getRecord(t.keybuf, func(b []byte) error {
 		var derr error
 		v, derr = t.decode(b)
 		if derr != nil {
@@ -118,22 +117,28 @@ func (t *Table[V]) load(key string) (v V, found bool, err error) {
 		}
 		return nil
 	})
-	return v, found, err
+	return v, found, fresh, err
 }
 
 // Name returns the table name.
 func (t *Table[V]) Name() string { return t.name }
 
 // Get returns the slot of key, loading it from the store on a miss. It
-// returns nil, nil when the key is stored nowhere. A hit is served from
-// memory even after the store failed; the failure surfaces at the next
-// miss, Commit or Sweep.
+// returns nil, nil when the key is stored nowhere, or when a commit
+// removed its record as expired (see sweepflight.go: a cached slot of such
+// a record is dropped here). A hit is served from memory even after the
+// store failed; the failure surfaces at the next miss, Commit or Sweep.
 func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if sl := t.m[key]; sl != nil {
 		t.hits++
 		sl.ref = true
 		if sl.dirtyIn == t.store.flightGen && sl.dirtyIn != 0 {
 			t.claim(sl)
+		}
+		if sl.dirtyIn != t.store.gen && t.sweptAway(sl.indexed) {
+			sl.dirtyIn = 0
+			t.recycle(sl)
+			return nil, nil
 		}
 		return sl, nil
 	}
@@ -144,11 +149,15 @@ func (t *Table[V]) Get(key string) (*Slot[V], error) {
 	if t.knownAbsent {
 		return nil, nil
 	}
-	v, found, err := t.load(key)
+	v, found, fresh, err := t.load(key)
 	if err != nil || !found {
 		return nil, err
 	}
-	sl := &Slot[V]{Key: key, Value: v, indexed: t.bucket(v.LastTime())}
+	b := t.bucket(v.LastTime())
+	if !fresh && t.sweptAway(b) {
+		return nil, nil
+	}
+	sl := &Slot[V]{Key: key, Value: v, indexed: b}
 	t.link(sl)
 	t.resize(sl)
 	return sl, nil
@@ -169,6 +178,9 @@ func (t *Table[V]) Insert(key string, v V) *Slot[V] {
 // valid until the next call that can evict.
 func (t *Table[V]) Touch(sl *Slot[V]) {
 	t.markDirty(sl)
+	if len(t.dropQ) > 0 {
+		t.dropSwept(2)
+	}
 	t.resize(sl)
 }
 
@@ -178,7 +190,6 @@ func (t *Table[V]) markDirty(sl *Slot[V]) {
 		sl.dirtyIn = t.store.gen
 		t.dirty = append(t.dirty, sl)
 	}
-	t.dirtyLow = min(t.dirtyLow, sl.Value.LastTime())
 }
 
 // isDirty reports whether sl changed since the last commit was cut.
@@ -223,6 +234,9 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 	inFlight := victim.dirtyIn == t.store.flightGen && victim.dirtyIn != 0
 	if inFlight {
 		t.claim(victim)
+		// One the commit deletes stays deleted: reads judge the stored
+		// record swept away.
+		inFlight = !t.sweptAway(victim.indexed)
 	}
 	if t.isDirty(victim) || inFlight {
 		if err := t.stage(staging{t.store}, victim); err != nil {
@@ -244,13 +258,14 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 // recycle drops sl, expired and removed by a sweep, and keeps its value
 // for Reuse: a commit removes about as many expired records as new
 // entities arrive before the next, and a record is an entity's largest
-// allocation. Only sweeps recycle (a commit's cut, or Sweep just before a
-// commit): they run between events, with the commit before landed, so
-// neither a caller nor a commit's goroutine still reads the value (a slot
-// evicted during an event may still be read by that event's answer, so
-// eviction does not recycle). Kept values count against the budget until
-// reused; over budget a part lets its own go before any cached entry
-// (resize).
+// allocation. Sweeps recycle (Store.Sweep, between events with no commit
+// in flight), and so do Get and dropSwept for a record a commit removed:
+// Get has reported such a record absent since the cut, so no caller
+// holds it, and the commit's goroutine never reads a slot that was not
+// dirty at the cut (a slot evicted during an event may still be read by
+// that event's answer, so eviction does not recycle). Kept values count
+// against the budget until reused; over budget a part lets its own go
+// before any cached entry (resize).
 func (t *Table[V]) recycle(sl *Slot[V]) {
 	v := sl.Value
 	t.drop(sl)

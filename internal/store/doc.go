@@ -22,7 +22,11 @@
 // of its own while the caller goes on (see flight.go): dirty records are
 // encoded by that goroutine, or by the caller just before it changes one;
 // reads see the commit's writes while it is in flight; the next commit,
-// Sweep, Snapshot and Close wait for it ([Store.Settle]). Mark and Commits
+// Sweep, Snapshot and Close wait for it ([Store.Settle]). The cut touches
+// no record: it swaps lists and bumps a generation (handoff.go). Expiry
+// is swept by that goroutine too, at the store's sweep watermark, by a
+// rule both sides apply to a record's contents, so Get reports a removed
+// record absent from the cut on without being told (sweepflight.go). Mark and Commits
 // report the last commit that landed. A panic on that goroutine (Pebble
 // panics when the database is closed under a running commit, as the crash
 // tests do to abandon a store) becomes the store's sticky failure instead

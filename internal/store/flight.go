@@ -5,7 +5,6 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"math"
 	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
@@ -34,26 +33,30 @@ import (
 
 // flight is a commit being written.
 type flight struct {
-	done  chan error
-	mark  Mark
-	took  uint32 // entries of the pending batch the commit holds
-	spill *spill // the spill the commit took; reads see it until it lands
-	c     *collector
-	ahead aheadTimes // read ahead after the write (readahead.go)
+	done    chan error
+	mark    Mark
+	took    uint32 // entries of the pending batch the commit holds
+	spill   *spill // the spill the commit took; reads see it until it lands
+	c, sw   *collector
+	removed int // records the commit removed as expired (set before done)
+	// gone lists the removed records' entities by table name and part,
+	// for the caches to drop (see Table.queueSwept); set before done.
+	gone map[string][][]string
 }
 
 // freeze takes the writes of a commit and starts writing them. The store
-// must be settled. A w above math.MinInt64 sweeps at w in the same cut
-// (see SweepCommitAsync). mark gets the number of records the sweep
-// removed and returns the commit's Mark.
+// must be settled. A w above the sweep watermark raises it (see
+// sweepflight.go); every commit sweeps at the watermark. mark gets the
+// number of records the commit removed and returns its Mark; it runs on
+// the commit's goroutine.
 func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
-	// The collector and spill of the last landed commit are reused: a
+	// The collectors and spill of the last landed commit are reused: a
 	// commit's buffers run to megabytes, and allocating them anew while
 	// the GC marks makes the caller pay for marking in proportion.
-	c := s.spareC
-	s.spareC = nil
+	c, sw := s.spareC, s.spareSw
+	s.spareC, s.spareSw = nil, nil
 	if c == nil {
-		c = &collector{}
+		c, sw = &collector{}, &collector{}
 	}
 	took := s.pending.Count()
 	r := s.pending.Reader()
@@ -74,31 +77,18 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 			return s.fail(fmt.Errorf("state: unexpected %v in pending batch", kind))
 		}
 	}
-	cw := cutWriter{s, c}
-	removed, err := s.sweep(cw, w)
-	if err != nil {
-		return s.fail(fmt.Errorf("state: expiry sweep: %w", err))
-	}
 	for _, t := range s.tables {
-		n, err := t.freezeDirty(cw, w)
-		removed += n
-		if err != nil {
+		if _, err := t.freezeDirty(c, w); err != nil {
 			return s.fail(err)
 		}
 	}
-	gen := s.gen
-	s.gen++
-	// The spill last: the walks above staged their record deletions in it.
-	for k, e := range s.spill.m {
-		if e.del {
-			c.Delete([]byte(k), nil)
-		} else {
-			c.Set([]byte(k), e.val, nil)
-		}
+	if w > s.sweepW {
+		s.sweepW = w
 	}
-	m := mark(removed)
-	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
-	f := &flight{done: make(chan error, 1), mark: m, took: took, spill: s.spill, c: c}
+	gen, sweepW := s.gen, s.sweepW
+	s.gen++
+	clear(s.pendingFresh)
+	f := &flight{done: make(chan error, 1), took: took, spill: s.spill, c: c, sw: sw}
 	if sp := s.spareSpill; sp != nil {
 		s.spill, s.spareSpill = sp, nil
 	} else {
@@ -106,53 +96,51 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	}
 	s.flight, s.flightGen = f, gen
 	s.noteStaged()
-	n := len(c.ents)
-	for _, t := range s.tables {
-		n += t.frozenCount()
-	}
-	ingest := s.opts.IngestThreshold > 0 && n >= s.opts.IngestThreshold
 	seq := s.commits + 1
 	tables := slices.Clone(s.tables)
-	aheadW, peek := s.aheadW, s.peekFuncs()
-	s.aheadW = math.MinInt64
+	sweepers, parts := s.sweepTables()
 	go func() {
-		err := encodeAll(tables, c, gen)
-		if err == nil {
-			buf, _ := m.AppendBinary(nil)
-			c.Set(metaKey(metaMark), buf, nil)
-			err = s.write(c, ingest, seq)
-		}
-		if err == nil {
-			f.ahead = s.readAhead(aheadW, peek)
-		}
-		f.done <- err
+		f.done <- s.land(f, tables, gen, sweepW, sweepers, parts, mark, seq)
 	}()
 	return nil
 }
 
-// cutWriter is where a commit's cut writes. Record writes are staged in
-// the spill, so that reads see them while the commit is in flight (the
-// spill then goes to the commit whole). Expiry index writes go straight
-// into the commit: only a sweep reads the index, and the next one runs
-// after this commit landed. Staging them in the pending batch instead
-// inserted each into its skiplist on the caller's path.
-type cutWriter struct {
-	s *Store
-	c *collector
-}
-
-func (w cutWriter) Set(key, value []byte, _ *pebble.WriteOptions) error {
-	if len(key) > 0 && key[0] == tagRecord {
-		return staging{w.s}.Set(key, value, nil)
+// land is the commit's goroutine: it completes the commit's writes
+// (the spill, the frozen records, the sweep, the Mark) and writes them.
+func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers map[string]sweepTable, parts map[string]int, mark func(int) Mark, seq uint64) error {
+	c, sw := f.c, f.sw
+	// The spill before the frozen records, which are newer.
+	for k, e := range f.spill.m {
+		if e.del {
+			c.Delete([]byte(k), nil)
+		} else {
+			c.Set([]byte(k), e.val, nil)
+		}
 	}
-	return w.c.Set(key, value, nil)
-}
-
-func (w cutWriter) Delete(key []byte, _ *pebble.WriteOptions) error {
-	if len(key) > 0 && key[0] == tagRecord {
-		return staging{w.s}.Delete(key, nil)
+	gone := map[string][]string{}
+	removed, err := encodeAll(tables, c, gen, w, gone)
+	if err != nil {
+		return err
 	}
-	return w.c.Delete(key, nil)
+	if c.err != nil {
+		return c.err
+	}
+	cs := c.sorted()
+	n, err := s.sweepFlight(c, cs, sw, w, sweepers, gone)
+	if err != nil {
+		return fmt.Errorf("state: expiry sweep: %w", err)
+	}
+	removed += n
+	m := mark(removed)
+	m.Cursor, m.Extra = bytes.Clone(m.Cursor), bytes.Clone(m.Extra)
+	buf, _ := m.AppendBinary(nil)
+	sw.Set(metaKey(metaMark), buf, nil)
+	if sw.err != nil {
+		return sw.err
+	}
+	f.mark, f.removed, f.gone = m, removed, splitGone(gone, parts)
+	ingest := s.opts.IngestThreshold > 0 && len(cs)+len(sw.ents) >= s.opts.IngestThreshold
+	return s.write(c, cs, sw, ingest, seq)
 }
 
 // Settle waits for the commit in flight, if any, and reports its failure
@@ -178,10 +166,16 @@ func (s *Store) Settle() error {
 		return s.fail(err)
 	}
 	f.c.reset()
-	s.spareC = f.c
+	f.sw.reset()
+	s.spareC, s.spareSw = f.c, f.sw
 	f.spill.reset()
 	s.spareSpill = f.spill
-	s.ahead = f.ahead
+	s.swept += uint64(f.removed)
+	for _, t := range s.tables {
+		if q, ok := t.(sweptQueue); ok {
+			q.queueSwept(f.gone)
+		}
+	}
 	s.noteStaged()
 	return s.committed(f.mark)
 }
@@ -238,9 +232,10 @@ type fatalWrite struct{ err error }
 
 func (f fatalWrite) Error() string { return f.err.Error() }
 
-// write is the background half of a commit: it owns c and touches nothing
-// else of s but the database, the filesystem and the fixed options.
-func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
+// write is the background half of a commit: it owns c and sw and touches
+// nothing else of s but the database, the filesystem and the fixed
+// options. cs are c's writes sorted, one per key; sw's are newer.
+func (s *Store) write(c *collector, cs []entry, sw *collector, ingest bool, seq uint64) (err error) {
 	defer func() {
 		if r := recover(); r != nil {
 			// No panic may escape this goroutine: it would end the
@@ -253,23 +248,26 @@ func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
 			}
 		}
 	}()
-	if c.err != nil {
-		return c.err
-	}
 	if ingest {
-		return s.writeTable(c, seq)
+		return s.writeTable(c, cs, sw, seq)
 	}
-	// A plain (unindexed) batch, in write order: the last write of a key
-	// wins as it did in the pending batch.
+	// A plain (unindexed) batch: c's writes, then sw's in write order, so
+	// the last write of a key wins.
 	b := s.db.NewBatch()
 	defer b.Close()
-	for _, e := range c.ents {
+	put := func(c *collector, e entry) error {
 		if e.del() {
-			err = b.Delete(c.key(e), nil)
-		} else {
-			err = b.Set(c.key(e), c.val(e), nil)
+			return b.Delete(c.key(e), nil)
 		}
-		if err != nil {
+		return b.Set(c.key(e), c.val(e), nil)
+	}
+	for _, e := range cs {
+		if err := put(c, e); err != nil {
+			return err
+		}
+	}
+	for _, e := range sw.ents {
+		if err := put(sw, e); err != nil {
 			return err
 		}
 	}
@@ -279,10 +277,11 @@ func (s *Store) write(c *collector, ingest bool, seq uint64) (err error) {
 	return nil
 }
 
-// writeTable writes c as one sorted table and ingests it: for large
-// commits, several times cheaper than a batch through the memtable, and
-// as atomic and durable (one manifest edit).
-func (s *Store) writeTable(c *collector, seq uint64) error {
+// writeTable writes cs and sw's writes as one sorted table (sw's winning
+// a key both hold) and ingests it: for large commits, several times
+// cheaper than a batch through the memtable, and as atomic and durable
+// (one manifest edit).
+func (s *Store) writeTable(c *collector, cs []entry, sw *collector, seq uint64) error {
 	fs := s.opts.FS
 	path := fs.PathJoin(s.dirName(), fmt.Sprintf("commit-%06d.sst", seq))
 	f, err := fs.Create(path, vfs.WriteCategoryUnspecified)
@@ -290,11 +289,34 @@ func (s *Store) writeTable(c *collector, seq uint64) error {
 		return fmt.Errorf("state: commit table: %w", err)
 	}
 	w := sstable.NewWriter(objstorageprovider.NewFileWritable(f), s.popts.MakeWriterOptions(0, s.db.TableFormat()))
-	for _, e := range c.sorted() {
+	ss := sw.sorted()
+	i, j := 0, 0
+	for i < len(cs) || j < len(ss) {
+		from, e := c, entry{}
+		switch {
+		case j == len(ss):
+			e = cs[i]
+			i++
+		case i == len(cs):
+			from, e = sw, ss[j]
+			j++
+		default:
+			switch r := bytes.Compare(c.key(cs[i]), sw.key(ss[j])); {
+			case r < 0:
+				e = cs[i]
+				i++
+			case r == 0:
+				i++
+				fallthrough
+			default:
+				from, e = sw, ss[j]
+				j++
+			}
+		}
 		if e.del() {
-			err = w.Delete(c.key(e))
+			err = w.Delete(from.key(e))
 		} else {
-			err = w.Set(c.key(e), c.val(e))
+			err = w.Set(from.key(e), from.val(e))
 		}
 		if err != nil {
 			w.Close()

@@ -10,9 +10,10 @@ import (
 // hands the dirty list over: every slot on it whose dirtyIn is the frozen
 // generation (Store.flightGen) is frozen, with no write to the slot. The
 // commit's goroutine then encodes each frozen slot and moves its expiry
-// index entry; the caller, before it can change a frozen slot (every
-// change starts with Get, and eviction reads the value too), does both
-// itself first. The slot's hand decides who does it, so the value is
+// index entry (or deletes both, for a record the sweep watermark
+// expired); the caller, before it can change a frozen slot (every change
+// starts with Get, and eviction reads the value too), does that itself
+// first. The slot's hand decides who does it, so the value is
 // never read by one side while the other changes it:
 //
 //	older generation --CAS by either side--> busy(F) --> done(F)
@@ -27,17 +28,22 @@ import (
 func handBusy(gen uint64) int32 { return int32(gen << 1) }
 func handDone(gen uint64) int32 { return int32(gen<<1 | 1) }
 
-// claimedBytes is what the caller made of a frozen slot: its bytes and the
+// claimedBytes is what the caller made of a frozen slot: its bytes (or,
+// for a record the cut's sweep watermark expired, its deletion) and the
 // index move (from old to bucket) the commit must write.
 type claimedBytes struct {
 	b           []byte
 	err         error
+	del         bool
 	old, bucket int64
 }
 
 // claim makes sure the commit in flight has sl's bytes and index move
 // before the caller changes sl, making them here if the commit's
-// goroutine has not. sl must be frozen (dirtyIn == flightGen).
+// goroutine has not. sl must be frozen (dirtyIn == flightGen). Both sides
+// judge a frozen record by the same rule (swept): once claim returns,
+// sl.indexed is its bucket, and a record the commit deletes reads as
+// swept away (see Get).
 func (t *Table[V]) claim(sl *Slot[V]) {
 	f := t.store.flightGen
 	busy, done := handBusy(f), handDone(f)
@@ -50,9 +56,12 @@ func (t *Table[V]) claim(sl *Slot[V]) {
 			runtime.Gosched()
 		default:
 			if sl.hand.CompareAndSwap(h, busy) {
-				b, err := sl.Value.AppendBinary(nil)
-				cb := &claimedBytes{b: b, err: err, old: sl.indexed, bucket: t.bucket(sl.Value.LastTime())}
-				sl.indexed = cb.bucket
+				nb := t.bucket(sl.Value.LastTime())
+				cb := &claimedBytes{old: sl.indexed, bucket: nb, del: swept(nb, t.store.sweepW)}
+				if !cb.del {
+					cb.b, cb.err = sl.Value.AppendBinary(nil)
+				}
+				sl.indexed = nb
 				sl.claimed = cb
 				sl.hand.Store(done)
 				return
@@ -61,35 +70,27 @@ func (t *Table[V]) claim(sl *Slot[V]) {
 	}
 }
 
-// freezeDirty is the caller's half of a cut at watermark w: it hands the
-// dirty list to the commit (encodeFrozen), removing (in b) the dirty
-// records already expired as of w, as expireDirty would; it returns how
-// many. The walk over the list that finds them runs only when Touch saw a
-// time that could be expired by w (dirtyLow), which a cut close behind
-// the newest events does not: otherwise the cut touches no slot.
-func (t *Table[V]) freezeDirty(b writer, w int64) (removed int, err error) {
-	if t.expiredLow(t.dirtyLow, w) {
-		for _, sl := range t.dirty {
-			if !t.isDirty(sl) || !t.expiredAt(sl, w) {
-				continue
-			}
-			if err := t.removeExpired(b, sl); err != nil {
-				return removed, err
-			}
-			removed++
-		}
-	}
+// swept reports whether a record in expiry bucket b is removed by a sweep
+// at watermark w: every commit sweeps at the store's sweep watermark, and
+// judges a record by its own bucket (its expiry rounded up), so that
+// which records a commit removes follows from their contents alone.
+func swept(b, w int64) bool { return b != 0 && b <= w }
+
+// freezeDirty is the caller's half of a cut: it hands the dirty list to
+// the commit (encodeFrozen) without touching a slot.
+func (t *Table[V]) freezeDirty(writer, int64) (int, error) {
 	// The commit's goroutine emptied t.frozen when it was done with it.
 	t.frozen, t.dirty = t.dirty, t.frozen[:0]
-	t.dirtyLow = maxTime
-	return removed, nil
+	return 0, nil
 }
 
 // encodeFrozen is the commit goroutine's half: it adds every frozen slot's
-// record and index move to c, then empties t.frozen. It reads only t's
-// fixed fields, t.frozen and the slots it wins the hand of (or their
-// claimed, once the caller is done).
-func (t *Table[V]) encodeFrozen(c *collector, gen uint64) error {
+// record and index move to c, or, for a record swept at w, its deletion
+// (noting its key in gone), then empties t.frozen. It returns how many
+// records it deleted. It reads
+// only t's fixed fields, t.frozen and the slots it wins the hand of (or
+// their claimed, once the caller is done).
+func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error) {
 	busy, done := handBusy(gen), handDone(gen)
 	var key, val []byte
 	defer func() {
@@ -103,41 +104,47 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64) error {
 				break
 			}
 		}
+		var cb claimedBytes
 		if won {
 			if sl.dirtyIn != gen {
-				// Staged by an eviction or removed before the cut.
+				// Staged by an eviction before the cut.
 				sl.hand.Store(done)
 				continue
 			}
-			var err error
-			val, err = sl.Value.AppendBinary(val[:0])
-			old, nb := sl.indexed, t.bucket(sl.Value.LastTime())
-			sl.indexed = nb
-			sl.hand.Store(done)
-			key = RecordKey(key[:0], t.name, sl.Key)
-			if err != nil {
-				return fmt.Errorf("state: encode %q: %w", key, err)
+			cb.old, cb.bucket = sl.indexed, t.bucket(sl.Value.LastTime())
+			cb.del = swept(cb.bucket, w)
+			if !cb.del {
+				val, cb.err = sl.Value.AppendBinary(val[:0])
+				cb.b = val
 			}
-			c.Set(key, val, nil)
-			key = t.moveEntry(c, key[:0], sl.Key, old, nb)
-			continue
+			sl.indexed = cb.bucket
+			sl.hand.Store(done)
+		} else {
+			for sl.hand.Load() == busy {
+				runtime.Gosched()
+			}
+			p := sl.claimed
+			if p == nil {
+				continue // a slot listed twice: taken the first time
+			}
+			sl.claimed = nil // the caller leaves it alone until the next cut
+			cb = *p
 		}
-		for sl.hand.Load() == busy {
-			runtime.Gosched()
-		}
-		cb := sl.claimed
-		if cb == nil {
-			continue // not frozen after all (evicted before the cut)
-		}
-		sl.claimed = nil // the caller leaves it alone until the next cut
 		key = RecordKey(key[:0], t.name, sl.Key)
 		if cb.err != nil {
-			return fmt.Errorf("state: encode %q: %w", key, cb.err)
+			return removed, fmt.Errorf("state: encode %q: %w", key, cb.err)
+		}
+		if cb.del {
+			c.Delete(key, nil)
+			key = t.moveEntry(c, key[:0], sl.Key, cb.old, 0)
+			gone[t.name] = append(gone[t.name], sl.Key)
+			removed++
+			continue
 		}
 		c.Set(key, cb.b, nil)
 		key = t.moveEntry(c, key[:0], sl.Key, cb.old, cb.bucket)
 	}
-	return nil
+	return removed, nil
 }
 
 // moveEntry writes to c the move of entity's expiry index entry from
@@ -158,11 +165,13 @@ func (t *Table[V]) moveEntry(c *collector, buf []byte, entity string, old, nb in
 }
 
 // encodeAll runs encodeFrozen over every table.
-func encodeAll(tables []flusher, c *collector, gen uint64) error {
+func encodeAll(tables []flusher, c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error) {
 	for _, t := range tables {
-		if err := t.encodeFrozen(c, gen); err != nil {
-			return err
+		n, err := t.encodeFrozen(c, gen, w, gone)
+		removed += n
+		if err != nil {
+			return removed, err
 		}
 	}
-	return nil
+	return removed, nil
 }

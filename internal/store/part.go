@@ -71,7 +71,9 @@ func (f *partFlusher) freezeDirty(b writer, _ int64) (int, error) {
 	return 0, nil
 }
 
-func (f *partFlusher) encodeFrozen(*collector, uint64) error { return nil }
+func (f *partFlusher) encodeFrozen(*collector, uint64, int64, map[string][]string) (int, error) {
+	return 0, nil
+}
 
 // frozenCount is 0: the part's writes are already in the collector, where
 // the ingest threshold counts them.

@@ -44,6 +44,7 @@ func NewParts[V Value](s *Store, name string, ttl int64, decode func(b []byte) (
 		t := NewTable(s, name, ttl, decode)
 		t.PeekLast = peekLast
 		t.parts = parts
+		t.part = i
 		parts[i] = t
 	}
 	return parts

@@ -30,8 +30,9 @@ const (
 
 const metaSalt = "salt"
 
-// SweepLimit bounds the expiry index entries one commit examines, so a
-// commit's cost stays proportional to the work since the last one.
+// SweepLimit bounds the expiry index entries one Store.Sweep examines, so
+// its cost stays proportional to the work since the last one. A commit's
+// own sweep has no limit (see sweepflight.go).
 const SweepLimit = 100_000
 
 func expiryKey(dst []byte, bucket int64, table, entity string) []byte {
@@ -81,9 +82,6 @@ type expirer interface {
 // later commit, so the live count would lag by a commit interval.
 func (t *Table[V]) expireDirty(b writer, w int64) (int, error) {
 	n := 0
-	if !t.expiredLow(t.dirtyLow, w) {
-		return 0, nil
-	}
 	for _, sl := range t.dirty {
 		if !t.isDirty(sl) || !t.expiredAt(sl, w) {
 			continue
@@ -98,16 +96,7 @@ func (t *Table[V]) expireDirty(b writer, w int64) (int, error) {
 
 // expiredAt reports whether sl's record is expired as of watermark w.
 func (t *Table[V]) expiredAt(sl *Slot[V], w int64) bool {
-	return t.expiredLow(sl.Value.LastTime(), w)
-}
-
-// maxTime is dirtyLow when no slot is dirty.
-const maxTime = math.MaxInt64
-
-// expiredLow reports whether a record last updated at last is expired as
-// of watermark w.
-func (t *Table[V]) expiredLow(last, w int64) bool {
-	return t.ttl > 0 && w != math.MinInt64 && last != maxTime && sat.Add(last, t.ttl) <= w
+	return t.ttl > 0 && w != math.MinInt64 && sat.Add(sl.Value.LastTime(), t.ttl) <= w
 }
 
 // removeExpired drops the cached, expired sl and writes the deletion of
@@ -194,13 +183,9 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 	if found {
 		last = sl.Value.LastTime()
 	} else if !t.knownAbsent {
-		t.keybuf = RecordKey(t.keybuf[:0], t.name, entity)
-		var ok bool
-		if last, found, ok = t.store.aheadLast(t.keybuf); !ok {
-			var err error
-			if last, found, err = t.loadLast(entity); err != nil {
-				return false, err
-			}
+		var err error
+		if last, found, err = t.loadLast(entity); err != nil {
+			return false, err
 		}
 	}
 	if err := b.Delete(indexKey, nil); err != nil {
@@ -234,7 +219,7 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 // set.
 func (t *Table[V]) loadLast(entity string) (last int64, found bool, err error) {
 	if t.PeekLast == nil {
-		v, found, err := t.load(entity)
+		v, found, _, err := t.load(entity)
 		if err != nil || !found {
 			return 0, found, err
 		}
@@ -351,6 +336,7 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 		if err != nil {
 			return t.store.fail(err)
 		}
+		t.store.pendingFresh[string(e.k)] = struct{}{}
 	}
 	return nil
 }

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"fmt"
 	"maps"
+	"math"
 	"math/rand/v2"
 	"testing"
 
@@ -59,16 +60,14 @@ func checkIndex(t *testing.T, db *pebble.DB, table string, ttl int64) {
 // committed records equal the model and the index is exact.
 func TestExpiryMatchesModel(t *testing.T) {
 	t.Parallel()
-	// ahead: each commit reads ahead at its sweep's watermark (the next
-	// sweep may be lower or higher): removals must not change, and the
-	// sweeps must use the read-ahead times.
-	// cut: the sweep and the commit are one cut (SweepCommitAsync), and
-	// new records reuse the values it removed. big: the cache never
-	// evicts, so the table knows that what it does not cache is absent
-	// and its sweep reads nothing.
-	cases := []struct{ peek, ahead, cut, big bool }{
-		{false, false, false, false}, {true, false, false, false}, {true, true, false, false},
-		{true, true, true, false}, {true, true, true, true}, {false, false, false, true},
+	// cut: the sweep runs in the commit (SweepCommitAsync) at the sweep
+	// watermark, the highest w so far since the store opened, and removes
+	// every record whose bucket is at or below it, dirty or not; new
+	// records reuse the values Get drops. big: the cache never evicts,
+	// so the table knows that what it does not cache is absent.
+	cases := []struct{ peek, cut, big bool }{
+		{false, false, false}, {true, false, false}, {true, true, false},
+		{false, true, false}, {true, true, true}, {false, false, true},
 	}
 	for _, c := range cases {
 		peek := c.peek
@@ -76,7 +75,7 @@ func TestExpiryMatchesModel(t *testing.T) {
 		if c.big {
 			cacheBytes = 1 << 30
 		}
-		t.Run(fmt.Sprintf("peek=%v/ahead=%v/cut=%v/big=%v", peek, c.ahead, c.cut, c.big), func(t *testing.T) {
+		t.Run(fmt.Sprintf("peek=%v/cut=%v/big=%v", peek, c.cut, c.big), func(t *testing.T) {
 			const ttl = 1600
 			r := rand.New(rand.NewPCG(11, 12))
 			fs := vfs.NewMem()
@@ -96,8 +95,8 @@ func TestExpiryMatchesModel(t *testing.T) {
 			}
 			model := map[string]rec{}
 			clock := int64(0)
-			removedTotal := 0
-			var aheadUsed uint64
+			removedTotal, sinceOpen := 0, 0
+			sweepW := int64(math.MinInt64)
 			for step := range steps {
 				for range 40 {
 					k := fmt.Sprintf("u%03d", r.IntN(300))
@@ -126,10 +125,15 @@ func TestExpiryMatchesModel(t *testing.T) {
 					model[k] = recOf(sl.Value)
 				}
 				w := clock - 300 - r.Int64N(1500)
+				sweepW = max(sweepW, w)
 				var expect []string
 				for k, v := range model {
 					sl := tb.m[k]
 					switch {
+					case c.cut:
+						if roundUp(v.Last+ttl, ttl/16) <= sweepW {
+							expect = append(expect, k)
+						}
 					case sl != nil && tb.isDirty(sl):
 						if v.Last+ttl <= w {
 							expect = append(expect, k)
@@ -141,9 +145,6 @@ func TestExpiryMatchesModel(t *testing.T) {
 				var n int
 				var err error
 				if c.cut {
-					if c.ahead {
-						s.SweepAhead(w)
-					}
 					err = s.SweepCommitAsync(w, func(removed int) Mark {
 						n = removed
 						return Mark{Seen: uint64(step), Watermark: w}
@@ -164,11 +165,20 @@ func TestExpiryMatchesModel(t *testing.T) {
 					delete(model, k)
 				}
 				removedTotal += n
-				if c.ahead && !c.cut {
-					s.SweepAhead(w)
+				sinceOpen += n
+				if c.cut && s.Swept() != uint64(sinceOpen) {
+					t.Fatalf("step %d: Swept() = %d, removed %d since open", step, s.Swept(), sinceOpen)
 				}
-				aheadUsed += s.aheadUsed
-				s.aheadUsed = 0
+				if c.cut {
+					// Every removed record the cache held was queued for it
+					// to drop.
+					s.DropSwept()
+					for k, sl := range tb.m {
+						if !tb.isDirty(sl) && tb.sweptAway(sl.indexed) {
+							t.Fatalf("step %d: %s, removed, still cached after DropSwept", step, k)
+						}
+					}
+				}
 				if !c.cut {
 					if err := s.Commit(Mark{Seen: uint64(step), Watermark: w}); err != nil {
 						t.Fatal(err)
@@ -185,15 +195,12 @@ func TestExpiryMatchesModel(t *testing.T) {
 					s.Close()
 					s = mustOpen(t, Options{FS: fs, CacheBytes: cacheBytes})
 					tb = open()
+					sweepW, sinceOpen = math.MinInt64, 0
 				}
 			}
 			if removedTotal < 100 {
 				t.Fatalf("only %d records expired; the run does not exercise expiry", removedTotal)
 			}
-			if c.ahead != (aheadUsed > 0) {
-				t.Fatalf("sweeps used %d read-ahead times", aheadUsed)
-			}
-			t.Logf("%d removed; %d records judged by read-ahead times", removedTotal, aheadUsed)
 		})
 	}
 }
@@ -497,5 +504,48 @@ func TestRewrite(t *testing.T) {
 	}
 	if got := storedRecords(t, s.DB(), "t2"); len(got) != 60 {
 		t.Fatalf("other table changed: %d records", len(got))
+	}
+}
+
+// TestSweptRecordsLeaveTheCache: records a commit removes are reported
+// absent by Get from the cut on, and leave the caches of every table once
+// the commit landed and DropSwept ran, with tables of different names
+// swept in one commit (their entries interleave in the index).
+func TestSweptRecordsLeaveTheCache(t *testing.T) {
+	s := mustOpen(t, Options{FS: vfs.NewMem(), CacheBytes: 1 << 30})
+	defer s.Close()
+	const ttl = 1600
+	tables := []*Table[*tv]{NewTable(s, "account", ttl, decodeTV), NewTable(s, "device", ttl, decodeTV)}
+	for i := range 500 {
+		for j, tb := range tables {
+			tb.Insert(fmt.Sprintf("k%03d", i), rec{Last: int64(i + j), N: 1}.value())
+		}
+	}
+	if err := s.Commit(Mark{Seen: 1}); err != nil {
+		t.Fatal(err)
+	}
+	var removed int
+	if err := s.SweepCommitAsync(10_000, func(n int) Mark { removed = n; return Mark{Seen: 2} }); err != nil {
+		t.Fatal(err)
+	}
+	for _, tb := range tables {
+		if sl, err := tb.Get("k007"); err != nil || sl != nil {
+			t.Fatalf("%s: Get of a swept record during the commit = %v, %v", tb.name, sl, err)
+		}
+	}
+	if err := s.Settle(); err != nil {
+		t.Fatal(err)
+	}
+	s.DropSwept()
+	if removed != 1000 || s.Swept() != 1000 {
+		t.Fatalf("removed %d, Swept %d, want 1000", removed, s.Swept())
+	}
+	for _, tb := range tables {
+		if tb.Len() != 0 {
+			t.Fatalf("%s: %d records still cached", tb.name, tb.Len())
+		}
+	}
+	if got := storedRecords(t, s.DB(), "account"); len(got) != 0 {
+		t.Fatalf("%d records stored", len(got))
 	}
 }

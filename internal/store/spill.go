@@ -126,28 +126,30 @@ func (s *Store) spillToPending() error {
 		if err != nil {
 			return s.fail(err)
 		}
+		s.pendingFresh[k] = struct{}{}
 	}
 	s.pendingRecords = true
 	s.spill = newSpill()
 	return nil
 }
 
-// lookupStaged finds the newest staged write of a record key: the spill,
-// then the spill of the commit in flight. found false: look further.
+// lookupStaged finds the newest staged write of a record key: the spill
+// (cur: written since the last cut), then the spill of the commit in
+// flight. found false: look further.
 //
 // The returned value stays valid after the lock is released: spilled
 // values live in arena chunks that are only appended to until a commit
 // (when no part is in use) resets them.
-func (s *Store) lookupStaged(key []byte) (v []byte, del, found bool) {
+func (s *Store) lookupStaged(key []byte) (v []byte, del, cur, found bool) {
 	s.stageMu.Lock()
 	defer s.stageMu.Unlock()
 	if v, del, ok := s.spill.get(key); ok {
-		return v, del, true
+		return v, del, true, true
 	}
 	if s.flight != nil {
 		if v, del, ok := s.flight.spill.get(key); ok {
-			return v, del, true
+			return v, del, false, true
 		}
 	}
-	return nil, false, false
+	return nil, false, false, false
 }

@@ -248,6 +248,7 @@ type Store struct {
 	flight  *flight       // the commit being written, if any
 	// Buffers of the last landed commit, reused by the next (see freeze).
 	spareC     *collector
+	spareSw    *collector
 	spareSpill *spill
 	// pendingRecords: the pending batch may hold record keys (see spill).
 	pendingRecords bool
@@ -271,13 +272,14 @@ type Store struct {
 	stageMu sync.Mutex
 	// staged caches pendingBytes for the parts' eviction loops.
 	staged atomic.Int64
-	// aheadW is the watermark the next commit reads ahead at; ahead the
-	// times the last landed commit read (see readahead.go).
-	aheadW     int64
-	prevAheadW int64
-	ahead      aheadTimes
-	aheadUsed  uint64 // sweeps' uses of read-ahead times, for tests
-	closed     bool
+	// sweepW is the sweep watermark (see sweepflight.go); swept counts
+	// the records landed commits removed as expired.
+	sweepW int64
+	swept  uint64
+	// pendingFresh holds the record keys written to the pending batch
+	// since the last cut (definition changes): no commit judged them yet.
+	pendingFresh map[string]struct{}
+	closed       bool
 	// abandoned: Pebble failed fatally inside a call; the database is
 	// never touched again (Close releases the lock, not the database).
 	abandoned bool
@@ -295,7 +297,7 @@ type Store struct {
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
 	freezeDirty(b writer, w int64) (removed int, err error)
-	encodeFrozen(c *collector, gen uint64) error
+	encodeFrozen(c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error)
 	frozenCount() int
 }
 
@@ -350,7 +352,7 @@ func Open(opts Options) (_ *Store, err error) {
 		cache.Unref()
 		return nil, err
 	}
-	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes}, gen: 1, aheadW: math.MinInt64, prevAheadW: math.MinInt64,
+	s := &Store{opts: opts, popts: popts, dir: dir, fs: fs, lock: in.lock, log: log, budget: &budget{limit: opts.CacheBytes}, gen: 1, sweepW: math.MinInt64, pendingFresh: map[string]struct{}{},
 		notices: in.notices, rollback: in.rollback}
 	defer func() {
 		if err != nil {
@@ -511,18 +513,27 @@ func (s *Store) fail(err error) error {
 // getRaw looks key up in the pending batch and the database and passes the
 // value to fn, which must not retain it.
 func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err error) {
+	found, _, err = s.getRecord(key, fn)
+	return found, err
+}
+
+// getRecord is getRaw that also reports, for a record key, whether the
+// value was written since the last cut (the current spill, or a record a
+// definition change put in the pending batch): no commit's sweep has
+// judged such a record yet (see sweepflight.go).
+func (s *Store) getRecord(key []byte, fn func(v []byte) error) (found, fresh bool, err error) {
 	defer s.guard(&err)
 	var v []byte
 	var closer io.Closer
 	if key[0] == tagRecord {
-		if sv, del, ok := s.lookupStaged(key); ok {
+		if sv, del, cur, ok := s.lookupStaged(key); ok {
 			if del {
-				return false, nil
+				return false, cur, nil
 			}
 			if err := fn(sv); err != nil {
-				return true, fmt.Errorf("state: key %q: %w", key, err)
+				return true, cur, fmt.Errorf("state: key %q: %w", key, err)
 			}
-			return true, nil
+			return true, cur, nil
 		}
 	}
 	// Parts evicting concurrently write the pending batch (see parts.go):
@@ -533,6 +544,9 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 	} else {
 		s.stageMu.Lock()
 		defer s.stageMu.Unlock()
+		if key[0] == tagRecord {
+			_, fresh = s.pendingFresh[string(key)]
+		}
 		if s.pending.Empty() {
 			v, closer, err = s.db.Get(key)
 		} else {
@@ -540,20 +554,20 @@ func (s *Store) getRaw(key []byte, fn func(v []byte) error) (found bool, err err
 		}
 	}
 	if errors.Is(err, pebble.ErrNotFound) {
-		return false, nil
+		return false, fresh, nil
 	}
 	if err != nil {
 		if pebble.IsCorruptionError(err) {
 			err = fmt.Errorf("%w: %w", ErrDamaged, err)
 		}
-		return false, s.fail(fmt.Errorf("state: get %q: %w", key, err))
+		return false, fresh, s.fail(fmt.Errorf("state: get %q: %w", key, err))
 	}
 	err = fn(v)
 	closer.Close()
 	if err != nil {
-		return true, fmt.Errorf("state: key %q: %w", key, err)
+		return true, fresh, fmt.Errorf("state: key %q: %w", key, err)
 	}
-	return true, nil
+	return true, fresh, nil
 }
 
 // empty reports whether no key with prefix exists (an error counts as not
@@ -621,7 +635,11 @@ func (s *Store) Commit(m Mark) error {
 	if err := s.CommitAsync(m); err != nil {
 		return err
 	}
-	return s.Settle()
+	if err := s.Settle(); err != nil {
+		return err
+	}
+	s.DropSwept()
+	return nil
 }
 
 // CommitAsync is Commit that returns once the commit's writes are taken
@@ -634,12 +652,13 @@ func (s *Store) CommitAsync(m Mark) error {
 	return s.SweepCommitAsync(math.MinInt64, func(int) Mark { return m })
 }
 
-// SweepCommitAsync is Sweep(w) followed by CommitAsync, cut at once (w =
-// math.MinInt64 sweeps nothing): mark
-// gets the number of records the sweep removed and returns the Mark to
-// commit. It does less on the caller's path than the two calls: the
-// sweep's index writes go straight into the commit, and the dirty records
-// expired as of w are found in the walk that freezes the others.
+// SweepCommitAsync is CommitAsync that first raises the store's sweep
+// watermark to w (w = math.MinInt64 leaves it). Every commit removes, on
+// its goroutine, the records expired as of the sweep watermark (see
+// sweepflight.go); Get reports them absent from the cut on. mark gets the
+// number of records the commit removes and returns the Mark to commit: it
+// runs on the commit's goroutine, so it must only read what it captured.
+// Swept counts the removals once the commit landed.
 func (s *Store) SweepCommitAsync(w int64, mark func(removed int) Mark) (err error) {
 	defer s.guard(&err)
 	if err := s.Settle(); err != nil {
@@ -813,6 +832,11 @@ func (s *Store) Compact() (err error) {
 // DB exposes the underlying database for maintenance (compaction, raw
 // scans in tests, checkpoints). Writing to it bypasses the commit protocol.
 func (s *Store) DB() *pebble.DB { return s.db }
+
+// Swept returns the number of records the commits landed since Open
+// removed as expired (each commit's Mark was fixed, by its mark function,
+// with its own count).
+func (s *Store) Swept() uint64 { return s.swept }
 
 // Commits returns the number of successful commits since Open.
 func (s *Store) Commits() uint64 { return s.commits }
