@@ -155,6 +155,10 @@ func (t *Table[V]) dropAllSwept() { t.dropSwept(len(t.dropQ)) }
 // Pebble, so a record they write is judged by their bytes. It returns how
 // many records it removed, and notes their entities in gone. It reads
 // only Pebble, c's arena and tables.
+//
+// The due entries are gathered first and their records judged in key
+// order: Pebble then seeks forward through the records, and a record
+// named by two due entries (one stale) comes up twice in a row.
 func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, tables map[string]sweepTable, gone map[string][]string) (removed int, err error) {
 	if w == math.MinInt64 {
 		return 0, nil
@@ -174,20 +178,11 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		return 0, err
 	}
 	defer it.Close()
-	// One iterator over the records, sought once per entry: a point Get
-	// builds iterators over the files it reads each time.
-	recs, err := s.db.NewIter(&pebble.IterOptions{LowerBound: []byte{tagRecord}, UpperBound: []byte{tagRecord + 1}})
-	if err != nil {
-		return 0, err
-	}
-	defer recs.Close()
-	var key, rk, ek []byte
-	// Records removed: a stale entry of one may come up after its own.
-	done := map[string]bool{}
-	var names arena // gone's entities: they outlive sw's arena
+	// The due entries, in key order, the commit's own writes winning.
+	var due collector // keys: the entry's record key, then the entry
+	var key, rk []byte
 	ok := it.First()
 	for ok || i < end {
-		// The next entry in key order, the commit's own write winning.
 		var del bool
 		switch {
 		case !ok:
@@ -213,21 +208,38 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		if del {
 			continue
 		}
-		bucket, table, entity, err := parseExpiryKey(key)
+		_, table, entity, err := parseExpiryKey(key)
 		if err != nil {
 			return removed, err
 		}
-		st, known := tables[table]
 		sw.Delete(key, nil)
-		if !known {
+		if _, known := tables[table]; !known {
 			// A table no longer defined: its records went with the
 			// definition reset that removed it; the entry is stale.
 			continue
 		}
 		rk = RecordKey(rk[:0], table, entity)
-		if done[string(rk)] {
-			continue
+		due.Set(rk, key, nil)
+	}
+	if err := it.Error(); err != nil {
+		return removed, err
+	}
+	slices.SortFunc(due.ents, func(a, b entry) int { return bytes.Compare(due.key(a), due.key(b)) })
+
+	// One iterator over the records, sought forward once per record.
+	recs, err := s.db.NewIter(&pebble.IterOptions{LowerBound: []byte{tagRecord}, UpperBound: []byte{tagRecord + 1}})
+	if err != nil {
+		return removed, err
+	}
+	defer recs.Close()
+	var ek []byte
+	for n, d := range due.ents {
+		rk := due.key(d)
+		if n > 0 && bytes.Equal(due.key(due.ents[n-1]), rk) {
+			continue // judged with its other entry
 		}
+		bucket, table, entity, _ := parseExpiryKey(due.val(d))
+		st := tables[table]
 		var val []byte
 		if j, found := find(rk); found {
 			if cs[j].del() {
@@ -259,16 +271,12 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		}
 		sw.Delete(rk, nil)
 		removed++
-		// The key as sw holds it: a view, no copy.
-		done[viewString(sw.key(sw.ents[len(sw.ents)-1]))] = true
-		gone[st.name] = append(gone[st.name], viewString(names.keep([]byte(entity))))
+		gone[st.name] = append(gone[st.name], entity)
 		if nb != bucket {
+			// Its own entry, if not due with this one.
 			ek = expiryKey(ek[:0], nb, table, entity)
 			sw.Delete(ek, nil)
 		}
-	}
-	if err := it.Error(); err != nil {
-		return removed, err
 	}
 	return removed, nil
 }
