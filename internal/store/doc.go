@@ -88,7 +88,11 @@
 //	0x06 part        0x06 | uvarint len(part) | part | part key -> part value (see part.go)
 //
 // Values under 0x03 are the caller's versioned encodings. The Mark under
-// meta name "mark" is encoded as documented on [Mark.AppendBinary].
+// meta name "mark" is encoded as documented on [Mark.AppendBinary]; meta
+// "salt" holds the tombstone salt (32 bytes); meta "exact-index" (empty)
+// marks a store created by code that keeps each stored record's expiry
+// entry in its own bucket, whose sweeps then remove records without
+// reading them (an older store's do read).
 //
 // # Costs
 //

@@ -30,6 +30,10 @@ const (
 
 const metaSalt = "salt"
 
+// metaExactIndex (empty value) marks a store created by code that keeps
+// every stored record's expiry index entry in the record's own bucket.
+const metaExactIndex = "exact-index"
+
 // SweepLimit bounds the expiry index entries one Store.Sweep examines, so
 // its cost stays proportional to the work since the last one. A commit's
 // own sweep has no limit (see sweepflight.go).
@@ -301,7 +305,12 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 	if err != nil {
 		return t.store.fail(err)
 	}
-	type kv struct{ k, v []byte }
+	// kv is a changed record and the expiry buckets of its old and new
+	// value (0: none), whose index entry moves with it.
+	type kv struct {
+		k, v   []byte
+		ob, nb int64
+	}
 	var out []kv
 	for ok := it.First(); ok; ok = it.Next() {
 		entity := string(it.Key()[len(lower):])
@@ -311,7 +320,15 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 			return fmt.Errorf("state: key %q: %w", it.Key(), err)
 		}
 		if nv == nil || !bytes.Equal(nv, it.Value()) {
-			out = append(out, kv{bytes.Clone(it.Key()), bytes.Clone(nv)})
+			e := kv{k: bytes.Clone(it.Key()), v: bytes.Clone(nv)}
+			if e.ob, err = t.valueBucket(it.Value()); err == nil && nv != nil {
+				e.nb, err = t.valueBucket(nv)
+			}
+			if err != nil {
+				it.Close()
+				return fmt.Errorf("state: key %q: %w", it.Key(), err)
+			}
+			out = append(out, e)
 		}
 	}
 	if err := it.Close(); err != nil {
@@ -333,12 +350,45 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 		} else {
 			err = b.Set(e.k, e.v, nil)
 		}
+		if err == nil && e.ob != e.nb {
+			// Every stored record's index entry is in its own bucket
+			// (the commit's sweep relies on it: sweepflight.go).
+			entity := string(e.k[len(lower):])
+			if e.ob != 0 {
+				err = b.Delete(expiryKey(nil, e.ob, t.name, entity), nil)
+			}
+			if err == nil && e.nb != 0 {
+				err = b.Set(expiryKey(nil, e.nb, t.name, entity), nil, nil)
+			}
+		}
 		if err != nil {
 			return t.store.fail(err)
 		}
 		t.store.pendingFresh[string(e.k)] = struct{}{}
 	}
 	return nil
+}
+
+// valueBucket returns the expiry bucket of a stored record (0 when the
+// table keeps records forever).
+func (t *Table[V]) valueBucket(val []byte) (int64, error) {
+	if t.ttl <= 0 {
+		return 0, nil
+	}
+	var last int64
+	if t.PeekLast != nil {
+		var err error
+		if last, err = t.PeekLast(val); err != nil {
+			return 0, fmt.Errorf("%w: %w", ErrCorrupt, err)
+		}
+	} else {
+		v, err := t.decode(val)
+		if err != nil {
+			return 0, fmt.Errorf("%w: %w", ErrCorrupt, err)
+		}
+		last = v.LastTime()
+	}
+	return t.bucket(last), nil
 }
 
 // prefixEnd returns the smallest key greater than every key with prefix p.

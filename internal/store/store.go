@@ -273,9 +273,13 @@ type Store struct {
 	// staged caches pendingBytes for the parts' eviction loops.
 	staged atomic.Int64
 	// sweepW is the sweep watermark (see sweepflight.go); swept counts
-	// the records landed commits removed as expired.
-	sweepW int64
-	swept  uint64
+	// the records landed commits removed as expired. exactIndex: the
+	// store was created by code that keeps every stored record's index
+	// entry in its own bucket (meta "exact-index"), so the sweep need not
+	// read the records it removes.
+	exactIndex bool
+	sweepW     int64
+	swept      uint64
 	// pendingFresh holds the record keys written to the pending batch
 	// since the last cut (definition changes): no commit judged them yet.
 	pendingFresh map[string]struct{}
@@ -383,6 +387,16 @@ func Open(opts Options) (_ *Store, err error) {
 		if err := s.Damaged(fmt.Sprintf("%s, though the first commit wrote both", what)); err != nil {
 			return nil, err
 		}
+	}
+	if s.exactIndex, err = s.getRaw(metaKey(metaExactIndex), func([]byte) error { return nil }); err != nil {
+		return nil, err
+	}
+	if !found && !s.exactIndex && !opts.ReadOnly {
+		// A new store: its first commit marks it.
+		if err := s.pending.Set(metaKey(metaExactIndex), nil, nil); err != nil {
+			return nil, s.fail(err)
+		}
+		s.exactIndex = true
 	}
 	return s, nil
 }

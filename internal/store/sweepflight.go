@@ -154,11 +154,12 @@ func (t *Table[V]) dropAllSwept() { t.dropSwept(len(t.dropQ)) }
 // commit's other writes, sorted, one per key: they are newer than
 // Pebble, so a record they write is judged by their bytes. It returns how
 // many records it removed, and notes their entities in gone. It reads
-// only Pebble, c's arena and tables.
+// only Pebble's index entries, c's arena and tables.
 //
-// The due entries are gathered first and their records judged in key
-// order: Pebble then seeks forward through the records, and a record
-// named by two due entries (one stale) comes up twice in a row.
+// A record not written by this commit is judged by its entry, without a
+// read (see below). The due entries are gathered first and their records
+// judged in key order, so a record two due entries name (one stale, from
+// this commit's own writes) comes up twice in a row.
 func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, tables map[string]sweepTable, gone map[string][]string) (removed int, err error) {
 	if w == math.MinInt64 {
 		return 0, nil
@@ -226,12 +227,19 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 	}
 	slices.SortFunc(due.ents, func(a, b entry) int { return bytes.Compare(due.key(a), due.key(b)) })
 
-	// One iterator over the records, sought forward once per record.
-	recs, err := s.db.NewIter(&pebble.IterOptions{LowerBound: []byte{tagRecord}, UpperBound: []byte{tagRecord + 1}})
-	if err != nil {
-		return removed, err
+	// A store whose entries are exact (Store.exactIndex) judges a record
+	// it does not write by its entry: every write of a record moves its
+	// entry in the same commit and every deletion deletes it. An older
+	// store may hold stale entries (of records a definition change
+	// deleted, say): it reads each record, with one iterator sought
+	// forward.
+	var recs *pebble.Iterator
+	if !s.exactIndex {
+		if recs, err = s.db.NewIter(&pebble.IterOptions{LowerBound: []byte{tagRecord}, UpperBound: []byte{tagRecord + 1}}); err != nil {
+			return removed, err
+		}
+		defer recs.Close()
 	}
-	defer recs.Close()
 	var ek []byte
 	for n, d := range due.ents {
 		rk := due.key(d)
@@ -240,13 +248,16 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		}
 		bucket, table, entity, _ := parseExpiryKey(due.val(d))
 		st := tables[table]
+		nb := bucket
 		var val []byte
+		read := false
 		if j, found := find(rk); found {
+			// Written by this commit: judged by its bytes.
 			if cs[j].del() {
 				continue
 			}
-			val = c.val(cs[j])
-		} else {
+			val, read = c.val(cs[j]), true
+		} else if recs != nil {
 			if !recs.SeekGE(rk) || !bytes.Equal(recs.Key(), rk) {
 				if err := recs.Error(); err != nil {
 					return removed, err
@@ -256,12 +267,15 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 			if val, err = recs.ValueAndErr(); err != nil {
 				return removed, err
 			}
+			read = true
 		}
-		last, err := st.last(val)
-		if err != nil {
-			return removed, fmt.Errorf("%w: record %q: %w", ErrCorrupt, rk, err)
+		if read {
+			last, err := st.last(val)
+			if err != nil {
+				return removed, fmt.Errorf("%w: record %q: %w", ErrCorrupt, rk, err)
+			}
+			nb = st.bucket(last)
 		}
-		nb := st.bucket(last)
 		if !swept(nb, w) {
 			// A stale entry of a record alive: index it in its bucket
 			// (where it may well be already).
