@@ -261,8 +261,9 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 // allocation. Sweeps recycle (Store.Sweep, between events with no commit
 // in flight), and so do Get and dropSwept for a record a commit removed:
 // Get has reported such a record absent since the cut, so no caller
-// holds it, and the commit's goroutine never reads a slot that was not
-// dirty at the cut (a slot evicted during an event may still be read by
+// holds it, and the commit's goroutine reads a slot only while it was
+// frozen and its hand not done, which Get waits for (a slot evicted
+// during an event may still be read by
 // that event's answer, so eviction does not recycle). Kept values count
 // against the budget until reused; over budget a part lets its own go
 // before any cached entry (resize).

@@ -107,7 +107,19 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 
 // land is the commit's goroutine: it completes the commit's writes
 // (the spill, the frozen records, the sweep, the Mark) and writes them.
-func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers map[string]sweepTable, parts map[string]int, mark func(int) Mark, seq uint64) error {
+func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers map[string]sweepTable, parts map[string]int, mark func(int) Mark, seq uint64) (err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			// No panic may escape this goroutine: it would end the
+			// process. Pebble panics when the database is closed under
+			// a running commit (as a crash test does to abandon a store).
+			if f, ok := r.(fatalError); ok {
+				err = fatalWrite{f.err}
+			} else {
+				err = fmt.Errorf("state: commit: %v", r)
+			}
+		}
+	}()
 	c, sw := f.c, f.sw
 	// The spill before the frozen records, which are newer.
 	for k, e := range f.spill.m {
@@ -235,19 +247,7 @@ func (f fatalWrite) Error() string { return f.err.Error() }
 // write is the background half of a commit: it owns c and sw and touches
 // nothing else of s but the database, the filesystem and the fixed
 // options. cs are c's writes sorted, one per key; sw's are newer.
-func (s *Store) write(c *collector, cs []entry, sw *collector, ingest bool, seq uint64) (err error) {
-	defer func() {
-		if r := recover(); r != nil {
-			// No panic may escape this goroutine: it would end the
-			// process. Pebble panics when the database is closed under
-			// a running commit (as a crash test does to abandon a store).
-			if f, ok := r.(fatalError); ok {
-				err = fatalWrite{f.err}
-			} else {
-				err = fmt.Errorf("state: commit: %v", r)
-			}
-		}
-	}()
+func (s *Store) write(c *collector, cs []entry, sw *collector, ingest bool, seq uint64) error {
 	if ingest {
 		return s.writeTable(c, cs, sw, seq)
 	}
