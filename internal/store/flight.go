@@ -38,10 +38,11 @@ type flight struct {
 	took    uint32 // entries of the pending batch the commit holds
 	spill   *spill // the spill the commit took; reads see it until it lands
 	c, sw   *collector
-	removed int // records the commit removed as expired (set before done)
-	// gone lists the removed records' entities by table name and part,
-	// for the caches to drop (see Table.queueSwept); set before done.
-	gone map[string][][]string
+	due     *collector // the sweep's scratch
+	removed int        // records the commit removed as expired (set before done)
+	// gone lists the removed records' entities, for the caches to drop
+	// (see Table.queueSwept); set before done.
+	gone *removedKeys
 }
 
 // freeze takes the writes of a commit and starts writing them. The store
@@ -53,10 +54,10 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	// The collectors and spill of the last landed commit are reused: a
 	// commit's buffers run to megabytes, and allocating them anew while
 	// the GC marks makes the caller pay for marking in proportion.
-	c, sw := s.spareC, s.spareSw
-	s.spareC, s.spareSw = nil, nil
+	c, sw, due := s.spareC, s.spareSw, s.spareDue
+	s.spareC, s.spareSw, s.spareDue = nil, nil, nil
 	if c == nil {
-		c, sw = &collector{}, &collector{}
+		c, sw, due = &collector{}, &collector{}, &collector{}
 	}
 	took := s.pending.Count()
 	r := s.pending.Reader()
@@ -88,7 +89,7 @@ func (s *Store) freeze(w int64, mark func(removed int) Mark) error {
 	gen, sweepW := s.gen, s.sweepW
 	s.gen++
 	clear(s.pendingFresh)
-	f := &flight{done: make(chan error, 1), took: took, spill: s.spill, c: c, sw: sw}
+	f := &flight{done: make(chan error, 1), took: took, spill: s.spill, c: c, sw: sw, due: due}
 	if sp := s.spareSpill; sp != nil {
 		s.spill, s.spareSpill = sp, nil
 	} else {
@@ -129,7 +130,7 @@ func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers 
 			c.Set([]byte(k), e.val, nil)
 		}
 	}
-	gone := map[string][]string{}
+	gone := &removedKeys{parts: parts, m: map[string][][]string{}}
 	removed, err := encodeAll(tables, c, gen, w, gone)
 	if err != nil {
 		return err
@@ -138,7 +139,7 @@ func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers 
 		return c.err
 	}
 	cs := c.sorted()
-	n, err := s.sweepFlight(c, cs, sw, w, sweepers, gone)
+	n, err := s.sweepFlight(c, cs, sw, f.due, w, sweepers, gone)
 	if err != nil {
 		return fmt.Errorf("state: expiry sweep: %w", err)
 	}
@@ -150,7 +151,7 @@ func (s *Store) land(f *flight, tables []flusher, gen uint64, w int64, sweepers 
 	if sw.err != nil {
 		return sw.err
 	}
-	f.mark, f.removed, f.gone = m, removed, splitGone(gone, parts)
+	f.mark, f.removed, f.gone = m, removed, gone
 	ingest := s.opts.IngestThreshold > 0 && len(cs)+len(sw.ents) >= s.opts.IngestThreshold
 	return s.write(c, cs, sw, ingest, seq)
 }
@@ -179,7 +180,8 @@ func (s *Store) Settle() error {
 	}
 	f.c.reset()
 	f.sw.reset()
-	s.spareC, s.spareSw = f.c, f.sw
+	f.due.reset()
+	s.spareC, s.spareSw, s.spareDue = f.c, f.sw, f.due
 	f.spill.reset()
 	s.spareSpill = f.spill
 	s.swept += uint64(f.removed)

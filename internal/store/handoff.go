@@ -90,7 +90,7 @@ func (t *Table[V]) freezeDirty(writer, int64) (int, error) {
 // records it deleted. It reads
 // only t's fixed fields, t.frozen and the slots it wins the hand of (or
 // their claimed, once the caller is done).
-func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error) {
+func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone *removedKeys) (removed int, err error) {
 	busy, done := handBusy(gen), handDone(gen)
 	var key, val []byte
 	defer func() {
@@ -137,7 +137,7 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone map[stri
 		if cb.del {
 			c.Delete(key, nil)
 			key = t.moveEntry(c, key[:0], sl.Key, cb.old, 0)
-			gone[t.name] = append(gone[t.name], sl.Key)
+			gone.add(t.name, sl.Key, t.part)
 			removed++
 			continue
 		}
@@ -165,7 +165,7 @@ func (t *Table[V]) moveEntry(c *collector, buf []byte, entity string, old, nb in
 }
 
 // encodeAll runs encodeFrozen over every table.
-func encodeAll(tables []flusher, c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error) {
+func encodeAll(tables []flusher, c *collector, gen uint64, w int64, gone *removedKeys) (removed int, err error) {
 	for _, t := range tables {
 		n, err := t.encodeFrozen(c, gen, w, gone)
 		removed += n

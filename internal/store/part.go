@@ -71,7 +71,7 @@ func (f *partFlusher) freezeDirty(b writer, _ int64) (int, error) {
 	return 0, nil
 }
 
-func (f *partFlusher) encodeFrozen(*collector, uint64, int64, map[string][]string) (int, error) {
+func (f *partFlusher) encodeFrozen(*collector, uint64, int64, *removedKeys) (int, error) {
 	return 0, nil
 }
 

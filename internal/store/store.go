@@ -249,6 +249,7 @@ type Store struct {
 	// Buffers of the last landed commit, reused by the next (see freeze).
 	spareC     *collector
 	spareSw    *collector
+	spareDue   *collector
 	spareSpill *spill
 	// pendingRecords: the pending batch may hold record keys (see spill).
 	pendingRecords bool
@@ -301,7 +302,7 @@ type Store struct {
 // flusher is a cache that Commit asks to stage its dirty entries.
 type flusher interface {
 	freezeDirty(b writer, w int64) (removed int, err error)
-	encodeFrozen(c *collector, gen uint64, w int64, gone map[string][]string) (removed int, err error)
+	encodeFrozen(c *collector, gen uint64, w int64, gone *removedKeys) (removed int, err error)
 	frozenCount() int
 }
 

@@ -84,7 +84,7 @@ func (t *Table[V]) sweptAway(b int64) bool { return swept(b, t.store.sweepW) }
 
 // sweptQueue is a cache that drops the records commits removed.
 type sweptQueue interface {
-	queueSwept(gone map[string][][]string)
+	queueSwept(gone *removedKeys)
 }
 
 // queueSwept queues, when a commit landed, the entities it removed that
@@ -92,8 +92,8 @@ type sweptQueue interface {
 // each Touch (dropSwept): Get already reports them absent, and dropping
 // them gives their memory back without a walk on the caller's path. A
 // part touched too rarely to keep up drops the excess here.
-func (t *Table[V]) queueSwept(gone map[string][][]string) {
-	if byPart := gone[t.name]; t.part < len(byPart) {
+func (t *Table[V]) queueSwept(gone *removedKeys) {
+	if byPart := gone.m[t.name]; t.part < len(byPart) {
 		if q := byPart[t.part]; len(t.dropQ) == 0 {
 			t.dropQ = q
 		} else {
@@ -105,20 +105,25 @@ func (t *Table[V]) queueSwept(gone map[string][][]string) {
 	}
 }
 
-// splitGone sorts the removed entities of each table by the part that
-// caches them (parts: the number of parts by table name).
-func splitGone(gone map[string][]string, parts map[string]int) map[string][][]string {
-	out := make(map[string][][]string, len(gone))
-	for name, ents := range gone {
-		n := max(parts[name], 1)
-		byPart := make([][]string, n)
-		for _, e := range ents {
-			i := PartOf(e, n)
-			byPart[i] = append(byPart[i], e)
-		}
-		out[name] = byPart
+// removedKeys lists the entities a commit removed, by table name and the
+// part that may cache them, for queueSwept.
+type removedKeys struct {
+	parts map[string]int // number of parts by table name
+	m     map[string][][]string
+}
+
+// add notes entity of table name; part is the part that caches it, or -1
+// to work it out.
+func (g *removedKeys) add(name, entity string, part int) {
+	byPart := g.m[name]
+	if byPart == nil {
+		byPart = make([][]string, max(g.parts[name], 1))
+		g.m[name] = byPart
 	}
-	return out
+	if part < 0 {
+		part = PartOf(entity, len(byPart))
+	}
+	byPart[part] = append(byPart[part], entity)
 }
 
 // dropSwept drops up to n queued entities whose cached slots are swept
@@ -154,13 +159,13 @@ func (t *Table[V]) dropAllSwept() { t.dropSwept(len(t.dropQ)) }
 // commit's other writes, sorted, one per key: they are newer than
 // Pebble, so a record they write is judged by their bytes. It returns how
 // many records it removed, and notes their entities in gone. It reads
-// only Pebble's index entries, c's arena and tables.
+// only Pebble's index entries, c's arena and tables. due is scratch.
 //
 // A record not written by this commit is judged by its entry, without a
 // read (see below). The due entries are gathered first and their records
 // judged in key order, so a record two due entries name (one stale, from
 // this commit's own writes) comes up twice in a row.
-func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, tables map[string]sweepTable, gone map[string][]string) (removed int, err error) {
+func (s *Store) sweepFlight(c *collector, cs []entry, sw, due *collector, w int64, tables map[string]sweepTable, gone *removedKeys) (removed int, err error) {
 	if w == math.MinInt64 {
 		return 0, nil
 	}
@@ -179,8 +184,8 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		return 0, err
 	}
 	defer it.Close()
-	// The due entries, in key order, the commit's own writes winning.
-	var due collector // keys: the entry's record key, then the entry
+	// The due entries, in key order, the commit's own writes winning, in
+	// due (keys: the entry's record key; values: the entry).
 	var key, rk []byte
 	ok := it.First()
 	for ok || i < end {
@@ -241,6 +246,7 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		defer recs.Close()
 	}
 	var ek []byte
+	var names arena // gone's entities: they outlive due, which is reused
 	for n, d := range due.ents {
 		rk := due.key(d)
 		if n > 0 && bytes.Equal(due.key(due.ents[n-1]), rk) {
@@ -285,7 +291,7 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw *collector, w int64, ta
 		}
 		sw.Delete(rk, nil)
 		removed++
-		gone[st.name] = append(gone[st.name], entity)
+		gone.add(st.name, viewString(names.keep([]byte(entity))), -1)
 		if nb != bucket {
 			// Its own entry, if not due with this one.
 			ek = expiryKey(ek[:0], nb, table, entity)
