@@ -405,8 +405,6 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 	return true, nil
 }
 
-func (t *Table[V]) frozenCount() int { return len(t.frozen) }
-
 // Len returns the number of cached entries.
 func (t *Table[V]) Len() int { return len(t.m) }
 

@@ -56,18 +56,26 @@ func (t *Table[V]) claim(sl *Slot[V]) {
 			runtime.Gosched()
 		default:
 			if sl.hand.CompareAndSwap(h, busy) {
-				nb := t.bucket(sl.Value.LastTime())
-				cb := &claimedBytes{old: sl.indexed, bucket: nb, del: swept(nb, t.store.sweepW)}
-				if !cb.del {
-					cb.b, cb.err = sl.Value.AppendBinary(nil)
-				}
-				sl.indexed = nb
-				sl.claimed = cb
+				cb := t.handOver(sl, t.store.sweepW, nil)
+				sl.claimed = &cb
 				sl.hand.Store(done)
 				return
 			}
 		}
 	}
+}
+
+// handOver makes what a commit sweeping at w needs of the frozen sl (its
+// bytes, appended to buf, or its deletion, and its index move) and sets
+// sl.indexed to the record's bucket. The side holding sl's hand calls it.
+func (t *Table[V]) handOver(sl *Slot[V], w int64, buf []byte) claimedBytes {
+	nb := t.bucket(sl.Value.LastTime())
+	cb := claimedBytes{old: sl.indexed, bucket: nb, del: swept(nb, w)}
+	if !cb.del {
+		cb.b, cb.err = sl.Value.AppendBinary(buf)
+	}
+	sl.indexed = nb
+	return cb
 }
 
 // swept reports whether a record in expiry bucket b is removed by a sweep
@@ -111,13 +119,10 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone *removed
 				sl.hand.Store(done)
 				continue
 			}
-			cb.old, cb.bucket = sl.indexed, t.bucket(sl.Value.LastTime())
-			cb.del = swept(cb.bucket, w)
-			if !cb.del {
-				val, cb.err = sl.Value.AppendBinary(val[:0])
-				cb.b = val
+			cb = t.handOver(sl, w, val[:0])
+			if cb.b != nil {
+				val = cb.b
 			}
-			sl.indexed = cb.bucket
 			sl.hand.Store(done)
 		} else {
 			for sl.hand.Load() == busy {

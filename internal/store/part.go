@@ -75,10 +75,6 @@ func (f *partFlusher) encodeFrozen(*collector, uint64, int64, *removedKeys) (int
 	return 0, nil
 }
 
-// frozenCount is 0: the part's writes are already in the collector, where
-// the ingest threshold counts them.
-func (f *partFlusher) frozenCount() int { return 0 }
-
 // AddPart registers p under name; every later Commit stages it. A name
 // may be registered once per Store.
 func (s *Store) AddPart(name string, p Part) error {

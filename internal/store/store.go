@@ -303,7 +303,6 @@ type Store struct {
 type flusher interface {
 	freezeDirty(b writer, w int64) (removed int, err error)
 	encodeFrozen(c *collector, gen uint64, w int64, gone *removedKeys) (removed int, err error)
-	frozenCount() int
 }
 
 // Open opens (creating if needed) the store described by opts and reads its
