@@ -61,7 +61,6 @@ func sixFeatureRun(t *testing.T, mode tallyward.Mode, events int) (allocs, heap,
 	runtime.KeepAlive(evs)
 	st := p.Stats()
 	n := float64(max(st.CachedKeys, 1))
-	t.Logf("DEBUG cached %d bytes %d live %d expired %d", st.CachedKeys, st.CachedBytes, st.LiveEntities, st.Expired)
 	return float64(b.Mallocs-a.Mallocs) / float64(len(evs)-half),
 		float64(after-min(before, after)) / n, float64(st.CachedBytes) / n
 }
@@ -81,10 +80,10 @@ func TestSixFeatureMemory(t *testing.T) {
 	if !tallyward.InFreshProcess(t) {
 		return
 	}
+	// The same size under -short: at 120k events the store's fixed
+	// buffers alone lift the heap per entity past the bound (1348 B
+	// measured), and the run takes under a second either way.
 	events := 300_000
-	if testing.Short() {
-		events = 120_000
-	}
 	for _, c := range []struct {
 		mode      tallyward.Mode
 		maxAllocs float64
