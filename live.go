@@ -140,10 +140,10 @@ func (l *Live[E]) Score(ctx context.Context, e E, dst []float64) ([]float64, err
 
 // scoreGrouped is Score with more than one worker. Calls that arrive
 // while the core is busy queue up; whichever gets the core next runs
-// every queued call, in arrival order, as consecutive events and one
-// batch for the workers, then hands each call its row. So concurrent
-// callers keep every worker busy, where one call at a time would leave
-// all but one part idle.
+// every queued call, in arrival order, as consecutive events, then hands
+// each call its row. Many queued calls (groupForWorkers) go to the
+// workers as one batch, so that they keep every worker busy; a few run on
+// the goroutine holding the core, one after the other.
 func (l *Live[E]) scoreGrouped(ctx context.Context, e E, dst []float64) ([]float64, error) {
 	if l.p.emitting.Load() && calledFromEmit() {
 		return dst, ErrReentered
@@ -192,15 +192,30 @@ func (l *Live[E]) scoreGrouped(ctx context.Context, e E, dst []float64) ([]float
 	}
 }
 
+// groupForWorkers is how many queued Score calls it takes to hand them to
+// the workers as one batch; fewer run one after the other on the
+// goroutine holding the core, as a lone call does. On two cores a batch
+// of a few calls lost to running them in turn (BenchmarkLive, 2 workers:
+// 4 goroutines 241k events/s handing every group of 4 or more to the
+// workers against 246k never handing any; 16 goroutines 181k against
+// 213k): the hand-over wakes both workers, which share the cores with
+// the commit's goroutine, for a few microseconds of work each.
+var groupForWorkers = 16
+
 // runQueued runs every queued Score call; the caller holds the core.
 func (l *Live[E]) runQueued() {
 	l.qmu.Lock()
 	calls := l.queued
 	l.queued = nil
 	l.qmu.Unlock()
+	direct := len(calls) < groupForWorkers
 	for _, c := range calls {
 		if l.closed {
 			c.err = ErrClosed
+			continue
+		}
+		if direct {
+			c.dst, c.err = l.submitLocked(c.e, c.now, c.dst, true)
 			continue
 		}
 		l.p.sink = &c.dst

@@ -146,6 +146,18 @@ func stopWorkersForCrash[E any](p *Pipeline[E]) {
 // same sequence: each call's values equal its row, and every row equals
 // the one-worker row of the same event.
 func TestLiveScoreGroupedMatchesOneWorker(t *testing.T) {
+	for _, group := range []int{1, groupForWorkers} {
+		t.Run(fmt.Sprintf("group=%d", group), func(t *testing.T) {
+			// group 1: every queued call goes to the workers; the default:
+			// a few queued calls run on the goroutine holding the core.
+			defer func(g int) { groupForWorkers = g }(groupForWorkers)
+			groupForWorkers = group
+			testLiveScoreGrouped(t)
+		})
+	}
+}
+
+func testLiveScoreGrouped(t *testing.T) {
 	n := 20_000
 	if testing.Short() {
 		n = 6_000

@@ -29,14 +29,15 @@ func (c *eventClock) advance(t int64) {
 
 // BenchmarkLive runs the six-feature workload through Live.Score on disk
 // (Eager) from 1, 2 and 4 goroutines that take the next event of the
-// stream in turn, one pass per b.N from a new store. The stream's order
+// stream in turn, one pass per b.N from a new store; 16 goroutines stand
+// for a service's request handlers. The stream's order
 // is kept up to the goroutines' interleaving, which MaxDisorder (10 min,
 // far more than the events' spacing) absorbs; an event late all the same
 // is counted, not fatal. Reported: events/s and late events per pass;
-// compare g2 and g4 with g1 (same run) for what concurrency buys.
+// compare g2, g4 and g16 with g1 (same run) for what concurrency buys.
 func BenchmarkLive(b *testing.B) {
 	data := featureEvents()
-	for _, g := range []int{1, 2, 4} {
+	for _, g := range []int{1, 2, 4, 16} {
 		b.Run(fmt.Sprintf("g%d", g), func(b *testing.B) {
 			var late uint64
 			for range b.N {
