@@ -3,7 +3,9 @@ package bench
 import (
 	"flag"
 	"math"
+	"os"
 	"runtime"
+	"runtime/pprof"
 	"slices"
 	"syscall"
 	"testing"
@@ -38,6 +40,7 @@ var (
 	featNaive       = flag.Int("features.naive-events", 300_000, "events of the naive baseline (a prefix: it runs ~40x slower)")
 	featCommitEvery = flag.Int("features.commit-every", 100_000, "automatic commit interval (events) of the latency benchmark")
 	featRate        = flag.Int("features.rate", 0, "calls per second the latency benchmark paces its timed calls to, as a service under a steady load would see them (0: as fast as they run)")
+	featHeapProfile = flag.String("features.heapprofile", "", "write a heap profile to this file where BenchmarkFeatures measures the heap per entity, the pipeline open (with -test.memprofilerate for detail)")
 	benchWorkers    = flag.Int("workers", 0, "Options.Workers of the pipelines of BenchmarkFeatures, BenchmarkFeaturesLatency, BenchmarkLive and BenchmarkProcess (0: the pipeline's default)")
 )
 
@@ -168,6 +171,9 @@ func BenchmarkFeatures(b *testing.B) {
 				}
 				last = p.Stats()
 				heapPerEntity = float64(heapNow()-min(base, heapNow())) / float64(max(last.CachedKeys, 1))
+				if *featHeapProfile != "" {
+					writeHeapProfile(b, *featHeapProfile)
+				}
 				if err := p.Close(); err != nil {
 					b.Fatal(err)
 				}
@@ -354,4 +360,16 @@ func BenchmarkFeaturesLatency(b *testing.B) {
 	b.ReportMetric(map[bool]float64{false: 0, true: 1}[worstCut], "worst-cut")
 	b.ReportMetric(float64(len(data.events)-half)*float64(b.N)/b.Elapsed().Seconds(), "events/s")
 	b.Logf("worst call: %d of the timed half (event %d), %v, cut a commit: %v", worstAt, half+worstAt, worst, worstCut)
+}
+
+// writeHeapProfile writes the heap's live objects to path.
+func writeHeapProfile(b *testing.B, path string) {
+	f, err := os.Create(path)
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer f.Close()
+	if err := pprof.Lookup("heap").WriteTo(f, 0); err != nil {
+		b.Fatal(err)
+	}
 }

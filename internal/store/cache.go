@@ -79,7 +79,7 @@ type Table[V Value] struct {
 	parts []*Table[V]
 	part  int // t's index in parts
 
-	m      map[string]*Slot[V]
+	index  slotIndex  // finds slots by key (slotindex.go)
 	slots  []*Slot[V] // every cached slot; Invariant: slots[i].idx == i
 	hand   int        // clock hand into slots
 	dirty  []*Slot[V] // slots made dirty since the last commit (may hold evicted ones)
@@ -99,7 +99,7 @@ type Table[V Value] struct {
 // keeps them forever. The ttl must be the one the store's expiry index was
 // built with: a caller that changes it calls RebuildExpiry first.
 func NewTable[V Value](s *Store, name string, ttl int64, decode func(b []byte) (V, error)) *Table[V] {
-	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, m: map[string]*Slot[V]{}}
+	t := &Table[V]{store: s, name: name, decode: decode, ttl: ttl, index: newSlotIndex()}
 	s.tables = append(s.tables, t)
 	t.knownAbsent = s.empty(RecordKey(nil, name, ""))
 	return t
@@ -120,6 +120,9 @@ func (t *Table[V]) load(key string) (v V, found, fresh bool, err error) {
 	return v, found, fresh, err
 }
 
+// lookup returns the cached slot of key, nil if none.
+func (t *Table[V]) lookup(key string) *Slot[V] { return getSlot(&t.index, t.slots, key) }
+
 // Name returns the table name.
 func (t *Table[V]) Name() string { return t.name }
 
@@ -129,7 +132,7 @@ func (t *Table[V]) Name() string { return t.name }
 // a record is dropped here). A hit is served from memory even after the
 // store failed; the failure surfaces at the next miss, Commit or Sweep.
 func (t *Table[V]) Get(key string) (*Slot[V], error) {
-	if sl := t.m[key]; sl != nil {
+	if sl := t.lookup(key); sl != nil {
 		t.hits++
 		sl.ref = true
 		if sl.dirtyIn == t.store.flightGen && sl.dirtyIn != 0 {
@@ -225,8 +228,10 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 	}
 }
 
-// slotOverhead approximates the map entry, slot struct and key header.
-const slotOverhead = 96
+// slotOverhead approximates the slot struct (64 bytes, the key's header
+// included) and its index entry (8 bytes in an index a half to three
+// quarters full).
+const slotOverhead = 80
 
 // evict drops victim from memory, staging it in the pending batch first if
 // it is dirty so that later reads and the next commit still see it.
@@ -311,12 +316,16 @@ func (t *Table[V]) releaseFree() {
 // drop removes sl from memory (not from the store).
 func (t *Table[V]) drop(sl *Slot[V]) {
 	sl.evicted = true
+	t.index.remove(sl.Key, int(sl.idx))
 	last := t.slots[len(t.slots)-1]
+	if last != sl {
+		t.index.move(last.Key, int(last.idx), int(sl.idx))
+	}
 	t.slots[sl.idx] = last
 	last.idx = sl.idx
 	t.slots[len(t.slots)-1] = nil
 	t.slots = t.slots[:len(t.slots)-1]
-	delete(t.m, sl.Key)
+	shrinkSlots(&t.index, t.slots)
 	t.store.budget.used.Add(-int64(sl.size))
 	sl.size = 0
 	// The slot may stay referenced (t.dirty until the next commit, a
@@ -406,7 +415,7 @@ func (t *Table[V]) Delete(key string) (bool, error) {
 }
 
 // Len returns the number of cached entries.
-func (t *Table[V]) Len() int { return len(t.m) }
+func (t *Table[V]) Len() int { return t.index.n }
 
 // CacheStats returns hit, miss and eviction counts since the table was made.
 func (t *Table[V]) CacheStats() (hits, misses, evictions uint64) {
@@ -414,7 +423,7 @@ func (t *Table[V]) CacheStats() (hits, misses, evictions uint64) {
 }
 
 func (t *Table[V]) link(sl *Slot[V]) {
-	t.m[sl.Key] = sl
+	addSlot(&t.index, t.slots, sl.Key, len(t.slots))
 	sl.idx = int32(len(t.slots))
 	sl.ref = true
 	t.slots = append(t.slots, sl)

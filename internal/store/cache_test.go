@@ -87,7 +87,7 @@ func (c modelRun) run() (st modelStats, err error) {
 	// get compares Get with the model.
 	get := func(ti int, k string) (*Slot[*tv], error) {
 		t := ts[ti]
-		_, cached := t.m[k]
+		cached := t.lookup(k) != nil
 		wasAbsent := t.knownAbsent
 		sl, err := t.Get(k)
 		if err != nil {
@@ -342,7 +342,7 @@ func TestKnownAbsentClearedByEviction(t *testing.T) {
 			// of the hand).
 			tb.Insert("y", rec{Last: 2, N: 1, Pad: 100}.value())
 			tb.Insert("z", rec{Last: 3, N: 1, Pad: 100}.value())
-			if _, cached := tb.m["x"]; cached {
+			if cached := tb.lookup("x") != nil; cached {
 				t.Fatal("x still cached; test needs a smaller budget")
 			}
 			if tb.knownAbsent {

@@ -100,15 +100,28 @@ func checkCacheInvariants(s *Store) error {
 		if !ok {
 			return fmt.Errorf("unexpected table type %T", f)
 		}
-		if len(t.m) != len(t.slots) {
-			return fmt.Errorf("table %s: %d map entries, %d slots", t.name, len(t.m), len(t.slots))
+		if t.index.n != len(t.slots) {
+			return fmt.Errorf("table %s: %d index entries, %d slots", t.name, t.index.n, len(t.slots))
+		}
+		live, tombs := 0, 0
+		for _, e := range t.index.ents {
+			switch {
+			case e == 0:
+			case e&idxMask == tombIdx:
+				tombs++
+			default:
+				live++
+			}
+		}
+		if live != t.index.n || tombs != t.index.tombs {
+			return fmt.Errorf("table %s: index holds %d live and %d deleted entries, counts %d and %d", t.name, live, tombs, t.index.n, t.index.tombs)
 		}
 		for i, sl := range t.slots {
 			if int(sl.idx) != i {
 				return fmt.Errorf("table %s: slots[%d].idx = %d", t.name, i, sl.idx)
 			}
-			if t.m[sl.Key] != sl {
-				return fmt.Errorf("table %s: slot %q not in map", t.name, sl.Key)
+			if t.lookup(sl.Key) != sl {
+				return fmt.Errorf("table %s: slot %q not in the index", t.name, sl.Key)
 			}
 			if sl.evicted {
 				return fmt.Errorf("table %s: cached slot %q marked evicted", t.name, sl.Key)

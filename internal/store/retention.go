@@ -182,7 +182,7 @@ func (t *Table[V]) expire(b writer, indexKey []byte, bucket int64, entity string
 		return o.expire(b, indexKey, bucket, entity, w)
 	}
 	var last int64
-	sl := t.m[entity]
+	sl := t.lookup(entity)
 	found := sl != nil
 	if found {
 		last = sl.Value.LastTime()
@@ -282,7 +282,7 @@ func (t *Table[V]) RebuildExpiry() (err error) {
 				return nil, err
 			}
 		}
-		if sl := t.owner(entity).m[entity]; sl != nil {
+		if sl := t.owner(entity).lookup(entity); sl != nil {
 			sl.indexed = t.bucket(v.LastTime())
 		}
 		return val, nil
@@ -341,7 +341,7 @@ func (t *Table[V]) Rewrite(fn func(entity string, val []byte) ([]byte, error)) (
 	}
 	for _, e := range out {
 		o := t.owner(string(e.k[len(lower):]))
-		if sl := o.m[string(e.k[len(lower):])]; sl != nil {
+		if sl := getSlotBytes(&o.index, o.slots, e.k[len(lower):]); sl != nil {
 			sl.dirtyIn = 0
 			o.drop(sl)
 		}

@@ -132,7 +132,7 @@ func TestExpiryMatchesModel(t *testing.T) {
 				sweepW = max(sweepW, w)
 				var expect []string
 				for k, v := range model {
-					sl := tb.m[k]
+					sl := tb.lookup(k)
 					switch {
 					case c.cut:
 						if roundUp(v.Last+ttl, ttl/16) <= sweepW {
@@ -177,8 +177,8 @@ func TestExpiryMatchesModel(t *testing.T) {
 					// Every removed record the cache held was queued for it
 					// to drop.
 					s.DropSwept()
-					for k, sl := range tb.m {
-						if !tb.isDirty(sl) && tb.sweptAway(sl.indexed) {
+					for _, sl := range tb.slots {
+						if k := sl.Key; !tb.isDirty(sl) && tb.sweptAway(sl.indexed) {
 							t.Fatalf("step %d: %s, removed, still cached after DropSwept", step, k)
 						}
 					}

@@ -133,7 +133,7 @@ func (t *Table[V]) dropSwept(n int) {
 		e := t.dropQ[len(t.dropQ)-1]
 		t.dropQ[len(t.dropQ)-1] = ""
 		t.dropQ = t.dropQ[:len(t.dropQ)-1]
-		sl := t.m[e]
+		sl := t.lookup(e)
 		if sl != nil && sl.dirtyIn != t.store.gen && sl.dirtyIn != t.store.flightGen && t.sweptAway(sl.indexed) {
 			sl.dirtyIn = 0
 			t.recycle(sl)
