@@ -275,7 +275,7 @@ func (t *Table[V]) evict(victim *Slot[V]) error {
 func (t *Table[V]) recycle(sl *Slot[V]) {
 	v := sl.Value
 	t.drop(sl)
-	if len(t.free) >= len(t.slots)/16+64 {
+	if len(t.free) >= len(t.slots)/32+64 {
 		return
 	}
 	k := kept[V]{v, int64(v.SizeBytes())}
