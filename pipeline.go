@@ -665,8 +665,16 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 				return
 			}
 		}
+		// A timestamp of one event (the usual case) answers from the
+		// records apply just updated, as Eager does, sparing a second
+		// lookup; in a larger group a later event may have evicted and
+		// reloaded a record, so each answer looks its records up.
+		var recs []*record
+		if len(p.batch) == 1 {
+			recs = p.recs
+		}
 		for _, h := range p.batch {
-			p.valuesAt(&h.in, p.vals, nil, false)
+			p.valuesAt(&h.in, p.vals, recs, false)
 			p.emit(h.seq, t, h.e, false)
 		}
 		clear(p.batch)
