@@ -325,7 +325,6 @@ func (t *Table[V]) drop(sl *Slot[V]) {
 	last.idx = sl.idx
 	t.slots[len(t.slots)-1] = nil
 	t.slots = t.slots[:len(t.slots)-1]
-	shrinkSlots(&t.index, t.slots)
 	t.store.budget.used.Add(-int64(sl.size))
 	sl.size = 0
 	// The slot may stay referenced (t.dirty until the next commit, a
@@ -423,7 +422,7 @@ func (t *Table[V]) CacheStats() (hits, misses, evictions uint64) {
 }
 
 func (t *Table[V]) link(sl *Slot[V]) {
-	addSlot(&t.index, t.slots, sl.Key, len(t.slots))
+	t.index.add(sl.Key, len(t.slots))
 	sl.idx = int32(len(t.slots))
 	sl.ref = true
 	t.slots = append(t.slots, sl)

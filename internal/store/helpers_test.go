@@ -103,18 +103,14 @@ func checkCacheInvariants(s *Store) error {
 		if t.index.n != len(t.slots) {
 			return fmt.Errorf("table %s: %d index entries, %d slots", t.name, t.index.n, len(t.slots))
 		}
-		live, tombs := 0, 0
+		live := 0
 		for _, e := range t.index.ents {
-			switch {
-			case e == 0:
-			case e&idxMask == tombIdx:
-				tombs++
-			default:
+			if e != 0 {
 				live++
 			}
 		}
-		if live != t.index.n || tombs != t.index.tombs {
-			return fmt.Errorf("table %s: index holds %d live and %d deleted entries, counts %d and %d", t.name, live, tombs, t.index.n, t.index.tombs)
+		if live != t.index.n {
+			return fmt.Errorf("table %s: index holds %d entries, counts %d", t.name, live, t.index.n)
 		}
 		for i, sl := range t.slots {
 			if int(sl.idx) != i {
