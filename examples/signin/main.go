@@ -22,6 +22,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
+	"runtime"
 	"slices"
 	"sync/atomic"
 	"time"
@@ -87,7 +88,8 @@ func run(n int, seed uint64) error {
 			peaks[r.Event.Addr] = peak{r.Event.Addr, r.Time, slices.Clone(r.Values)}
 		}
 	}
-	opts := tallyward.Options{Dir: dir, Mode: tallyward.Settled, MaxDisorder: 2 * time.Second}
+	// One worker per core: rows and state are the same with any number.
+	opts := tallyward.Options{Dir: dir, Mode: tallyward.Settled, MaxDisorder: 2 * time.Second, Workers: runtime.GOMAXPROCS(0)}
 	p, err := tallyward.Open(spec(emit), opts)
 	if err != nil {
 		return err
