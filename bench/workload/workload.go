@@ -21,6 +21,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"time"
+	"unsafe"
 
 	"github.com/cockroachdb/pebble/v2"
 
@@ -104,7 +105,30 @@ func Generate(p Params) []Payment {
 			Amount:  math.Round(r.ExpFloat64()*5000) / 100,
 		}
 	}
+	ownStrings(ev)
 	return ev
+}
+
+// ownStrings gives every event its own copy of its keys, laid out in
+// event order, as events decoded from a file or a request have them:
+// shared from the key tables, reading an event's key for the first time
+// would be a cache miss on a table of millions of strings, which no
+// decoded stream pays.
+func ownStrings(ev []Payment) {
+	n := 0
+	for _, e := range ev {
+		n += len(e.Account) + len(e.Device)
+	}
+	buf := make([]byte, 0, n)
+	cut := func(s string) string {
+		at := len(buf)
+		buf = append(buf, s...)
+		return unsafe.String(unsafe.SliceData(buf[at:]), len(s))
+	}
+	for i := range ev {
+		ev[i].Account = cut(ev[i].Account)
+		ev[i].Device = cut(ev[i].Device)
+	}
 }
 
 // The six features' kinds.
