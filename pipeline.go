@@ -169,6 +169,9 @@ func Open[E any](spec Spec[E], opts Options) (*Pipeline[E], error) {
 		es.parts = store.NewParts(st, ent.Name, es.ttl, func(b []byte) (*record, error) {
 			return es.lay.decode(b)
 		}, opts.Workers, peekLast)
+		for _, tb := range es.parts {
+			tb.HintValue = es.lay.hint
+		}
 		p.nfeat += len(ent.Features)
 		p.ents = append(p.ents, es)
 	}

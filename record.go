@@ -10,6 +10,7 @@ import (
 	"time"
 	"unsafe"
 
+	"github.com/tallyward/tallyward/internal/prefetch"
 	"github.com/tallyward/tallyward/internal/store"
 	"github.com/tallyward/tallyward/internal/wire"
 )
@@ -113,6 +114,10 @@ func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
 	l.size = cap(slices.Grow([]byte(nil), int(l.typ.Size())))
 	return l
 }
+
+// hint starts bringing r's memory into the processor's caches without
+// reading it (package prefetch): its one object, as laid out by l.
+func (l *recordLayout) hint(r *record) { prefetch.Range(unsafe.Pointer(r), l.size) }
 
 // newRecord returns an empty record with newest time last: one
 // allocation, plus one per feature of a kind that is not placed.

@@ -83,10 +83,11 @@ const (
 
 // partRun is one worker's share of a batch.
 type partRun struct {
-	c    counters // live, tooOld and erasedSkips only
-	err  error
-	recs []*record // scratch: the records applied in the current group
-	zero [][]Aggregate
+	c     counters // live, tooOld and erasedSkips only
+	err   error
+	recs  []*record // scratch: the records applied in the current group
+	zero  [][]Aggregate
+	ahead lookahead
 }
 
 func (b *workBatch[E]) reset() {
@@ -311,6 +312,8 @@ func (p *Pipeline[E]) runPart(w int, b *workBatch[E]) {
 		}
 	}()
 	ne, nf := len(p.ents), p.nfeat
+	planAhead(&pr.ahead, p.ents, w, b.keys, b.owner)
+	applied := 0 // keys of the part applied so far (the lookahead's cursor)
 	start := 0
 	for _, end := range b.groups {
 		g := int(end) - start
@@ -322,6 +325,8 @@ func (p *Pipeline[E]) runPart(w int, b *workBatch[E]) {
 				if b.owner[k] != int32(w) || b.keys[k] == "" {
 					continue
 				}
+				stepAhead(&pr.ahead, p.ents, w, b.keys, applied)
+				applied++
 				fs, fe := j*nf+es.first, j*nf+es.first+len(es.kinds)
 				rec, err := es.applyKey(es.parts[w], b.keys[k], b.t[j], b.exp[j], b.on[fs:fe], b.v[fs:fe], b.item[fs:fe], p.store, &pr.c)
 				if err != nil {

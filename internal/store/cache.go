@@ -74,6 +74,11 @@ type Table[V Value] struct {
 	// decoding it all; the expiry sweep uses it.
 	PeekLast func(b []byte) (int64, error)
 
+	// HintValue, if set, starts bringing a value's memory into the
+	// processor's caches without reading it (package prefetch): the
+	// commit's goroutine calls it a few records before encoding one.
+	HintValue func(v V)
+
 	// parts lists every part of a split table (see parts.go), this one
 	// included; nil when the table is not split.
 	parts []*Table[V]

@@ -3,6 +3,9 @@ package store
 import (
 	"fmt"
 	"runtime"
+	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/prefetch"
 )
 
 // A commit hands the dirty records to its goroutine without touching them
@@ -105,13 +108,52 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone *removed
 		clear(t.frozen)
 		t.frozen = t.frozen[:0]
 	}()
-	for _, sl := range t.frozen {
-		won := false
+	// The hand of each slot is won a few slots ahead and its value
+	// hinted then (see HintValue), so the misses on the next records'
+	// memory overlap the encoding of this one. A slot won ahead is held
+	// until its turn: a caller wanting it waits, as for one being encoded.
+	frozen := t.frozen
+	// held[j%encodeRing] is frozen[j] while this goroutine holds its hand
+	// won ahead, and was its hand before: on an early return it is given
+	// back, so that the caller can still claim it.
+	var held [encodeRing]struct {
+		sl   *Slot[V]
+		prev int32
+	}
+	defer func() {
+		for _, h := range held {
+			if h.sl != nil {
+				h.sl.hand.Store(h.prev)
+			}
+		}
+	}()
+	winAhead := func(j int) {
+		sl := frozen[j]
 		for h := sl.hand.Load(); h != busy && h != done; h = sl.hand.Load() {
-			if won = sl.hand.CompareAndSwap(h, busy); won {
+			if sl.hand.CompareAndSwap(h, busy) {
+				held[j%encodeRing].sl, held[j%encodeRing].prev = sl, h
 				break
 			}
 		}
+		if held[j%encodeRing].sl != nil && sl.dirtyIn == gen {
+			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
+			if t.HintValue != nil {
+				t.HintValue(sl.Value)
+			}
+		}
+	}
+	for j := range min(encodeAhead, len(frozen)) {
+		winAhead(j)
+	}
+	for i, sl := range frozen {
+		if j := i + 2*encodeAhead; j < len(frozen) {
+			prefetch.Line(unsafe.Pointer(frozen[j]))
+		}
+		if j := i + encodeAhead; j < len(frozen) {
+			winAhead(j)
+		}
+		won := held[i%encodeRing].sl != nil
+		held[i%encodeRing].sl = nil
 		var cb claimedBytes
 		if won {
 			if sl.dirtyIn != gen {
@@ -151,6 +193,13 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone *removed
 	}
 	return removed, nil
 }
+
+// encodeFrozen wins slots' hands encodeAhead slots before their turn and
+// brings in the slots themselves twice that far ahead.
+const (
+	encodeAhead = 4
+	encodeRing  = 8 // > encodeAhead, a power of two
+)
 
 // moveEntry writes to c the move of entity's expiry index entry from
 // bucket old to nb (0: none), using buf; it returns buf for reuse.

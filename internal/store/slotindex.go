@@ -3,6 +3,8 @@ package store
 import (
 	"hash/maphash"
 	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/prefetch"
 )
 
 // slotIndex finds a table's cached slots by key. It is a hash table with
@@ -151,4 +153,59 @@ func (x *slotIndex) resize(n int) {
 			x.put(e>>idxBits, int(e&idxMask)-1)
 		}
 	}
+}
+
+// Hints for a run of lookups. A caller that knows which keys it will Get
+// next can have their misses overlap: for each key, in this order and
+// some work apart, HintIndex (the index entry), HintPos (the slot's place
+// in Table.slots) and HintSlot (the slot); then it may hint the slot's
+// key and value itself. Each step reads only what the step before
+// brought in. The hints change nothing: a slot moved, evicted or
+// dropped in between makes a hint useless, not wrong. Like Get, they are
+// for the goroutine that owns the table (its part).
+
+// HintIndex starts bringing in the index entry of key and returns its tag
+// for HintPos.
+func (t *Table[V]) HintIndex(key string) uint64 {
+	x := &t.index
+	tag := x.tag(key)
+	if len(x.ents) > 0 {
+		prefetch.Line(unsafe.Pointer(&x.ents[tag&uint64(len(x.ents)-1)]))
+	}
+	return tag
+}
+
+// HintPos finds the first index entry for tag and starts bringing in its
+// place in Table.slots; it returns that position plus one, 0 if none.
+func (t *Table[V]) HintPos(tag uint64) int {
+	x := &t.index
+	if x.n == 0 {
+		return 0
+	}
+	mask := uint64(len(x.ents) - 1)
+	for i := tag & mask; ; i = (i + 1) & mask {
+		e := x.ents[i]
+		if e == 0 {
+			return 0
+		}
+		if e>>idxBits == tag {
+			pos := int(e & idxMask)
+			if pos > len(t.slots) {
+				return 0
+			}
+			prefetch.Line(unsafe.Pointer(&t.slots[pos-1]))
+			return pos
+		}
+	}
+}
+
+// HintSlot starts bringing in the slot at position pos-1 (from HintPos)
+// and returns it, nil if there is none.
+func (t *Table[V]) HintSlot(pos int) *Slot[V] {
+	if pos <= 0 || pos > len(t.slots) {
+		return nil
+	}
+	sl := t.slots[pos-1]
+	prefetch.Line(unsafe.Pointer(sl))
+	return sl
 }

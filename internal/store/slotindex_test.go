@@ -4,6 +4,8 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"testing"
+
+	"github.com/cockroachdb/pebble/v2/vfs"
 )
 
 // TestSlotIndexMatchesMap: the slot index against a Go map, the brute
@@ -91,5 +93,41 @@ func testSlotIndex(t *testing.T, tags uint64) {
 			}
 		}
 		check(step)
+	}
+}
+
+// TestHintsFindTheSlot follows the hint chain (HintIndex, HintPos,
+// HintSlot) for cached keys while the table inserts, evicts and deletes:
+// the chain must reach the key's own slot when its first tag match is
+// the key's, and never anything but a slot of the table (or nothing).
+func TestHintsFindTheSlot(t *testing.T) {
+	s := mustOpen(t, Options{FS: vfs.NewMem(), CacheBytes: 40 << 10})
+	defer s.Close()
+	tb := NewTable(s, "t", 0, decodeTV)
+	r := rand.New(rand.NewPCG(3, 4))
+	found := 0
+	for i := range 20_000 {
+		key := fmt.Sprintf("k%d", r.IntN(2_000))
+		if r.IntN(10) == 0 {
+			if _, err := tb.Delete(key); err != nil {
+				t.Fatal(err)
+			}
+		} else if sl, _ := tb.Get(key); sl == nil {
+			tb.Insert(key, rec{Last: int64(i), N: 1}.value())
+		}
+		probe := fmt.Sprintf("k%d", r.IntN(2_000))
+		sl := tb.HintSlot(tb.HintPos(tb.HintIndex(probe)))
+		want := tb.lookup(probe)
+		switch {
+		case sl == nil && want != nil:
+			t.Fatalf("step %d: hints found nothing for cached %q", i, probe)
+		case sl != nil && (int(sl.idx) >= len(tb.slots) || tb.slots[sl.idx] != sl):
+			t.Fatalf("step %d: hints reached a slot not in the table", i)
+		case sl != nil && sl == want:
+			found++
+		}
+	}
+	if found == 0 {
+		t.Fatal("the hints never reached a cached key's slot")
 	}
 }

@@ -182,6 +182,43 @@ func TestOptionsValidateReportsAll(t *testing.T) {
 	}
 }
 
+// TestFailedCommitGivesBackHands: the commit's goroutine wins the hands of
+// frozen slots a few ahead of encoding them; when it fails on a record
+// before them, the slots it held must be left for the caller to claim (a
+// hand left busy would make the caller's next Get of them wait forever),
+// with their values untouched.
+func TestFailedCommitGivesBackHands(t *testing.T) {
+	s := mustOpen(t, Options{FS: vfs.NewMem(), CacheBytes: 1 << 20})
+	defer s.Close()
+	tb := NewTable(s, "t", 100, decodeTV)
+	hinted := 0
+	tb.HintValue = func(*tv) { hinted++ }
+	tb.Insert("bad", &tv{Last: 2, failEncode: true})
+	for i := range 2 * encodeAhead {
+		tb.Insert(fmt.Sprintf("good%d", i), rec{Last: 2, N: uint64(i)}.value())
+	}
+	if err := s.CommitAsync(Mark{Seen: 1, Resume: 1}); err != nil {
+		t.Fatal(err)
+	}
+	// Wait for the commit's goroutine without settling, so that the
+	// slots stay frozen and Get claims them.
+	f := s.flight
+	landed := <-f.done
+	f.done <- landed
+	if hinted == 0 {
+		t.Fatal("no value was hinted ahead")
+	}
+	for i := range 2 * encodeAhead {
+		sl, err := tb.Get(fmt.Sprintf("good%d", i))
+		if err != nil || sl == nil || sl.Value.N != uint64(i) {
+			t.Fatalf("good%d after the failed commit: %v, %v", i, sl, err)
+		}
+	}
+	if err := s.Settle(); !errors.Is(err, errEncode) {
+		t.Fatalf("settle: %v", err)
+	}
+}
+
 // TestFailedIsSticky provokes a failed write (a record that refuses to
 // encode, at commit and at a dirty eviction) and checks that the store
 // then refuses every call that can return an error, that nothing of the
