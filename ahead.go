@@ -68,3 +68,35 @@ func stepAhead[E any](la *lookahead, ents []*entityState[E], w int, keys []strin
 		}
 	}
 }
+
+// hintEvent runs the chain of every key of one event (the one-worker
+// path, which sees no event ahead) step by step across its keys, so that
+// their misses overlap each other, if not the work.
+func (p *Pipeline[E]) hintEvent(keys []string) {
+	la := &p.ahead
+	if len(keys) > aheadRing {
+		return
+	}
+	for i, key := range keys {
+		if key != "" {
+			la.tag[i] = p.ents[i].part(key).HintIndex(key)
+		}
+	}
+	for i, key := range keys {
+		if key != "" {
+			la.pos[i] = p.ents[i].part(key).HintPos(la.tag[i])
+		}
+	}
+	for i, key := range keys {
+		if key != "" {
+			la.slot[i] = p.ents[i].part(key).HintSlot(la.pos[i])
+		}
+	}
+	for i, sl := range la.slot[:len(keys)] {
+		if sl != nil {
+			la.slot[i] = nil
+			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
+			p.ents[i].lay.hint(sl.Value)
+		}
+	}
+}

@@ -27,7 +27,8 @@ type Pipeline[E any] struct {
 	spec  Spec[E]
 	store *store.Store
 	ents  []*entityState[E]
-	names []string // "entity.feature", in row order
+	ahead lookahead // hints of the one-worker path (ahead.go)
+	names []string  // "entity.feature", in row order
 	nfeat int
 
 	// Progress. Invariant: wm <= maxT - MaxDisorder once hasMax, except
@@ -497,6 +498,7 @@ func (p *Pipeline[E]) extract(e E, seq uint64, now int64, newest newestTime) err
 // must be idle (the caller's goroutine does the work).
 func (p *Pipeline[E]) apply(in *inputs, late bool) error {
 	exp := p.expiryClockFor(in.t, late)
+	p.hintEvent(in.keys)
 	for i, es := range p.ents {
 		key := in.keys[i]
 		fs := es.first
