@@ -69,9 +69,10 @@ func stepAhead[E any](la *lookahead, ents []*entityState[E], w int, keys []strin
 	}
 }
 
-// hintEvent runs the chain of every key of one event (the one-worker
-// path, which sees no event ahead) step by step across its keys, so that
-// their misses overlap each other, if not the work.
+// hintEvent runs the chain of every key of one event step by step across
+// its keys, so that their misses overlap each other, if not the work: for
+// apply, which runs one event on the caller's goroutine (one worker, or
+// Score) and sees no event ahead.
 func (p *Pipeline[E]) hintEvent(keys []string) {
 	la := &p.ahead
 	if len(keys) > aheadRing {
