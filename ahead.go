@@ -19,18 +19,46 @@ import (
 // It only hints: what it brings in may have moved by the time it is used,
 // which costs the miss it meant to save and nothing else.
 type lookahead struct {
-	own  []int32 // batch key indexes (event*entities + entity) the part applies, in order
-	tag  [aheadRing]uint64
-	pos  [aheadRing]int
-	slot [aheadRing]*store.Slot[*record]
+	own   []int32 // batch key indexes (event*entities + entity) the part applies, in order
+	chain [aheadRing]hintChain
+}
+
+// hintChain is one key's way along the chain of misses.
+type hintChain struct {
+	tb   *store.Table[*record]
+	tag  uint64
+	pos  int
+	slot *store.Slot[*record]
 }
 
 const (
-	// aheadDepth is how many keys ahead the chain starts: one step per
-	// key, four steps.
-	aheadDepth = 4
+	// aheadSteps is the chain's length: index entry, slot position,
+	// slot, key and record.
+	aheadSteps = 4
+	// aheadDepth is how many keys ahead a worker starts a chain: one
+	// step per key.
+	aheadDepth = aheadSteps
 	aheadRing  = 8 // > aheadDepth, a power of two
 )
+
+// step takes step i of the chain of key (of table tb, laid out by lay):
+// each reads only what the step before brought in.
+func (c *hintChain) step(i int, tb *store.Table[*record], key string, lay *recordLayout) {
+	switch i {
+	case 0:
+		c.tb, c.tag = tb, tb.HintIndex(key)
+	case 1:
+		c.pos = c.tb.HintPos(c.tag)
+	case 2:
+		c.slot = c.tb.HintSlot(c.pos)
+	case 3:
+		if sl := c.slot; sl != nil {
+			c.slot = nil
+			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
+			lay.hint(sl.Value)
+		}
+	}
+}
 
 // planAhead lists the keys part w applies in keys (a batch's, owner its
 // parts) and starts the chain of the first ones.
@@ -47,57 +75,36 @@ func planAhead[E any](la *lookahead, ents []*entityState[E], w int, keys []strin
 }
 
 // stepAhead runs the chain's steps due when the part is about to apply
-// its n-th key: each of the next keys moves one step on.
+// its n-th key: each of the next aheadDepth keys moves one step on.
 func stepAhead[E any](la *lookahead, ents []*entityState[E], w int, keys []string, n int) {
-	ne := len(ents)
-	tb := func(m int) *store.Table[*record] { return ents[int(la.own[m])%ne].parts[w] }
-	if m := n + aheadDepth; m < len(la.own) {
-		la.tag[m%aheadRing] = tb(m).HintIndex(keys[la.own[m]])
-	}
-	if m := n + aheadDepth - 1; m >= 0 && m < len(la.own) {
-		la.pos[m%aheadRing] = tb(m).HintPos(la.tag[m%aheadRing])
-	}
-	if m := n + aheadDepth - 2; m >= 0 && m < len(la.own) {
-		la.slot[m%aheadRing] = tb(m).HintSlot(la.pos[m%aheadRing])
-	}
-	if m := n + aheadDepth - 3; m >= 0 && m < len(la.own) {
-		if sl := la.slot[m%aheadRing]; sl != nil {
-			la.slot[m%aheadRing] = nil
-			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-			ents[int(la.own[m])%ne].lay.hint(sl.Value)
+	for i := range aheadSteps {
+		if m := n + aheadDepth - i; m >= 0 && m < len(la.own) {
+			k := int(la.own[m])
+			es := ents[k%len(ents)]
+			la.chain[m%aheadRing].step(i, es.parts[w], keys[k], es.lay)
 		}
 	}
 }
 
-// hintEvent runs the chain of every key of one event step by step across
-// its keys, so that their misses overlap each other, if not the work: for
-// apply, which runs one event on the caller's goroutine (one worker, or
-// Score) and sees no event ahead.
+// hintEvent takes the chains of every key of one event step by step
+// across its keys, so that their misses overlap each other, if not the
+// work: for apply, which runs one event on the caller's goroutine (one
+// worker, or Score) and sees no event ahead.
 func (p *Pipeline[E]) hintEvent(keys []string) {
-	la := &p.ahead
 	if len(keys) > aheadRing {
 		return
 	}
-	for i, key := range keys {
-		if key != "" {
-			la.tag[i] = p.ents[i].part(key).HintIndex(key)
-		}
-	}
-	for i, key := range keys {
-		if key != "" {
-			la.pos[i] = p.ents[i].part(key).HintPos(la.tag[i])
-		}
-	}
-	for i, key := range keys {
-		if key != "" {
-			la.slot[i] = p.ents[i].part(key).HintSlot(la.pos[i])
-		}
-	}
-	for i, sl := range la.slot[:len(keys)] {
-		if sl != nil {
-			la.slot[i] = nil
-			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-			p.ents[i].lay.hint(sl.Value)
+	chains := p.ahead.chain[:len(keys)]
+	for i := range aheadSteps {
+		for j, key := range keys {
+			if key != "" {
+				es := p.ents[j]
+				var tb *store.Table[*record]
+				if i == 0 {
+					tb = es.part(key)
+				}
+				chains[j].step(i, tb, key, es.lay)
+			}
 		}
 	}
 }
