@@ -230,7 +230,8 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw, due *collector, w int6
 	if err := it.Error(); err != nil {
 		return removed, err
 	}
-	slices.SortFunc(due.ents, func(a, b entry) int { return bytes.Compare(due.key(a), due.key(b)) })
+	due.sortByKey()
+	dues := due.ents
 
 	// A store whose entries are exact (Store.exactIndex) judges a record
 	// it does not write by its entry: every write of a record moves its
@@ -247,9 +248,9 @@ func (s *Store) sweepFlight(c *collector, cs []entry, sw, due *collector, w int6
 	}
 	var ek []byte
 	var names arena // gone's entities: they outlive due, which is reused
-	for n, d := range due.ents {
+	for n, d := range dues {
 		rk := due.key(d)
-		if n > 0 && bytes.Equal(due.key(due.ents[n-1]), rk) {
+		if n > 0 && bytes.Equal(due.key(dues[n-1]), rk) {
 			continue // judged with its other entry
 		}
 		bucket, table, entity, _ := parseExpiryKey(due.val(d))
