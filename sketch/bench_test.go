@@ -9,6 +9,7 @@ package sketch
 import (
 	"encoding/binary"
 	"fmt"
+	"math/bits"
 	"math/rand/v2"
 	"testing"
 
@@ -382,6 +383,37 @@ func BenchmarkDistinctExactAdd(b *testing.B) {
 			if !d.Exact() {
 				b.Fatal("left exact mode")
 			}
+		})
+	}
+}
+
+// BenchmarkFrontierView: reading every register of a warm summary's
+// sliding registers for a new window start, as a view rebuild does once
+// per pane boundary: the four-lane comparison against the entry walk it
+// replaced (compare the two in one run).
+func BenchmarkFrontierView(b *testing.B) {
+	const p = 12
+	rng := rand.New(rand.NewPCG(3, 4))
+	r := newSlidingRegs(p, 0)
+	for range 40 << p {
+		r.insert(uint32(rng.IntN(1<<p)), int64(rng.IntN(60)), uint8(1+min(bits.LeadingZeros64(rng.Uint64()), 50)))
+	}
+	var hist [64]uint32
+	for _, v := range []struct {
+		name string
+		f    func(uint64, int64) uint8
+	}{{"lanes", inlineValueFrom}, {"walk", walkValueFrom}} {
+		b.Run(v.name, func(b *testing.B) {
+			start := int64(0)
+			for b.Loop() {
+				start = (start + 1) % 60
+				for _, w := range r.words {
+					if w != spillMark {
+						hist[v.f(w, start)]++
+					}
+				}
+			}
+			b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N<<p), "ns/register")
 		})
 	}
 }

@@ -213,3 +213,60 @@ func TestDistinctAddTooOld(t *testing.T) {
 		t.Fatal("time outside ±2^62 accepted")
 	}
 }
+
+// TestInlineFrontierLanes: the four-lane comparison of an inline frontier
+// word answers like a walk of its entries (the reference below) and like
+// the maximum over the pairs inserted (brute force), for every window
+// start from before the base to past the largest offset.
+func TestInlineFrontierLanes(t *testing.T) {
+	rng := rand.New(rand.NewPCG(9, 9))
+	const regs = 64
+	r := newSlidingRegs(6, 1000)
+	type pr struct{ pane, rho int }
+	naive := make([][]pr, regs)
+	for range 300 {
+		j := rng.IntN(regs)
+		e := pr{1000 + rng.IntN(maxPaneOff+1), 1 + rng.IntN(50)}
+		naive[j] = append(naive[j], e)
+		r.insert(uint32(j), int64(e.pane), uint8(e.rho))
+	}
+	inline := 0
+	for j := range regs {
+		if r.words[j] == spillMark {
+			continue
+		}
+		inline++
+		for s := 990; s <= 1000+maxPaneOff+3; s++ {
+			want := 0
+			for _, e := range naive[j] {
+				if e.pane >= s {
+					want = max(want, e.rho)
+				}
+			}
+			walk := walkValueFrom(r.words[j], int64(s)-r.base)
+			got := r.valueFrom(uint32(j), int64(s))
+			if int(got) != want || int(walk) != want {
+				t.Fatalf("register %d (word %#x), window from %d: lanes %d, walk %d, brute force %d", j, r.words[j], s, got, walk, want)
+			}
+		}
+	}
+	if inline < regs/2 {
+		t.Fatalf("only %d of %d registers inline: the test no longer covers the lanes", inline, regs)
+	}
+}
+
+// walkValueFrom is the entry-by-entry reading of an inline frontier word
+// that inlineValueFrom replaces: the reference for the test and the
+// benchmark.
+func walkValueFrom(w uint64, off int64) uint8 {
+	for i := 3; i >= 0; i-- {
+		e := uint16(w >> (16 * i))
+		if e == 0 {
+			return 0
+		}
+		if int64(e&maxPaneOff) >= off {
+			return uint8(e >> paneOffBits)
+		}
+	}
+	return 0
+}

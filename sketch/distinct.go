@@ -588,8 +588,15 @@ func (d *Distinct) view(start int64, withTail bool) *regView {
 		v.regs = make([]uint8, m)
 	}
 	v.hist = [64]uint32{}
-	for j := range v.regs {
-		x := d.sk.regs.valueFrom(uint32(j), start)
+	regs := d.sk.regs
+	off := start - regs.base
+	for j, w := range regs.words {
+		var x uint8
+		if w == spillMark {
+			x = regs.valueFrom(uint32(j), start)
+		} else {
+			x = inlineValueFrom(w, off)
+		}
 		v.regs[j] = x
 		v.hist[x]++
 	}

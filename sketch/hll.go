@@ -216,16 +216,37 @@ func (s *slidingRegs) valueFrom(j uint32, start int64) uint8 {
 		}
 		return 0
 	}
-	for i := 3; i >= 0; i-- {
-		e := uint16(w >> (16 * i))
-		if e == 0 {
-			return 0
-		}
-		if s.base+int64(e&maxPaneOff) >= start {
-			return uint8(e >> paneOffBits)
-		}
+	return inlineValueFrom(w, start-s.base)
+}
+
+// Lanes of an inline frontier word, for inlineValueFrom.
+const (
+	laneOffsets = 0x03ff_03ff_03ff_03ff
+	laneTops    = 0x8000_8000_8000_8000
+	laneOnes    = 0x0001_0001_0001_0001
+)
+
+// inlineValueFrom is the value of inline frontier word w for a window
+// starting at offset off from the base: the rho of its oldest entry whose
+// offset is at least off. A view rebuild asks it of every register, so it
+// compares the four lanes at once instead of walking them: with each
+// lane's top bit set, subtracting off from every lane borrows across no
+// lane boundary and leaves the top bit set exactly where offset >= off.
+// Empty lanes (offset 0, rho 0) follow the entries, so they match only
+// when off <= 0, where the oldest lane answers: its rho, or 0 for an
+// empty word.
+func inlineValueFrom(w uint64, off int64) uint8 {
+	if off <= 0 {
+		return uint8(w >> 58)
 	}
-	return 0
+	if off > maxPaneOff {
+		return 0
+	}
+	ge := ((w&laneOffsets | laneTops) - uint64(off)*laneOnes) & laneTops
+	if ge == 0 {
+		return 0
+	}
+	return uint8(w << bits.LeadingZeros64(ge) >> 58)
 }
 
 // rebase drops entries older than newBase and renumbers offsets from it.
