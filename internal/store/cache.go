@@ -91,8 +91,10 @@ type Table[V Value] struct {
 	free   []kept[V]  // values of expired slots, for Reuse (see recycle)
 	frozen []*Slot[V] // the dirty list of the commit in flight; owned by it while in flight
 	dropQ  []string   // entities landed commits removed, to drop (see queueSwept)
-	keybuf []byte
-	valbuf []byte
+	// dropDue counts the drops Touch owes since it last called dropSwept.
+	dropDue int
+	keybuf  []byte
+	valbuf  []byte
 
 	hits, misses, evictions uint64
 }
@@ -187,7 +189,11 @@ func (t *Table[V]) Insert(key string, v V) *Slot[V] {
 func (t *Table[V]) Touch(sl *Slot[V]) {
 	t.markDirty(sl)
 	if len(t.dropQ) > 0 {
-		t.dropSwept(2)
+		// Two per Touch, a chunk at a time (see dropSwept).
+		if t.dropDue += 2; t.dropDue >= dropChunk || t.dropDue >= len(t.dropQ) {
+			t.dropSwept(t.dropDue)
+			t.dropDue = 0
+		}
 	}
 	t.resize(sl)
 }
