@@ -48,7 +48,15 @@ type placement struct {
 	typ  reflect.Type                     // the aggregate's value type; *typ implements Aggregate
 	init func(p unsafe.Pointer) Aggregate // makes *p an empty aggregate, whatever it held
 	self int                              // bytes of the value that its SizeBytes counts as its own
+	// hint brings what the value at p keeps outside itself into the
+	// processor's caches (see memoryHinter); nil if nothing.
+	hint func(p unsafe.Pointer)
 }
+
+// memoryHinter is a placed aggregate that keeps storage outside its value
+// (panes, raw events, exact entries) and can have it brought into the
+// processor's caches ahead of use.
+type memoryHinter interface{ HintMemory() }
 
 // placeAs is the placement of adapter type T, which embeds a window or
 // sketch value as its first field and is built by init.
@@ -57,13 +65,17 @@ func placeAs[T any, PT interface {
 	Aggregate
 }](init func(*T) error) placement {
 	typ := reflect.TypeFor[T]()
-	return placement{typ: typ, self: int(typ.Field(0).Type.Size()), init: func(p unsafe.Pointer) Aggregate {
+	pl := placement{typ: typ, self: int(typ.Field(0).Type.Size()), init: func(p unsafe.Pointer) Aggregate {
 		x := (*T)(p)
 		if err := init(x); err != nil {
 			panic(err) // unreachable: Open validates every kind with its horizon first
 		}
 		return PT(x)
 	}}
+	if _, ok := any(PT(nil)).(memoryHinter); ok {
+		pl.hint = func(p unsafe.Pointer) { any(PT((*T)(p))).(memoryHinter).HintMemory() }
+	}
+	return pl
 }
 
 // newPlaced builds a placed aggregate on its own, for NewAggregate.
@@ -80,6 +92,8 @@ type recordLayout struct {
 	fields  []layoutField // per feature
 	// size is what one record object costs on the heap (its size class).
 	size int
+	// hints are the placed fields that keep storage outside the record.
+	hints []layoutField
 }
 
 type layoutField struct {
@@ -109,6 +123,11 @@ func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
 			j++
 		}
 	}
+	for _, f := range l.fields {
+		if f.placed && f.pl.hint != nil {
+			l.hints = append(l.hints, f)
+		}
+	}
 	// Go rounds an allocation up to a size class; growing an empty slice
 	// to n bytes lands on the class of n.
 	l.size = cap(slices.Grow([]byte(nil), int(l.typ.Size())))
@@ -118,6 +137,15 @@ func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
 // hint starts bringing r's memory into the processor's caches without
 // reading it (package prefetch): its one object, as laid out by l.
 func (l *recordLayout) hint(r *record) { prefetch.Range(unsafe.Pointer(r), l.size) }
+
+// hintOutside starts bringing what r's aggregates keep outside r into
+// the processor's caches. It reads r, so it pays off once hint has
+// brought r in.
+func (l *recordLayout) hintOutside(r *record) {
+	for i := range l.hints {
+		l.hints[i].pl.hint(unsafe.Add(unsafe.Pointer(r), l.hints[i].off))
+	}
+}
 
 // newRecord returns an empty record with newest time last: one
 // allocation, plus one per feature of a kind that is not placed.

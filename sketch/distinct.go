@@ -8,6 +8,7 @@ import (
 	"time"
 	"unsafe"
 
+	"github.com/tallyward/tallyward/internal/prefetch"
 	"github.com/tallyward/tallyward/internal/sat"
 )
 
@@ -703,6 +704,17 @@ func (d *Distinct) sketchAt(t, start, startT int64) uint64 {
 // Reset empties the summary, keeping its spec.
 func (d *Distinct) Reset() {
 	*d = Distinct{sh: d.sh, exact: d.exact[:0]}
+}
+
+// HintMemory starts bringing the exact entries the summary keeps outside
+// itself into the processor's caches (up to two lines), for a caller
+// about to add or query: it reads the value (which should be in the
+// caches already) and changes nothing.
+func (d *Distinct) HintMemory() {
+	if d.sk != nil || len(d.exact) == 0 || unsafe.SliceData(d.exact) == &d.einl[0] {
+		return
+	}
+	prefetch.Range(unsafe.Pointer(unsafe.SliceData(d.exact)), min(len(d.exact)*int(unsafe.Sizeof(exactEntry{})), 128))
 }
 
 // SizeBytes approximates the heap footprint in bytes.

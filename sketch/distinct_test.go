@@ -320,3 +320,31 @@ func lateAnswersFreeOfEncoding(t *testing.T, spec DistinctSpec) {
 		}
 	}
 }
+
+// TestHintMemoryChangesNothing: HintMemory, called before every add and
+// query through a summary's every regime (empty, entries inside the
+// value, spilled, indexed, sketch), never faults and leaves every answer
+// equal to a twin's that is never hinted.
+func TestHintMemoryChangesNothing(t *testing.T) {
+	spec := DistinctSpec{Window: 60e9, Resolution: 1e9, ExactLimit: 64}
+	hinted, plain := mustDistinct(t, spec), mustDistinct(t, spec)
+	hinted.HintMemory()
+	rng := rand.New(rand.NewPCG(6, 6))
+	now := int64(1e12)
+	for i := range 3000 {
+		now += rng.Int64N(2e8)
+		h := rng.Uint64N(uint64(1 + i/10)) // the set grows past the exact limit
+		h = h*0x9e3779b97f4a7c15 + 1
+		hinted.HintMemory()
+		if a, b := hinted.Add(now, h), plain.Add(now, h); a != b {
+			t.Fatalf("add %d: %v, twin %v", i, a, b)
+		}
+		hinted.HintMemory()
+		if a, b := hinted.DistinctAt(now), plain.DistinctAt(now); a != b {
+			t.Fatalf("add %d: %d, twin %d", i, a, b)
+		}
+	}
+	if hinted.Exact() {
+		t.Fatal("never reached sketch mode: the test no longer covers it")
+	}
+}

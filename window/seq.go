@@ -1,6 +1,10 @@
 package window
 
-import "unsafe"
+import (
+	"unsafe"
+
+	"github.com/tallyward/tallyward/internal/prefetch"
+)
 
 // seq is a slice used as a queue: elements leave at the front (advance lo),
 // arrive mostly at the back, and now and then in the middle. Storage is
@@ -69,4 +73,18 @@ func (s *seq[T]) sizeBytes(elem int, inl []T) int {
 		return 0
 	}
 	return cap(s.buf) * elem
+}
+
+// hint starts bringing s's first and last live elements into the
+// processor's caches when they lie outside inl, the storage inside the
+// value (brought in with the value itself).
+func (s *seq[T]) hint(inl []T) {
+	if s.len() == 0 || unsafe.SliceData(s.buf) == unsafe.SliceData(inl) {
+		return
+	}
+	first, last := unsafe.Pointer(&s.buf[s.lo]), unsafe.Pointer(&s.buf[len(s.buf)-1])
+	prefetch.Line(first)
+	if uintptr(last)/64 != uintptr(first)/64 {
+		prefetch.Line(last)
+	}
 }

@@ -188,6 +188,15 @@ func (g *ring) Newest() (t int64, ok bool) { return g.maxT, g.seen }
 // Count returns the number of events retained (folded into panes or raw).
 func (g *ring) Count() uint64 { return g.total }
 
+// HintMemory starts bringing the panes and raw events the value keeps
+// outside itself into the processor's caches, for a caller about to add
+// or query: it reads the value (which should be in the caches already)
+// and changes nothing.
+func (g *ring) HintMemory() {
+	g.panes.hint(g.pinl[:])
+	g.raw.hint(g.rinl[:])
+}
+
 // SizeBytes returns the approximate heap footprint in bytes.
 func (g *ring) SizeBytes() int {
 	return int(unsafe.Sizeof(*g)) + g.panes.sizeBytes(int(unsafe.Sizeof(pane{})), g.pinl[:]) +

@@ -209,3 +209,12 @@ func (t *Table[V]) HintSlot(pos int) *Slot[V] {
 	prefetch.Line(unsafe.Pointer(sl))
 	return sl
 }
+
+// Readable reports whether the caller may read sl's value now without
+// claiming it (see claim): false only while the commit in flight may be
+// encoding it, which a hint, reading a record to find what it holds
+// outside itself, must not wait for or race with.
+func (t *Table[V]) Readable(sl *Slot[V]) bool {
+	f := t.store.flightGen
+	return sl.dirtyIn != f || sl.hand.Load() == handDone(f)
+}

@@ -219,6 +219,50 @@ func TestFailedCommitGivesBackHands(t *testing.T) {
 	}
 }
 
+// TestReadableFollowsTheHand: a frozen slot the commit's goroutine has
+// not finished with is not Readable (a hint must not read it), and is once
+// the caller has claimed it; a slot that is not frozen always is.
+func TestReadableFollowsTheHand(t *testing.T) {
+	s := mustOpen(t, Options{FS: vfs.NewMem(), CacheBytes: 1 << 20})
+	defer s.Close()
+	tb := NewTable(s, "t", 100, decodeTV)
+	tb.Insert("bad", &tv{Last: 2, failEncode: true})
+	var slots []*Slot[*tv]
+	for i := range 2 * encodeAhead {
+		slots = append(slots, tb.Insert(fmt.Sprintf("good%d", i), rec{Last: 2, N: uint64(i)}.value()))
+	}
+	for _, sl := range slots {
+		if !tb.Readable(sl) {
+			t.Fatalf("%s: not readable with no commit in flight", sl.Key)
+		}
+	}
+	if err := s.CommitAsync(Mark{Seen: 1, Resume: 1}); err != nil {
+		t.Fatal(err)
+	}
+	// The commit fails at "bad", first in line, and gives the slots it
+	// holds back: each stays frozen until the caller claims it.
+	f := s.flight
+	landed := <-f.done
+	f.done <- landed
+	for i, sl := range slots {
+		if tb.Readable(sl) {
+			t.Fatalf("%s: readable while frozen and unclaimed", sl.Key)
+		}
+		if got, err := tb.Get(sl.Key); err != nil || got != sl {
+			t.Fatalf("%s: get %v, %v", sl.Key, got, err)
+		}
+		if !tb.Readable(sl) {
+			t.Fatalf("%s: not readable once claimed", sl.Key)
+		}
+		if i > 0 && !tb.Readable(slots[i-1]) {
+			t.Fatalf("%s: claiming the next one made it unreadable", slots[i-1].Key)
+		}
+	}
+	if err := s.Settle(); !errors.Is(err, errEncode) {
+		t.Fatalf("settle: %v", err)
+	}
+}
+
 // TestFailedIsSticky provokes a failed write (a record that refuses to
 // encode, at commit and at a dirty eviction) and checks that the store
 // then refuses every call that can return an error, that nothing of the
