@@ -354,7 +354,9 @@ func (p *Pipeline[E]) process(e E, now int64, dst []float64, wantVals bool) ([]f
 	} else {
 		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
 		h.before = before
-		p.held.ReplaceOrInsert(h)
+		if old, ok := p.held.ReplaceOrInsert(h); ok {
+			p.slab.release(old) // never expected: sequence numbers are unique
+		}
 	}
 	p.raiseWatermark(sat.Sub(p.maxT, int64(p.opts.MaxDisorder)))
 	if p.work != nil {
@@ -417,7 +419,9 @@ func (p *Pipeline[E]) reconsume(e E, seq uint64) error {
 	if p.opts.Mode == Settled && p.in.t >= w {
 		h := p.slab.hold(seq, p.in.tieBreak(p.tieItemHashes()), e, &p.in)
 		h.before = before
-		p.held.ReplaceOrInsert(h)
+		if old, ok := p.held.ReplaceOrInsert(h); ok {
+			p.slab.release(old) // never expected: sequence numbers are unique
+		}
 	}
 	return nil
 }
@@ -656,6 +660,7 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		if p.work != nil {
 			for i, h := range p.batch {
 				p.queue(h.seq, h.e, &h.in, false, i > 0, nil)
+				p.slab.release(h) // queue copied it
 			}
 			clear(p.batch)
 			// A full batch goes to the workers between timestamps, never
@@ -681,6 +686,9 @@ func (p *Pipeline[E]) raiseWatermark(w int64) {
 		for _, h := range p.batch {
 			p.valuesAt(&h.in, p.vals, recs, false)
 			p.emit(h.seq, t, h.e, false)
+		}
+		for _, h := range p.batch {
+			p.slab.release(h)
 		}
 		clear(p.batch)
 	}
@@ -911,7 +919,8 @@ type held[E any] struct {
 	tie    uint64
 	e      E
 	in     inputs
-	before newestTime // the newest event time just before it arrived
+	before newestTime    // the newest event time just before it arrived
+	from   *holdChunk[E] // where it was carved (holdSlab)
 }
 
 // newestTime is an optional newest event time.
