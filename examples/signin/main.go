@@ -84,6 +84,9 @@ func run(n int, seed uint64) error {
 	}
 	peaks := map[string]peak{}
 	emit := func(r tallyward.Row[attempt]) {
+		if r.Values[0] == 0 {
+			return // no failed sign-in in its last 10 minutes: not a peak worth keeping
+		}
 		if p, ok := peaks[r.Event.Addr]; !ok || r.Values[0] > p.vals[0] {
 			peaks[r.Event.Addr] = peak{r.Event.Addr, r.Time, slices.Clone(r.Values)}
 		}
@@ -195,31 +198,38 @@ var begin = time.Date(2026, 3, 14, 8, 0, 0, 0, time.UTC).UnixNano()
 // generate makes n attempts over six hours: ordinary users who mostly
 // succeed from their own few addresses, and, in hour four, three addresses
 // (documentation ranges) cycling through many accounts with mostly wrong
-// passwords.
+// passwords. The attempts are drawn first and named in time order, so
+// their strings lie in memory in the order a replay reads them, as a
+// decoded log's would.
 func generate(n int, seed uint64) []attempt {
+	type draw struct {
+		at         int64
+		user, home int // home < 0: attacker -1-home
+		ok         bool
+	}
 	r := rand.New(rand.NewPCG(seed, 7))
 	span := int64(6 * time.Hour)
-	evs := make([]attempt, 0, n)
+	draws := make([]draw, 0, n)
 	for range n * 95 / 100 {
 		u := r.IntN(20_000)
 		home := u*3 + r.IntN(3) // three addresses per user
-		evs = append(evs, attempt{
-			At:      begin + r.Int64N(span),
-			Account: fmt.Sprintf("user%05d", u),
-			Addr:    fmt.Sprintf("198.51.%d.%d", home/250%250, home%250+1),
-			OK:      r.IntN(20) != 0,
-		})
+		draws = append(draws, draw{at: begin + r.Int64N(span), user: u, home: home, ok: r.IntN(20) != 0})
 	}
 	attackers := []string{"203.0.113.7", "203.0.113.8", "203.0.113.9"}
 	burst := begin + int64(3*time.Hour)
-	for len(evs) < n {
-		evs = append(evs, attempt{
-			At:      burst + r.Int64N(int64(40*time.Minute)),
-			Account: fmt.Sprintf("user%05d", r.IntN(20_000)),
-			Addr:    attackers[r.IntN(len(attackers))],
-			OK:      r.IntN(200) == 0,
-		})
+	for len(draws) < n {
+		draws = append(draws, draw{at: burst + r.Int64N(int64(40*time.Minute)), user: r.IntN(20_000), home: -1 - r.IntN(len(attackers)), ok: r.IntN(200) == 0})
 	}
-	slices.SortFunc(evs, func(a, b attempt) int { return cmp.Compare(a.At, b.At) })
+	slices.SortFunc(draws, func(a, b draw) int { return cmp.Compare(a.at, b.at) })
+	evs := make([]attempt, len(draws))
+	for i, d := range draws {
+		addr := ""
+		if d.home < 0 {
+			addr = attackers[-1-d.home]
+		} else {
+			addr = fmt.Sprintf("198.51.%d.%d", d.home/250%250, d.home%250+1)
+		}
+		evs[i] = attempt{At: d.at, Account: fmt.Sprintf("user%05d", d.user), Addr: addr, OK: d.ok}
+	}
 	return evs
 }
