@@ -25,11 +25,11 @@ type lookahead struct {
 
 // hintChain is one key's way along the chain of misses.
 type hintChain struct {
-	tb   *store.Table[*record]
-	tag  uint64
-	pos  int
-	slot *store.Slot[*record]
-	held *store.Slot[*record] // the slot whose record step 3 hinted
+	tb     *store.Table[*record]
+	tag    uint64
+	pos    int
+	slot   *store.Slot[*record]
+	hinted *store.Slot[*record] // the slot whose record step 3 hinted
 }
 
 const (
@@ -63,13 +63,13 @@ func (c *hintChain) step(i int, tb *store.Table[*record], key string, lay *recor
 			c.slot = nil
 			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
 			lay.hint(sl.Value)
-			c.held = sl
+			c.hinted = sl
 		}
 	case 4:
 		// Reading the record races with the commit in flight encoding
 		// it, unless the table says otherwise.
-		if sl := c.held; sl != nil {
-			c.held = nil
+		if sl := c.hinted; sl != nil {
+			c.hinted = nil
 			if r := sl.Value; r != nil && c.tb.Readable(sl) {
 				lay.hintOutside(r)
 			}
