@@ -1,9 +1,6 @@
 package tallyward
 
 import (
-	"unsafe"
-
-	"github.com/tallyward/tallyward/internal/prefetch"
 	"github.com/tallyward/tallyward/internal/store"
 )
 
@@ -23,20 +20,19 @@ type lookahead struct {
 	chain [aheadRing]hintChain
 }
 
-// hintChain is one key's way along the chain of misses.
+// hintChain is one key's way along the chain of misses: the store's
+// (store.HintChain), then one step of its own.
 type hintChain struct {
 	tb     *store.Table[*record]
-	tag    uint64
-	pos    int
-	slot   *store.Slot[*record]
-	hinted *store.Slot[*record] // the slot whose record step 3 hinted
+	chain  store.HintChain[*record]
+	hinted *store.Slot[*record] // the slot whose record the store's last step hinted
 }
 
 const (
-	// aheadSteps is the chain's length: index entry, slot position,
-	// slot, key and record, then what the record's aggregates keep
-	// outside it (panes, exact entries).
-	aheadSteps = 5
+	// aheadSteps is the chain's length: the store's steps (index entry,
+	// slot position, slot, key and record), then what the record's
+	// aggregates keep outside it (panes, exact entries).
+	aheadSteps = store.HintSteps + 1
 	// aheadDepth is how many keys ahead a worker starts a chain: one
 	// step per key, with a key's gap between the record's step and the
 	// last, which reads the record: without it the last step waited for
@@ -48,31 +44,25 @@ const (
 	aheadRing  = 8 // > aheadDepth, a power of two
 )
 
-// step takes step i of the chain of key (of table tb, laid out by lay):
-// each reads only what the step before brought in.
+// step takes step i of the chain of key (of table tb, needed at step 0;
+// records laid out by lay): each reads only what the step before brought
+// in.
 func (c *hintChain) step(i int, tb *store.Table[*record], key string, lay *recordLayout) {
-	switch i {
-	case 0:
-		c.tb, c.tag = tb, tb.HintIndex(key)
-	case 1:
-		c.pos = c.tb.HintPos(c.tag)
-	case 2:
-		c.slot = c.tb.HintSlot(c.pos)
-	case 3:
-		if sl := c.slot; sl != nil {
-			c.slot = nil
-			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-			lay.hint(sl.Value)
+	if i == 0 {
+		c.tb = tb
+	}
+	if i < store.HintSteps {
+		if sl := c.chain.Step(c.tb, i, key); sl != nil {
 			c.hinted = sl
 		}
-	case 4:
-		// Reading the record races with the commit in flight encoding
-		// it, unless the table says otherwise.
-		if sl := c.hinted; sl != nil {
-			c.hinted = nil
-			if r := sl.Value; r != nil && c.tb.Readable(sl) {
-				lay.hintOutside(r)
-			}
+		return
+	}
+	// Reading the record races with the commit in flight encoding it,
+	// unless the table says otherwise.
+	if sl := c.hinted; sl != nil {
+		c.hinted = nil
+		if r := sl.Value; r != nil && c.tb.Readable(sl) {
+			lay.hintOutside(r)
 		}
 	}
 }

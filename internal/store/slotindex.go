@@ -210,6 +210,44 @@ func (t *Table[V]) HintSlot(pos int) *Slot[V] {
 	return sl
 }
 
+// HintChain walks one key's chain of misses, a step per call to Step, so
+// that the caller can interleave several keys' chains with its work: the
+// workers' lookahead and dropSwept use it.
+type HintChain[V Value] struct {
+	tag  uint64
+	pos  int
+	slot *Slot[V]
+}
+
+// HintSteps is the length of a HintChain: index entry, slot position,
+// slot, then key and value.
+const HintSteps = 4
+
+// Step takes step i (0 <= i < HintSteps) of key's chain in t; each reads
+// only what the step before brought in. The last step hints the slot's
+// key and value (HintValue) and returns the slot, nil if there is none.
+func (c *HintChain[V]) Step(t *Table[V], i int, key string) *Slot[V] {
+	switch i {
+	case 0:
+		c.tag = t.HintIndex(key)
+	case 1:
+		c.pos = t.HintPos(c.tag)
+	case 2:
+		c.slot = t.HintSlot(c.pos)
+	case 3:
+		sl := c.slot
+		c.slot = nil
+		if sl != nil {
+			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
+			if t.HintValue != nil {
+				t.HintValue(sl.Value)
+			}
+		}
+		return sl
+	}
+	return nil
+}
+
 // Readable reports whether the caller may read sl's value now without
 // claiming it (see claim): false only while the commit in flight may be
 // encoding it, which a hint, reading a record to find what it holds

@@ -5,10 +5,8 @@ import (
 	"fmt"
 	"math"
 	"slices"
-	"unsafe"
 
 	"github.com/cockroachdb/pebble/v2"
-	"github.com/tallyward/tallyward/internal/prefetch"
 	"github.com/tallyward/tallyward/internal/sat"
 )
 
@@ -136,33 +134,11 @@ func (g *removedKeys) add(name, entity string, part int) {
 func (t *Table[V]) dropSwept(n int) {
 	n = min(n, len(t.dropQ))
 	q := t.dropQ[len(t.dropQ)-n:]
-	var chain [dropRing]struct {
-		tag uint64
-		pos int
-		sl  *Slot[V]
-	}
-	for k := -dropSteps; k < n; k++ {
-		for s := range dropSteps {
-			m := k + dropSteps - s // the entity taking step s now
-			if m < 0 || m >= n {
-				continue
-			}
-			c := &chain[m%dropRing]
-			switch s {
-			case 0:
-				c.tag = t.HintIndex(q[n-1-m])
-			case 1:
-				c.pos = t.HintPos(c.tag)
-			case 2:
-				c.sl = t.HintSlot(c.pos)
-			case 3:
-				if sl := c.sl; sl != nil {
-					c.sl = nil
-					prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-					if t.HintValue != nil {
-						t.HintValue(sl.Value)
-					}
-				}
+	var chain [dropRing]HintChain[V]
+	for k := -HintSteps; k < n; k++ {
+		for s := range HintSteps {
+			if m := k + HintSteps - s; m >= 0 && m < n { // the entity taking step s now
+				chain[m%dropRing].Step(t, s, q[n-1-m])
 			}
 		}
 		if k < 0 {
@@ -178,14 +154,12 @@ func (t *Table[V]) dropSwept(n int) {
 	t.dropQ = t.dropQ[:len(t.dropQ)-n]
 }
 
-// dropSteps is the length of dropSwept's chain of misses; dropChunk is how
-// many queued entities Touch drops at a time (two per Touch on average).
-// Eight overlap enough chains to halve the drops' cost; 32 did no better
+// dropChunk is how many queued entities Touch drops at a time (two per
+// Touch on average). Eight overlap enough chains to halve the drops' cost; 32 did no better
 // and put about 2 µs on every sixteenth inline call (p99 of Score cache
 // hits 13.8-14.5 -> 16.2-16.5 µs), where eight leave it unchanged.
 const (
-	dropSteps = 4
-	dropRing  = 8 // > dropSteps, a power of two
+	dropRing  = 8 // > HintSteps, a power of two
 	dropChunk = 8
 )
 
