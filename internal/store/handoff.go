@@ -136,10 +136,7 @@ func (t *Table[V]) encodeFrozen(c *collector, gen uint64, w int64, gone *removed
 			}
 		}
 		if held[j%encodeRing].sl != nil && sl.dirtyIn == gen {
-			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-			if t.HintValue != nil {
-				t.HintValue(sl.Value)
-			}
+			t.hintContents(sl)
 		}
 	}
 	for j := range min(encodeAhead, len(frozen)) {

@@ -238,14 +238,20 @@ func (c *HintChain[V]) Step(t *Table[V], i int, key string) *Slot[V] {
 		sl := c.slot
 		c.slot = nil
 		if sl != nil {
-			prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
-			if t.HintValue != nil {
-				t.HintValue(sl.Value)
-			}
+			t.hintContents(sl)
 		}
 		return sl
 	}
 	return nil
+}
+
+// hintContents starts bringing sl's key and value (HintValue) into the
+// processor's caches.
+func (t *Table[V]) hintContents(sl *Slot[V]) {
+	prefetch.Line(unsafe.Pointer(unsafe.StringData(sl.Key)))
+	if t.HintValue != nil {
+		t.HintValue(sl.Value)
+	}
 }
 
 // Readable reports whether the caller may read sl's value now without
