@@ -40,6 +40,7 @@ func BenchmarkLive(b *testing.B) {
 	for _, g := range []int{1, 2, 4, 16} {
 		b.Run(fmt.Sprintf("g%d", g), func(b *testing.B) {
 			var late uint64
+			var cpu time.Duration
 			for range b.N {
 				b.StopTimer()
 				opts := tallyward.Options{Dir: b.TempDir(), MaxDisorder: 10 * time.Minute, CacheBytes: featureCacheBytes(), Workers: *benchWorkers}
@@ -54,6 +55,8 @@ func BenchmarkLive(b *testing.B) {
 				var wg sync.WaitGroup
 				errs := make(chan error, g)
 				ctx := context.Background()
+				var m memDelta
+				m.start()
 				b.StartTimer()
 				for range g {
 					wg.Add(1)
@@ -77,6 +80,7 @@ func BenchmarkLive(b *testing.B) {
 				}
 				wg.Wait()
 				b.StopTimer()
+				cpu += m.cpuSince()
 				close(errs)
 				for err := range errs {
 					b.Fatal(err)
@@ -89,6 +93,11 @@ func BenchmarkLive(b *testing.B) {
 			}
 			b.ReportMetric(float64(b.N)*float64(len(data.events))/b.Elapsed().Seconds(), "events/s")
 			b.ReportMetric(float64(late)/float64(b.N), "late")
+			// CPU per event (every goroutine: the callers, the commit's,
+			// Pebble's and the GC's) against wall time per event says how
+			// many cores the pass kept busy.
+			b.ReportMetric(float64(cpu.Nanoseconds())/float64(b.N*len(data.events)), "cpu-ns/event")
+			b.ReportMetric(cpu.Seconds()/b.Elapsed().Seconds(), "cores")
 		})
 	}
 }

@@ -2,10 +2,8 @@ package store
 
 import (
 	"bytes"
-	"cmp"
 	"fmt"
 	"math"
-	"slices"
 
 	"github.com/cockroachdb/pebble/v2"
 )
@@ -25,10 +23,12 @@ type writer interface {
 // Keys have an arena of their own because sorting reads only keys: next
 // to each other a commit's keys take a few megabytes, where keys between
 // values (records of hundreds of bytes) put every key on a cache line of
-// its own. A sort of 180k writes took 84 ms with keys among the values
-// and takes 60 ms with keys apart (BenchmarkCollectorSorted); entries
-// stay 16 bytes (24-byte ones took about 155 ms to sort), so a value's
-// offset counts 8-byte units: values start 8-byte aligned.
+// its own. A comparison sort of 180k writes took 84 ms with keys among
+// the values and 60 ms with keys apart (BenchmarkCollectorSorted; the
+// radix sort of keysort.go reads each key a few times, not n·log n);
+// entries stay 16 bytes (24-byte ones took about 155 ms to sort by
+// comparison), so a value's offset counts 8-byte units: values start
+// 8-byte aligned.
 type collector struct {
 	ents []entry
 	keys []byte
@@ -134,11 +134,4 @@ func (c *collector) sorted() []entry {
 }
 
 // sortByKey orders c.ents by key, writes of one key in write order.
-func (c *collector) sortByKey() {
-	slices.SortFunc(c.ents, func(a, b entry) int {
-		if r := bytes.Compare(c.key(a), c.key(b)); r != 0 {
-			return r
-		}
-		return cmp.Compare(a.koff, b.koff)
-	})
-}
+func (c *collector) sortByKey() { c.sortEntries(c.ents) }

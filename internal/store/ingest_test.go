@@ -2,6 +2,8 @@ package store
 
 import (
 	"bytes"
+	"cmp"
+	"encoding/binary"
 	"fmt"
 	"math/rand/v2"
 	"slices"
@@ -10,26 +12,35 @@ import (
 
 // TestCollectorSortedMatchesStableSort checks sorted against a reference:
 // a stable sort of the writes by key (bytes.Compare), keeping the last
-// write of each key. Keys are drawn to hit the prefix comparison's edges:
-// shared prefixes longer than the 32 inline bytes, keys that differ only
-// by trailing zero bytes, empty keys and repeated keys.
+// write of each key. Keys are drawn to hit the radix sort's edges: shared
+// prefixes of every length around its seven-byte words, keys that differ
+// only by trailing zero bytes, bytes 0 and 0xff, empty keys and repeated
+// keys; runs below and above both its comparison cut-off and its switch
+// to wider digits.
 func TestCollectorSortedMatchesStableSort(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 4))
 	alphabet := []byte{0, 1, 'a', 'b', 0xff}
-	for trial := range 300 {
-		var c collector
+	var c collector
+	for trial := range 330 {
 		type write struct {
 			key, val []byte
 			del      bool
 		}
 		var ws []write
+		n := r.IntN(200)
+		if trial >= 300 {
+			n = 4000 + r.IntN(20_000) // 11-bit digits
+		}
 		stem := bytes.Repeat([]byte{'s'}, r.IntN(40))
-		for range r.IntN(200) {
+		for range n {
 			k := slices.Clone(stem[:r.IntN(len(stem)+1)])
 			for range r.IntN(6) {
 				k = append(k, alphabet[r.IntN(len(alphabet))])
 			}
-			w := write{key: k, val: []byte{byte(len(ws))}, del: r.IntN(4) == 0}
+			if trial >= 300 && r.IntN(2) == 0 {
+				k = fmt.Appendf(k, "%07d", r.IntN(n)) // digits, as entity keys
+			}
+			w := write{key: k, val: binary.AppendUvarint(nil, uint64(len(ws))), del: r.IntN(4) == 0}
 			ws = append(ws, w)
 			if w.del {
 				c.Delete(w.key, nil)
@@ -58,6 +69,33 @@ func TestCollectorSortedMatchesStableSort(t *testing.T) {
 		}
 		// The collector is reused after reset, as commits do.
 		c.reset()
+	}
+}
+
+// TestSortWordOrder checks that comparing two keys' sort words agrees
+// with bytes.Compare on the keys wherever the words differ, and that equal
+// words mean equal keys or keys both longer than seven bytes with the same
+// first seven (which the sort compares further on).
+func TestSortWordOrder(t *testing.T) {
+	r := rand.New(rand.NewPCG(5, 6))
+	alphabet := []byte{0, 1, 0x7f, 0x80, 0xff}
+	draw := func() []byte {
+		k := make([]byte, r.IntN(11))
+		for i := range k {
+			k[i] = alphabet[r.IntN(len(alphabet))]
+		}
+		return k
+	}
+	for range 200_000 {
+		a, b := draw(), draw()
+		wa, wb := sortWord(a), sortWord(b)
+		want := bytes.Compare(a, b)
+		switch got := cmp.Compare(wa, wb); {
+		case got != 0 && got != want:
+			t.Fatalf("%x vs %x: words compare %d, keys %d", a, b, got, want)
+		case got == 0 && want != 0 && (len(a) < 8 || len(b) < 8 || !bytes.Equal(a[:7], b[:7])):
+			t.Fatalf("%x vs %x: equal words for different keys", a, b)
+		}
 	}
 }
 
