@@ -74,8 +74,8 @@ func freshAggs(horizon time.Duration) func() []Aggregate {
 // state does, and re-encodes to itself.
 func TestRecordGolden(t *testing.T) {
 	const horizon = 20 * time.Second
-	r := &record{last: t0 + 77*int64(time.Second), aggs: freshAggs(horizon)()}
-	goldenFeed(r.aggs)
+	r := &record{last: t0 + 77*int64(time.Second), own: freshAggs(horizon)()}
+	goldenFeed(r.aggs(nil))
 	b, err := r.AppendBinary(nil)
 	require.NoError(t, err)
 	want := goldenBlob(t, "record-v1", b)
@@ -86,8 +86,8 @@ func TestRecordGolden(t *testing.T) {
 	require.NoError(t, err)
 	require.Equal(t, want, again)
 	at := r.last - int64(5*time.Second)
-	for i := range r.aggs {
-		require.Equal(t, math.Float64bits(r.aggs[i].At(at, 0)), math.Float64bits(got.aggs[i].At(at, 0)), "feature %d", i)
+	for i := range r.features() {
+		require.Equal(t, math.Float64bits(r.agg(i).At(at, 0)), math.Float64bits(got.agg(i).At(at, 0)), "feature %d", i)
 	}
 	last, err := peekLast(want)
 	require.NoError(t, err)

@@ -51,18 +51,21 @@ func (p *Pipeline[E]) Lookup(entity, key string, t int64, dst []float64) (_ []fl
 	if key == "" {
 		return dst, false, ErrEmptyKey
 	}
-	aggs := es.zero
 	exact = true
 	sl, err := es.part(key).Get(key)
 	if err != nil {
 		p.err = err
 		return dst, false, err
 	}
+	var rec *record
 	if sl != nil && !es.expired(sl.Value, p.expiryClock()) {
-		aggs = sl.Value.aggs
-		exact = t >= sl.Value.last-es.horizon
+		rec = sl.Value
+		exact = t >= rec.last-es.horizon
 	}
-	for _, a := range aggs {
+	for j, a := range es.zero {
+		if rec != nil {
+			a = rec.agg(j)
+		}
 		dst = append(dst, a.At(t, 0))
 	}
 	return dst, exact, nil

@@ -547,8 +547,8 @@ func (es *entityState[E]) applyKey(tb *store.Table[*record], key string, t, exp 
 		sl.Value.reset()
 	}
 	rec := sl.Value
-	for j, a := range rec.aggs {
-		if on[j] && !a.Add(t, v[j], item[j]) {
+	for j := range rec.features() {
+		if on[j] && !rec.agg(j).Add(t, v[j], item[j]) {
 			c.tooOld++
 		}
 	}
@@ -591,21 +591,25 @@ func (es *entityState[E]) valuesOf(tb *store.Table[*record], key string, t, exp 
 		}
 		return nil
 	}
-	aggs := zero
 	var err error
-	if rec != nil {
-		aggs = rec.aggs
-	} else if sl, gerr := tb.Get(key); gerr != nil {
-		err = gerr
-	} else if sl != nil && !es.expired(sl.Value, exp) {
-		aggs = sl.Value.aggs
-	} else if sl == nil && st.Erased(es.ent.Name, key) {
-		for j := range out {
-			out[j] = math.NaN()
+	if rec == nil {
+		switch sl, gerr := tb.Get(key); {
+		case gerr != nil:
+			err = gerr
+		case sl != nil && !es.expired(sl.Value, exp):
+			rec = sl.Value
+		case sl == nil && st.Erased(es.ent.Name, key):
+			for j := range out {
+				out[j] = math.NaN()
+			}
+			return nil
 		}
-		return nil
 	}
-	for j, a := range aggs {
+	for j := range zero {
+		a := zero[j]
+		if rec != nil {
+			a = rec.agg(j)
+		}
 		at := t
 		if es.ent.Features[j].BeforeEvent {
 			if at == math.MinInt64 {

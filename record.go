@@ -19,7 +19,7 @@ import (
 // entity, so an event costs one lookup per entity.
 //
 // Memory. A record made by a recordLayout is one heap object: this
-// header, the aggs array and every built-in aggregate by value (window
+// header and every built-in aggregate by value (window
 // and sketch types built in place with their Init, their first panes,
 // raw events and items stored inside them). A sparse entity therefore
 // costs one allocation and the collector scans one object; only an
@@ -29,10 +29,40 @@ import (
 type record struct {
 	// last is the newest event time applied to this record.
 	last int64
-	// aggs holds one aggregate per feature of the entity, in definition
-	// order. Invariant: len(aggs) == len(entity.Features).
-	aggs []Aggregate
 	lay  *recordLayout // how the record was made; nil: aggregate by aggregate
+	// own holds the aggregates that are objects of their own, by feature
+	// index (definition order): every one of a record made without a
+	// layout, and those of kinds its layout does not place (nil where a
+	// kind is placed, and nil altogether when every kind is). A placed
+	// aggregate is reached through the layout (agg): an array of
+	// interfaces in the record would cost 16 bytes per feature, a cache
+	// line of every six-feature account record.
+	own []Aggregate
+}
+
+// features returns how many features r holds.
+func (r *record) features() int {
+	if r.lay != nil {
+		return len(r.lay.fields)
+	}
+	return len(r.own)
+}
+
+// agg returns r's aggregate of feature i.
+func (r *record) agg(i int) Aggregate {
+	if l := r.lay; l != nil && l.fields[i].placed {
+		f := &l.fields[i]
+		return f.pl.as(unsafe.Add(unsafe.Pointer(r), f.off))
+	}
+	return r.own[i]
+}
+
+// aggs returns r's aggregates, appended to dst.
+func (r *record) aggs(dst []Aggregate) []Aggregate {
+	for i := range r.features() {
+		dst = append(dst, r.agg(i))
+	}
+	return dst
 }
 
 // placedKind is implemented by built-in kinds whose aggregate can live by
@@ -47,6 +77,7 @@ type placedKind interface {
 type placement struct {
 	typ  reflect.Type                     // the aggregate's value type; *typ implements Aggregate
 	init func(p unsafe.Pointer) Aggregate // makes *p an empty aggregate, whatever it held
+	as   func(p unsafe.Pointer) Aggregate // the aggregate at p
 	self int                              // bytes of the value that its SizeBytes counts as its own
 	// hint brings what the value at p keeps outside itself into the
 	// processor's caches (see memoryHinter); nil if nothing.
@@ -71,7 +102,7 @@ func placeAs[T any, PT interface {
 			panic(err) // unreachable: Open validates every kind with its horizon first
 		}
 		return PT(x)
-	}}
+	}, as: func(p unsafe.Pointer) Aggregate { return PT((*T)(p)) }}
 	if _, ok := any(PT(nil)).(memoryHinter); ok {
 		pl.hint = func(p unsafe.Pointer) { any(PT((*T)(p))).(memoryHinter).HintMemory() }
 	}
@@ -82,14 +113,16 @@ func placeAs[T any, PT interface {
 func newPlaced(pl placement) Aggregate { return pl.init(reflect.New(pl.typ).UnsafePointer()) }
 
 // recordLayout lays out the records of one entity: a struct type made at
-// Open, struct{ R record; A [n]Aggregate; F0 T0; F1 T1; ... }, with one
-// field per feature whose kind is placed.
+// Open, struct{ R record; F0 T0; F1 T1; ... }, with one field per feature
+// whose kind is placed.
 type recordLayout struct {
 	kinds   []Kind
 	horizon time.Duration
 	typ     reflect.Type
-	aggsOff uintptr
 	fields  []layoutField // per feature
+	// unplaced: some kind is not placed (a user kind), so records keep
+	// an own slice.
+	unplaced bool
 	// size is what one record object costs on the heap (its size class).
 	size int
 	// hints are the placed fields that keep storage outside the record.
@@ -107,17 +140,17 @@ func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
 	l := &recordLayout{kinds: kinds, horizon: horizon, fields: make([]layoutField, len(kinds))}
 	sf := []reflect.StructField{
 		{Name: "R", Type: reflect.TypeFor[record]()},
-		{Name: "A", Type: reflect.ArrayOf(len(kinds), reflect.TypeFor[Aggregate]())},
 	}
 	for i, k := range kinds {
 		if pk, ok := k.(placedKind); ok {
 			l.fields[i] = layoutField{placed: true, pl: pk.placement(horizon)}
 			sf = append(sf, reflect.StructField{Name: "F" + strconv.Itoa(i), Type: l.fields[i].pl.typ})
+		} else {
+			l.unplaced = true
 		}
 	}
 	l.typ = reflect.StructOf(sf)
-	l.aggsOff = l.typ.Field(1).Offset
-	for i, j := 0, 2; i < len(kinds); i++ {
+	for i, j := 0, 1; i < len(kinds); i++ {
 		if l.fields[i].placed {
 			l.fields[i].off = l.typ.Field(j).Offset
 			j++
@@ -153,7 +186,9 @@ func (l *recordLayout) newRecord(last int64) *record {
 	base := reflect.New(l.typ).UnsafePointer()
 	r := (*record)(base)
 	r.last, r.lay = last, l
-	r.aggs = unsafe.Slice((*Aggregate)(unsafe.Add(base, l.aggsOff)), len(l.kinds))
+	if l.unplaced {
+		r.own = make([]Aggregate, len(l.kinds))
+	}
 	l.empty(r)
 	return r
 }
@@ -177,9 +212,9 @@ func (l *recordLayout) empty(r *record) {
 	base := unsafe.Pointer(r)
 	for i := range l.fields {
 		if f := &l.fields[i]; f.placed {
-			r.aggs[i] = f.pl.init(unsafe.Add(base, f.off))
+			f.pl.init(unsafe.Add(base, f.off))
 		} else {
-			r.aggs[i] = l.kinds[i].NewAggregate(l.horizon)
+			r.own[i] = l.kinds[i].NewAggregate(l.horizon)
 		}
 	}
 }
@@ -191,7 +226,7 @@ func (l *recordLayout) empty(r *record) {
 func (r *record) reset() { r.lay.empty(r) }
 
 // fresh returns empty aggregates of a new record.
-func (l *recordLayout) fresh() []Aggregate { return l.newRecord(0).aggs }
+func (l *recordLayout) fresh() []Aggregate { return l.newRecord(0).aggs(nil) }
 
 // decode decodes a stored record into a new one (see decodeRecord).
 func (l *recordLayout) decode(b []byte) (*record, error) {
@@ -215,7 +250,7 @@ var errRecord = errors.New("entity record")
 //	n times: uvarint length, then that many bytes of the feature's own
 //	         versioned encoding (package window or sketch)
 func (r *record) AppendBinary(dst []byte) ([]byte, error) {
-	return appendRecord(dst, r.last, len(r.aggs), func(i int, dst []byte) ([]byte, error) { return r.aggs[i].AppendBinary(dst) })
+	return appendRecord(dst, r.last, r.features(), func(i int, dst []byte) ([]byte, error) { return r.agg(i).AppendBinary(dst) })
 }
 
 // appendRecord writes the record layout of AppendBinary with n features,
@@ -241,18 +276,21 @@ func (r *record) LastTime() int64 { return r.last }
 // that is an object of its own.
 func (r *record) SizeBytes() int {
 	if r.lay == nil {
-		n := 48 + 16*len(r.aggs)
-		for _, a := range r.aggs {
+		n := 48 + 16*len(r.own)
+		for _, a := range r.own {
 			n += a.SizeBytes()
 		}
 		return n
 	}
 	n := r.lay.size
-	for i, a := range r.aggs {
+	if r.own != nil {
+		n += 16 * cap(r.own)
+	}
+	for i := range r.lay.fields {
 		if f := &r.lay.fields[i]; f.placed {
-			n += a.SizeBytes() - f.pl.self
+			n += f.pl.as(unsafe.Add(unsafe.Pointer(r), f.off)).SizeBytes() - f.pl.self
 		} else {
-			n += a.SizeBytes()
+			n += r.own[i].SizeBytes()
 		}
 	}
 	return n
@@ -283,7 +321,7 @@ func peekLast(b []byte) (int64, error) {
 //	         versioned encoding
 //	then end of input
 func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
-	r := &record{aggs: fresh()}
+	r := &record{own: fresh()}
 	if err := r.decode(b); err != nil {
 		return nil, err
 	}
@@ -299,15 +337,15 @@ func (r *record) decode(b []byte) error {
 	}
 	r.last = d.Varint()
 	n := d.Uvarint()
-	if d.Err == nil && n != uint64(len(r.aggs)) {
-		return fmt.Errorf("%w: holds %d features, definition has %d", errRecord, n, len(r.aggs))
+	if d.Err == nil && n != uint64(r.features()) {
+		return fmt.Errorf("%w: holds %d features, definition has %d", errRecord, n, r.features())
 	}
-	for i := range r.aggs {
+	for i := range r.features() {
 		blob := d.Bytes(d.Len())
 		if d.Err != nil {
 			break
 		}
-		if err := r.aggs[i].UnmarshalBinary(blob); err != nil {
+		if err := r.agg(i).UnmarshalBinary(blob); err != nil {
 			return fmt.Errorf("%w: feature %d: %w", errRecord, i, err)
 		}
 	}

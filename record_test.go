@@ -56,7 +56,7 @@ func TestRecordIsOneObject(t *testing.T) {
 	lay := newRecordLayout(sixKinds(), time.Nanosecond)
 	var r *record
 	require.Equal(t, 1.0, testing.AllocsPerRun(100, func() { r = lay.newRecord(t0) }))
-	for i, a := range r.aggs {
+	for i, a := range r.aggs(nil) {
 		require.True(t, a.Add(t0+int64(i), 2, 7), "feature %d", i)
 	}
 	// A sparse entity's record read back from the store is one object too.
@@ -86,7 +86,7 @@ func TestRecordResetEqualsNew(t *testing.T) {
 			tt := t0
 			for range n {
 				tt += rr.Int64N(int64(2 * time.Minute))
-				for _, a := range rec.aggs {
+				for _, a := range rec.aggs(nil) {
 					a.Add(tt-rr.Int64N(int64(horizon)), float64(rr.IntN(100)), rr.Uint64N(50))
 				}
 			}
@@ -104,9 +104,9 @@ func TestRecordResetEqualsNew(t *testing.T) {
 			b2, err := fresh.AppendBinary(nil)
 			require.NoError(t, err)
 			require.Equal(t, b2, b1, "round %d", round)
-			for i := range used.aggs {
+			for i := range used.features() {
 				at := t0 + int64(n)*int64(time.Minute)
-				require.Equal(t, math.Float64bits(fresh.aggs[i].At(at, 3)), math.Float64bits(used.aggs[i].At(at, 3)), "round %d feature %d", round, i)
+				require.Equal(t, math.Float64bits(fresh.agg(i).At(at, 3)), math.Float64bits(used.agg(i).At(at, 3)), "round %d feature %d", round, i)
 			}
 		}
 	}
@@ -132,7 +132,7 @@ func TestRecordSizeBytesIsHonest(t *testing.T) {
 		tt := t0
 		for range 1 + r.IntN(12) { // Zipf-like: most entities see few events
 			tt += r.Int64N(int64(10 * time.Minute))
-			for _, a := range rec.aggs {
+			for _, a := range rec.aggs(nil) {
 				a.Add(tt, 5, r.Uint64N(4))
 			}
 		}

@@ -240,9 +240,9 @@ func (t *Table[V]) resize(sl *Slot[V]) {
 }
 
 // slotOverhead approximates the slot struct (64 bytes, the key's header
-// included) and its index entry (8 bytes in an index a half to three
-// quarters full).
-const slotOverhead = 80
+// included), its index entry (8 bytes in an index a half to three
+// quarters full) and its place in Table.slots (8 bytes).
+const slotOverhead = 88
 
 // evict drops victim from memory, staging it in the pending batch first if
 // it is dirty so that later reads and the next commit still see it.
