@@ -26,7 +26,7 @@ func richRecord(t testing.TB) (*record, func() []Aggregate) {
 		}
 		return out
 	}
-	r := &record{own: fresh()}
+	r := bareRecord(fresh())
 	for i, e := range genLogins(5, 40, 3, 3, 0) {
 		for _, a := range r.aggs(nil) {
 			a.Add(e.T, e.Amount, uint64(i%3))
@@ -45,7 +45,7 @@ func FuzzRecordDecode(f *testing.F) {
 	if err != nil {
 		f.Fatal(err)
 	}
-	empty, _ := (&record{own: fresh()}).AppendBinary(nil)
+	empty, _ := (bareRecord(fresh())).AppendBinary(nil)
 	f.Add(good)
 	f.Add(empty)
 	f.Add(good[:len(good)/2])

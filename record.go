@@ -7,6 +7,7 @@ import (
 	"reflect"
 	"slices"
 	"strconv"
+	"sync"
 	"time"
 	"unsafe"
 
@@ -24,38 +25,49 @@ import (
 // raw events and items stored inside them). A sparse entity therefore
 // costs one allocation and the collector scans one object; only an
 // aggregate that outgrows its inline storage, or a user kind (built by
-// Kind.NewAggregate), holds objects of its own. A record built from a
-// bare []Aggregate (lay == nil) works the same, object by object.
+// Kind.NewAggregate), holds objects of its own. A record built from bare
+// aggregates (bareRecord) has a layout that places none.
+//
+// A placed aggregate is reached through the layout (agg), from its
+// offset: an interface per feature in every record would cost 16 bytes
+// each, a cache line of a six-feature account record, and the header
+// is two words so that a one-feature device record fits 128 bytes.
 type record struct {
 	// last is the newest event time applied to this record.
 	last int64
-	lay  *recordLayout // how the record was made; nil: aggregate by aggregate
-	// own holds the aggregates that are objects of their own, by feature
-	// index (definition order): every one of a record made without a
-	// layout, and those of kinds its layout does not place (nil where a
-	// kind is placed, and nil altogether when every kind is). A placed
-	// aggregate is reached through the layout (agg): an array of
-	// interfaces in the record would cost 16 bytes per feature, a cache
-	// line of every six-feature account record.
-	own []Aggregate
+	lay  *recordLayout // how the record was made; never nil
 }
 
 // features returns how many features r holds.
-func (r *record) features() int {
-	if r.lay != nil {
-		return len(r.lay.fields)
-	}
-	return len(r.own)
-}
+func (r *record) features() int { return len(r.lay.fields) }
 
 // agg returns r's aggregate of feature i.
 func (r *record) agg(i int) Aggregate {
-	if l := r.lay; l != nil && l.fields[i].placed {
-		f := &l.fields[i]
-		return f.pl.as(unsafe.Add(unsafe.Pointer(r), f.off))
+	f := &r.lay.fields[i]
+	p := unsafe.Add(unsafe.Pointer(r), f.off)
+	if f.placed {
+		return f.pl.as(p)
 	}
-	return r.own[i]
+	return *(*Aggregate)(p)
 }
+
+// bareRecord returns a record holding aggs as they are (objects of their
+// own), as a record decoded for a test or a tool is.
+func bareRecord(aggs []Aggregate) *record {
+	l, ok := bareLayouts.Load(len(aggs))
+	if !ok {
+		l, _ = bareLayouts.LoadOrStore(len(aggs), newRecordLayout(make([]Kind, len(aggs)), 0))
+	}
+	r := (*record)(reflect.New(l.(*recordLayout).typ).UnsafePointer())
+	r.lay = l.(*recordLayout)
+	for i, a := range aggs {
+		*(*Aggregate)(unsafe.Add(unsafe.Pointer(r), r.lay.fields[i].off)) = a
+	}
+	return r
+}
+
+// bareLayouts holds the layouts of bare records by feature count.
+var bareLayouts sync.Map
 
 // aggs returns r's aggregates, appended to dst.
 func (r *record) aggs(dst []Aggregate) []Aggregate {
@@ -113,16 +125,14 @@ func placeAs[T any, PT interface {
 func newPlaced(pl placement) Aggregate { return pl.init(reflect.New(pl.typ).UnsafePointer()) }
 
 // recordLayout lays out the records of one entity: a struct type made at
-// Open, struct{ R record; F0 T0; F1 T1; ... }, with one field per feature
-// whose kind is placed.
+// Open, struct{ R record; F0 T0; F1 T1; ... }, with one field per feature:
+// the aggregate itself for a placed kind, an Aggregate (interface) for
+// one that is not (a user kind's aggregate is an object of its own).
 type recordLayout struct {
 	kinds   []Kind
 	horizon time.Duration
 	typ     reflect.Type
 	fields  []layoutField // per feature
-	// unplaced: some kind is not placed (a user kind), so records keep
-	// an own slice.
-	unplaced bool
 	// size is what one record object costs on the heap (its size class).
 	size int
 	// hints are the placed fields that keep storage outside the record.
@@ -131,7 +141,7 @@ type recordLayout struct {
 
 type layoutField struct {
 	placed bool
-	off    uintptr
+	off    uintptr // the field's offset in the record
 	pl     placement
 }
 
@@ -142,19 +152,16 @@ func newRecordLayout(kinds []Kind, horizon time.Duration) *recordLayout {
 		{Name: "R", Type: reflect.TypeFor[record]()},
 	}
 	for i, k := range kinds {
+		typ := reflect.TypeFor[Aggregate]()
 		if pk, ok := k.(placedKind); ok {
 			l.fields[i] = layoutField{placed: true, pl: pk.placement(horizon)}
-			sf = append(sf, reflect.StructField{Name: "F" + strconv.Itoa(i), Type: l.fields[i].pl.typ})
-		} else {
-			l.unplaced = true
+			typ = l.fields[i].pl.typ
 		}
+		sf = append(sf, reflect.StructField{Name: "F" + strconv.Itoa(i), Type: typ})
 	}
 	l.typ = reflect.StructOf(sf)
-	for i, j := 0, 1; i < len(kinds); i++ {
-		if l.fields[i].placed {
-			l.fields[i].off = l.typ.Field(j).Offset
-			j++
-		}
+	for i := range l.fields {
+		l.fields[i].off = l.typ.Field(i + 1).Offset
 	}
 	for _, f := range l.fields {
 		if f.placed && f.pl.hint != nil {
@@ -186,9 +193,6 @@ func (l *recordLayout) newRecord(last int64) *record {
 	base := reflect.New(l.typ).UnsafePointer()
 	r := (*record)(base)
 	r.last, r.lay = last, l
-	if l.unplaced {
-		r.own = make([]Aggregate, len(l.kinds))
-	}
 	l.empty(r)
 	return r
 }
@@ -214,15 +218,14 @@ func (l *recordLayout) empty(r *record) {
 		if f := &l.fields[i]; f.placed {
 			f.pl.init(unsafe.Add(base, f.off))
 		} else {
-			r.own[i] = l.kinds[i].NewAggregate(l.horizon)
+			*(*Aggregate)(unsafe.Add(base, f.off)) = l.kinds[i].NewAggregate(l.horizon)
 		}
 	}
 }
 
 // reset empties an expired record in place, keeping its newest time: it
 // then reads as a new entity, without a new allocation for its placed
-// aggregates (their grown storage is released). r must come from a
-// layout, as every record of a pipeline does.
+// aggregates (their grown storage is released). r must not be bare.
 func (r *record) reset() { r.lay.empty(r) }
 
 // fresh returns empty aggregates of a new record.
@@ -275,22 +278,11 @@ func (r *record) LastTime() int64 { return r.last }
 // size class, what its aggregates hold outside it, and each aggregate
 // that is an object of its own.
 func (r *record) SizeBytes() int {
-	if r.lay == nil {
-		n := 48 + 16*len(r.own)
-		for _, a := range r.own {
-			n += a.SizeBytes()
-		}
-		return n
-	}
 	n := r.lay.size
-	if r.own != nil {
-		n += 16 * cap(r.own)
-	}
 	for i := range r.lay.fields {
+		n += r.agg(i).SizeBytes()
 		if f := &r.lay.fields[i]; f.placed {
-			n += f.pl.as(unsafe.Add(unsafe.Pointer(r), f.off)).SizeBytes() - f.pl.self
-		} else {
-			n += r.own[i].SizeBytes()
+			n -= f.pl.self
 		}
 	}
 	return n
@@ -321,7 +313,7 @@ func peekLast(b []byte) (int64, error) {
 //	         versioned encoding
 //	then end of input
 func decodeRecord(b []byte, fresh func() []Aggregate) (*record, error) {
-	r := &record{own: fresh()}
+	r := bareRecord(fresh())
 	if err := r.decode(b); err != nil {
 		return nil, err
 	}
