@@ -124,7 +124,10 @@ func main() {
 	g1 := get(live, "BenchmarkLive/g1", "events/s")
 	g2, g4, g16 := get(live, "BenchmarkLive/g2", "events/s"), get(live, "BenchmarkLive/g4", "events/s"), get(live, "BenchmarkLive/g16", "events/s")
 	row(fmt.Sprintf("Live.Score from 1 / 2 / 4 / 16 goroutines (6 features, on disk, %d worker(s))", wmax),
-		fmt.Sprintf("%.0f / %.0f / %.0f / %.0f events/s: %.2f x, %.2f x and %.2f x of one goroutine", g1, g2, g4, g16, g2/g1, g4/g1, g16/g1),
+		fmt.Sprintf("%.0f / %.0f / %.0f / %.0f events/s: %.2f x, %.2f x and %.2f x of one goroutine; cores busy %.2f / %.2f / %.2f / %.2f, so at most %.2f x with every core busy at one goroutine's CPU per event",
+			g1, g2, g4, g16, g2/g1, g4/g1, g16/g1,
+			get(live, "BenchmarkLive/g1", "cores"), get(live, "BenchmarkLive/g2", "cores"), get(live, "BenchmarkLive/g4", "cores"), get(live, "BenchmarkLive/g16", "cores"),
+			float64(runtime.NumCPU())/get(live, "BenchmarkLive/g1", "cores")),
 		">= 1.6x of one goroutine on 2 cores")
 	row("signin demo replay (7 features, 2 entity kinds, Settled, on disk)",
 		fmt.Sprintf("%.0f events/s (%d attempts in %v)", float64(demo.events)/demo.took.Seconds(), demo.events, demo.took.Round(time.Millisecond)),
