@@ -132,6 +132,3 @@ func (c *collector) sorted() []entry {
 	}
 	return out
 }
-
-// sortByKey orders c.ents by key, writes of one key in write order.
-func (c *collector) sortByKey() { c.sortEntries(c.ents) }

@@ -46,33 +46,21 @@ type keySorter struct {
 	counts *[8][2048]uint32
 }
 
-// sortEntries orders ents (keys in c) by key, writes of one key in write
-// order (koff).
-func (c *collector) sortEntries(ents []entry) {
-	if len(ents) < radixMin {
-		c.compareSort(ents, 0)
-		return
-	}
-	items := make([]sortItem, len(ents))
-	for i, e := range ents {
+// sortByKey orders c.ents by key, writes of one key in write order
+// (koff).
+func (c *collector) sortByKey() {
+	items := make([]sortItem, len(c.ents))
+	for i, e := range c.ents {
 		items[i].e = e
 	}
-	s := keySorter{c: c, tmp: make([]sortItem, len(ents)), counts: new([8][2048]uint32)}
+	s := keySorter{c: c}
+	if len(items) >= radixMin {
+		s.tmp, s.counts = make([]sortItem, len(items)), new([8][2048]uint32)
+	}
 	s.sort(items, 0)
 	for i := range items {
-		ents[i] = items[i].e
+		c.ents[i] = items[i].e
 	}
-}
-
-// compareSort sorts ents by their keys from byte d on (every key has at
-// least d bytes), then by write order.
-func (c *collector) compareSort(ents []entry, d int) {
-	slices.SortFunc(ents, func(a, b entry) int {
-		if r := bytes.Compare(c.key(a)[d:], c.key(b)[d:]); r != 0 {
-			return r
-		}
-		return cmp.Compare(a.koff, b.koff)
-	})
 }
 
 // sort sorts items by key from byte d on; every key has at least d bytes.
